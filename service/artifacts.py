@@ -1,0 +1,214 @@
+"""Model artifacts in the model store: write, verify, load, list. numpy only, never torch.
+
+Layout: `<store>/<name>/<version>/` holding
+
+    step.onnx        one GRU step for a batch of sessions (I/O contract below)
+    item_ids.json    list of item ids (strings), index order: the model's item vocabulary
+    neighbours.npz   item-KNN table: items int32 [n_items, K] (-1 pads), scores float32 [n_items, K]
+    popularity.npy   float32 [n_items], training click counts
+    manifest.json    format, name, version, created_at, data_fingerprint, model, hyperparameters,
+                     metrics, files {file name: SHA-256 hex}
+
+step.onnx I/O:
+    inputs   items int64 [B]; hidden float32 [L, B, H]; top_n int64 [1]
+    outputs  next_hidden float32 [L, B, H]; top_items int64 [B, top_n]; top_scores float32 [B, top_n]
+             (descending); scores float32 [B, n_items] (every item, for callers that rank themselves)
+
+An artifact is written into a hidden temporary folder and renamed into place, so a reader never
+sees half of one. A reader refuses an artifact whose format or any checksum does not match.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+import tempfile
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from service.errors import ArtifactError
+
+FORMAT = "cairn-artifact/1"
+MANIFEST = "manifest.json"
+STEP_GRAPH = "step.onnx"
+ITEM_IDS = "item_ids.json"
+NEIGHBOURS = "neighbours.npz"
+POPULARITY = "popularity.npy"
+REQUIRED_FILES = (STEP_GRAPH, ITEM_IDS, NEIGHBOURS, POPULARITY)
+
+
+def sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+@dataclass
+class Artifact:
+    path: Path
+    manifest: dict[str, Any]
+    item_ids: list[str]
+    neighbour_items: np.ndarray  # int32 [n_items, K], -1 where an item has fewer than K neighbours
+    neighbour_scores: np.ndarray  # float32 [n_items, K]
+    popularity: np.ndarray  # float32 [n_items]
+    item_index: dict[str, int] = field(repr=False, default_factory=dict)
+
+    @property
+    def name(self) -> str:
+        return str(self.manifest["name"])
+
+    @property
+    def version(self) -> str:
+        return str(self.manifest["version"])
+
+    @property
+    def step_graph(self) -> Path:
+        return self.path / STEP_GRAPH
+
+    @property
+    def n_items(self) -> int:
+        return len(self.item_ids)
+
+
+@dataclass
+class ArtifactListing:
+    name: str
+    version: str
+    path: Path
+    manifest: dict[str, Any] | None
+    problem: str | None  # why it does not verify, or None
+
+
+def write_artifact(
+    store: Path,
+    name: str,
+    version: str,
+    step_graph: bytes,
+    item_ids: list[str],
+    neighbour_items: np.ndarray,
+    neighbour_scores: np.ndarray,
+    popularity: np.ndarray,
+    manifest_fields: dict[str, Any],
+    overwrite: bool = False,
+) -> Path:
+    """Write one artifact atomically; returns its folder."""
+    _check_name(name, "name")
+    _check_name(version, "version")
+    target = Path(store) / name / version
+    if target.exists() and not overwrite:
+        raise ArtifactError(f"{target} exists already; choose another version or pass overwrite")
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{version}.", dir=target.parent))
+    try:
+        (tmp / STEP_GRAPH).write_bytes(step_graph)
+        (tmp / ITEM_IDS).write_text(json.dumps([str(i) for i in item_ids]), encoding="utf-8")
+        np.savez(tmp / NEIGHBOURS, items=neighbour_items.astype(np.int32), scores=neighbour_scores.astype(np.float32))
+        np.save(tmp / POPULARITY, popularity.astype(np.float32))
+        manifest = {
+            "format": FORMAT,
+            "name": name,
+            "version": version,
+            "created_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            **manifest_fields,
+            "files": {f: sha256_file(tmp / f) for f in REQUIRED_FILES},
+        }
+        (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True), encoding="utf-8")
+        if target.exists():
+            shutil.rmtree(target)
+        os.replace(tmp, target)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return target
+
+
+def verify_artifact(path: Path) -> dict[str, Any]:
+    """Return the manifest of a sound artifact; raise ArtifactError saying what is wrong otherwise."""
+    path = Path(path)
+    mpath = path / MANIFEST
+    if not mpath.is_file():
+        raise ArtifactError(f"{path}: no {MANIFEST}; not an artifact")
+    try:
+        manifest = json.loads(mpath.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ArtifactError(f"{mpath}: unreadable manifest ({exc})") from exc
+    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
+        found = manifest.get("format") if isinstance(manifest, dict) else None
+        raise ArtifactError(f"{mpath}: format {found!r}, this cairn reads {FORMAT!r}")
+    files = manifest.get("files")
+    if not isinstance(files, dict):
+        raise ArtifactError(f"{mpath}: no 'files' checksums")
+    for fname in REQUIRED_FILES:
+        if fname not in files:
+            raise ArtifactError(f"{mpath}: no checksum for {fname}")
+    for fname, digest in files.items():
+        fpath = path / fname
+        if not fpath.is_file():
+            raise ArtifactError(f"{fpath}: missing")
+        if sha256_file(fpath) != digest:
+            raise ArtifactError(f"{fpath}: checksum mismatch (the file changed after export)")
+    return manifest
+
+
+def load_artifact(path: Path) -> Artifact:
+    """Verify, then load everything except the ONNX graph (the runtime opens that itself)."""
+    path = Path(path)
+    manifest = verify_artifact(path)
+    try:
+        item_ids = json.loads((path / ITEM_IDS).read_text(encoding="utf-8"))
+        with np.load(path / NEIGHBOURS) as z:
+            n_items_arr, n_scores = z["items"], z["scores"]
+        popularity = np.load(path / POPULARITY)
+    except (OSError, ValueError, KeyError) as exc:
+        raise ArtifactError(f"{path}: unreadable artifact file ({exc})") from exc
+    n = len(item_ids)
+    if n_items_arr.shape[0] != n or n_scores.shape != n_items_arr.shape or popularity.shape != (n,):
+        raise ArtifactError(f"{path}: neighbour table or popularity does not match {n} items")
+    return Artifact(
+        path=path,
+        manifest=manifest,
+        item_ids=item_ids,
+        neighbour_items=n_items_arr.astype(np.int32),
+        neighbour_scores=n_scores.astype(np.float32),
+        popularity=popularity.astype(np.float32),
+        item_index={item: i for i, item in enumerate(item_ids)},
+    )
+
+
+def list_artifacts(store: Path) -> list[ArtifactListing]:
+    """Every `<name>/<version>` folder in the store, verified; newest version last within a name."""
+    store = Path(store)
+    out: list[ArtifactListing] = []
+    if not store.is_dir():
+        return out
+    for name_dir in sorted(p for p in store.iterdir() if p.is_dir() and not p.name.startswith(".")):
+        versions = [p for p in name_dir.iterdir() if p.is_dir() and not p.name.startswith(".")]
+        for vdir in sorted(versions, key=lambda p: _version_key(p.name)):
+            try:
+                manifest, problem = verify_artifact(vdir), None
+            except ArtifactError as exc:
+                manifest, problem = None, str(exc)
+            out.append(ArtifactListing(name=name_dir.name, version=vdir.name, path=vdir, manifest=manifest, problem=problem))
+    return out
+
+
+def _version_key(version: str) -> tuple:
+    # "v2" < "v10": compare digit runs as numbers.
+    import re
+
+    return tuple(int(t) if t.isdigit() else t for t in re.split(r"(\d+)", version))
+
+
+def _check_name(value: str, what: str) -> None:
+    import re
+
+    if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}", value or ""):
+        raise ArtifactError(f"artifact {what} {value!r}: use 1-64 letters, digits, '.', '_' or '-', starting with a letter or digit")

@@ -1,0 +1,1 @@
+"""Offline half: ingest, demo data, baselines, GRU training, evaluation and export."""

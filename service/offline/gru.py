@@ -1,0 +1,115 @@
+"""The GRU next-click model (PyTorch, CPU).
+
+One click in, one step of the recurrence, scores over items out:
+
+    e = E[item]                         item embedding          [B, E]
+    h_l' = GRU_l(x_l, h_l)              L stacked GRU layers     [L, B, H]
+    f = tanh(W_k ... tanh(W_1 h_L'))    optional feed-forward    [B, D]
+    score(j) = f . O[j] + b[j]          output item vectors      [B, n_items]
+
+The output vectors O may be tied to the input embedding (then D must equal E). Embedding and
+output tables are `nn.Embedding(sparse=True)` so that an optimiser step touches only the rows a
+mini-batch used: with 40,000 items a dense update costs tens of ms whatever the batch size.
+The checkpoint carries `GRUConfig`, so evaluation and export rebuild the model from it alone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import torch
+from torch import nn
+
+
+@dataclass
+class GRUConfig:
+    n_items: int
+    embedding_size: int = 100  # input item vector size
+    hidden_size: int = 100  # GRU state size per layer
+    layers: int = 1  # stacked GRU layers
+    ff_sizes: list[int] = field(default_factory=list)  # tanh feed-forward layers after the GRU
+    dropout_embedding: float = 0.0  # on the input embedding, training only
+    dropout_hidden: float = 0.0  # on the GRU output, training only
+    tie_output: bool = False  # output item vectors = input embedding
+
+    @property
+    def output_size(self) -> int:
+        return self.ff_sizes[-1] if self.ff_sizes else self.hidden_size
+
+    def validate(self) -> None:
+        if self.n_items < 1:
+            raise ValueError(f"n_items must be positive, got {self.n_items}")
+        if self.tie_output and self.output_size != self.embedding_size:
+            raise ValueError(
+                f"tie_output needs the final layer size ({self.output_size}) to equal embedding_size ({self.embedding_size})"
+            )
+
+
+class NextClickGRU(nn.Module):
+    def __init__(self, config: GRUConfig) -> None:
+        super().__init__()
+        config.validate()
+        self.config = config
+        c = config
+        self.embedding = nn.Embedding(c.n_items, c.embedding_size, sparse=True)
+        self.gru = nn.GRU(c.embedding_size, c.hidden_size, num_layers=c.layers)
+        sizes = [c.hidden_size, *c.ff_sizes]
+        self.ff = nn.ModuleList(nn.Linear(a, b) for a, b in zip(sizes[:-1], sizes[1:]))
+        self.output = None if c.tie_output else nn.Embedding(c.n_items, c.output_size, sparse=True)
+        self.output_bias = nn.Embedding(c.n_items, 1, sparse=True)
+        self.drop_embedding = nn.Dropout(c.dropout_embedding)
+        self.drop_hidden = nn.Dropout(c.dropout_hidden)
+        self.reset_parameters()
+
+    def reset_parameters(self) -> None:
+        # Small uniform init, as in common GRU recommender practice (from memory: +-sqrt(6/(fan_in+fan_out))).
+        for p in self.parameters():
+            if p.dim() >= 2:
+                bound = (6.0 / (p.shape[0] + p.shape[1])) ** 0.5
+                nn.init.uniform_(p, -bound, bound)
+        nn.init.zeros_(self.output_bias.weight)
+
+    @property
+    def output_weight(self) -> torch.Tensor:
+        return self.embedding.weight if self.output is None else self.output.weight  # [n_items, D]
+
+    def init_hidden(self, batch_size: int) -> torch.Tensor:
+        return torch.zeros(self.config.layers, batch_size, self.config.hidden_size)  # [L, B, H]
+
+    def step(self, items: torch.Tensor, hidden: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """One click per session: items int64 [B], hidden [L, B, H] -> (features [B, D], new hidden [L, B, H])."""
+        x = self.drop_embedding(self.embedding(items))  # [B, E]
+        out, hidden = self.gru(x.unsqueeze(0), hidden)  # out [1, B, H]
+        f = self.drop_hidden(out.squeeze(0))  # [B, H]
+        for layer in self.ff:
+            f = torch.tanh(layer(f))  # [B, D]
+        return f, hidden
+
+    def score_all(self, features: torch.Tensor) -> torch.Tensor:
+        """Scores of every item: [B, D] -> [B, n_items]."""
+        return features @ self.output_weight.T + self.output_bias.weight.T
+
+    def score_candidates(self, features: torch.Tensor, candidates: torch.Tensor) -> torch.Tensor:
+        """Scores of a shared candidate set (sampled output): [B, D], [C] -> [B, C]."""
+        w = self.output(candidates) if self.output is not None else self.embedding(candidates)  # [C, D]
+        b = self.output_bias(candidates).squeeze(1)  # [C]
+        return features @ w.T + b
+
+
+def save_checkpoint(path: Path, model: NextClickGRU, extra: dict[str, Any] | None = None) -> None:
+    """A checkpoint is self-describing: config, weights, and whatever the trainer adds (epoch, metrics)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_suffix(path.suffix + ".tmp")
+    torch.save({"config": asdict(model.config), "state_dict": model.state_dict(), "extra": extra or {}}, tmp)
+    tmp.replace(path)
+
+
+def load_checkpoint(path: Path) -> tuple[NextClickGRU, dict[str, Any]]:
+    blob = torch.load(Path(path), map_location="cpu", weights_only=True)
+    model = NextClickGRU(GRUConfig(**blob["config"]))
+    model.load_state_dict(blob["state_dict"])
+    model.eval()
+    return model, blob.get("extra", {})
