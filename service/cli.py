@@ -23,6 +23,8 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "evaluate": ("service.offline.evaluate_cli", "compare recommenders on the test sessions"),
     "artifacts": ("service.artifacts_cli", "list and verify artifacts in the model store"),
     "serve": ("service.api.serve_cli", "run the HTTP recommendation service"),
+    "loadtest": ("service.load.loadtest_cli", "replay held-out visits against the service and judge the page budget"),
+    "capacity": ("service.load.capacity_cli", "find the highest rate per core that meets the budget"),
 }
 
 
