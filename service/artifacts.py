@@ -7,15 +7,17 @@ Layout: `<store>/<name>/<version>/` holding
     neighbours.npz   item-KNN table: items int32 [n_items, K] (-1 pads), scores float32 [n_items, K]
     popularity.npy   float32 [n_items], training click counts
     manifest.json    format, name, version, created_at, data_fingerprint, model, hyperparameters,
-                     metrics, files {file name: SHA-256 hex}
+                     metrics, files {file name: SHA-256 hex}, manifest_sha256
 
 step.onnx I/O:
     inputs   items int64 [B]; hidden float32 [L, B, H]; top_n int64 [1]
     outputs  next_hidden float32 [L, B, H]; top_items int64 [B, top_n]; top_scores float32 [B, top_n]
              (descending); scores float32 [B, n_items] (every item, for callers that rank themselves)
 
-An artifact is written into a hidden temporary folder and renamed into place, so a reader never
-sees half of one. A reader refuses an artifact whose format or any checksum does not match.
+An artifact is written into a hidden temporary folder, flushed to disk and renamed into place, so
+a reader never sees half of one. A reader refuses an artifact whose format or any checksum does not
+match. The manifest checks itself too: `manifest_sha256` is the SHA-256 of the manifest's exact
+bytes with that value replaced by 64 zeros, so changing any byte of any file is caught.
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
 import shutil
 import tempfile
 from dataclasses import dataclass, field
@@ -41,6 +44,9 @@ ITEM_IDS = "item_ids.json"
 NEIGHBOURS = "neighbours.npz"
 POPULARITY = "popularity.npy"
 REQUIRED_FILES = (STEP_GRAPH, ITEM_IDS, NEIGHBOURS, POPULARITY)
+_WRITER_FIELDS = frozenset({"format", "name", "version", "created_at", "files", "manifest_sha256"})
+_UNSET_DIGEST = "0" * 64
+_HEX_DIGEST = re.compile(r"[0-9a-f]{64}")
 
 
 def sha256_file(path: Path) -> str:
@@ -102,6 +108,11 @@ def write_artifact(
     """Write one artifact atomically; returns its folder."""
     _check_name(name, "name")
     _check_name(version, "version")
+    reserved = sorted(set(manifest_fields) & _WRITER_FIELDS)
+    if reserved:
+        raise ArtifactError(f"manifest fields {reserved} are written by write_artifact itself")
+    neighbour_items, neighbour_scores, popularity = np.asarray(neighbour_items), np.asarray(neighbour_scores), np.asarray(popularity)
+    _check_tables(len(item_ids), neighbour_items, neighbour_scores, popularity, f"artifact {name}/{version}")
     target = Path(store) / name / version
     if target.exists() and not overwrite:
         raise ArtifactError(f"{target} exists already; choose another version or pass overwrite")
@@ -119,11 +130,14 @@ def write_artifact(
             "created_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
             **manifest_fields,
             "files": {f: sha256_file(tmp / f) for f in REQUIRED_FILES},
+            "manifest_sha256": _UNSET_DIGEST,
         }
-        (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True), encoding="utf-8")
+        (tmp / MANIFEST).write_bytes(_sealed_manifest(manifest))
+        _fsync_folder(tmp)
         if target.exists():
             shutil.rmtree(target)
         os.replace(tmp, target)
+        _fsync_path(target.parent)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
@@ -137,12 +151,14 @@ def verify_artifact(path: Path) -> dict[str, Any]:
     if not mpath.is_file():
         raise ArtifactError(f"{path}: no {MANIFEST}; not an artifact")
     try:
-        manifest = json.loads(mpath.read_text(encoding="utf-8"))
+        raw = mpath.read_bytes()
+        manifest = json.loads(raw.decode("utf-8"))
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise ArtifactError(f"{mpath}: unreadable manifest ({exc})") from exc
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
         found = manifest.get("format") if isinstance(manifest, dict) else None
         raise ArtifactError(f"{mpath}: format {found!r}, this cairn reads {FORMAT!r}")
+    _check_manifest_seal(mpath, raw, manifest)
     files = manifest.get("files")
     if not isinstance(files, dict):
         raise ArtifactError(f"{mpath}: no 'files' checksums")
@@ -150,6 +166,9 @@ def verify_artifact(path: Path) -> dict[str, Any]:
         if fname not in files:
             raise ArtifactError(f"{mpath}: no checksum for {fname}")
     for fname, digest in files.items():
+        # A manifest names files inside its own folder only.
+        if not isinstance(fname, str) or fname in (MANIFEST, "", ".", "..") or "/" in fname or "\\" in fname:
+            raise ArtifactError(f"{mpath}: bad file name {fname!r} in 'files'")
         fpath = path / fname
         if not fpath.is_file():
             raise ArtifactError(f"{fpath}: missing")
@@ -169,9 +188,16 @@ def load_artifact(path: Path) -> Artifact:
         popularity = np.load(path / POPULARITY)
     except (OSError, ValueError, KeyError) as exc:
         raise ArtifactError(f"{path}: unreadable artifact file ({exc})") from exc
+    if not isinstance(item_ids, list) or not all(isinstance(i, str) for i in item_ids):
+        raise ArtifactError(f"{path / ITEM_IDS}: not a list of item id strings")
     n = len(item_ids)
-    if n_items_arr.shape[0] != n or n_scores.shape != n_items_arr.shape or popularity.shape != (n,):
-        raise ArtifactError(f"{path}: neighbour table or popularity does not match {n} items")
+    if len(set(item_ids)) != n:
+        raise ArtifactError(f"{path / ITEM_IDS}: item ids repeat; each item must appear once")
+    model = manifest.get("model")
+    model_items = model.get("n_items") if isinstance(model, dict) else None
+    if model_items is not None and model_items != n:
+        raise ArtifactError(f"{path}: manifest says the model scores {model_items} items, {ITEM_IDS} has {n}")
+    _check_tables(n, n_items_arr, n_scores, popularity, str(path))
     return Artifact(
         path=path,
         manifest=manifest,
@@ -200,15 +226,59 @@ def list_artifacts(store: Path) -> list[ArtifactListing]:
     return out
 
 
+def _sealed_manifest(manifest: dict[str, Any]) -> bytes:
+    """The manifest's bytes with `manifest_sha256` filled in (see the module docstring)."""
+    raw = json.dumps(manifest, indent=2, sort_keys=True).encode("utf-8")
+    unset = _seal_field(_UNSET_DIGEST)
+    if raw.count(unset) != 1:
+        raise ArtifactError("manifest fields must not contain another 'manifest_sha256' entry")
+    return raw.replace(unset, _seal_field(hashlib.sha256(raw).hexdigest()))
+
+
+def _seal_field(digest: str) -> bytes:
+    return f'"manifest_sha256": "{digest}"'.encode("ascii")
+
+
+def _check_manifest_seal(mpath: Path, raw: bytes, manifest: dict[str, Any]) -> None:
+    digest = manifest.get("manifest_sha256")
+    if not isinstance(digest, str) or not _HEX_DIGEST.fullmatch(digest):
+        raise ArtifactError(f"{mpath}: no valid 'manifest_sha256' (the manifest was edited or is not cairn's)")
+    field = _seal_field(digest)
+    if raw.count(field) != 1 or hashlib.sha256(raw.replace(field, _seal_field(_UNSET_DIGEST))).hexdigest() != digest:
+        raise ArtifactError(f"{mpath}: checksum mismatch (the manifest changed after export)")
+
+
+def _check_tables(n: int, neighbour_items: np.ndarray, neighbour_scores: np.ndarray, popularity: np.ndarray, where: str) -> None:
+    if neighbour_items.ndim != 2 or neighbour_items.shape[0] != n or neighbour_scores.shape != neighbour_items.shape:
+        raise ArtifactError(
+            f"{where}: neighbour table items {neighbour_items.shape} / scores {neighbour_scores.shape} do not fit {n} items"
+        )
+    if popularity.shape != (n,):
+        raise ArtifactError(f"{where}: popularity has shape {popularity.shape}, expected ({n},)")
+    if neighbour_items.size and (neighbour_items.min() < -1 or neighbour_items.max() >= n):
+        raise ArtifactError(f"{where}: neighbour indices must be -1 (padding) or 0..{n - 1}")
+
+
+def _fsync_path(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _fsync_folder(folder: Path) -> None:
+    # Rename-into-place is only atomic after a crash if the contents reached the disk first.
+    for p in folder.iterdir():
+        _fsync_path(p)
+    _fsync_path(folder)
+
+
 def _version_key(version: str) -> tuple:
     # "v2" < "v10": compare digit runs as numbers.
-    import re
-
     return tuple(int(t) if t.isdigit() else t for t in re.split(r"(\d+)", version))
 
 
 def _check_name(value: str, what: str) -> None:
-    import re
-
     if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}", value or ""):
         raise ArtifactError(f"artifact {what} {value!r}: use 1-64 letters, digits, '.', '_' or '-', starting with a letter or digit")
