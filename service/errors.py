@@ -3,7 +3,8 @@
 CairnError                 base of everything cairn raises on purpose
  ├── InputDataError        a click log or prepared data set that cannot be used (names file, column, row)
  ├── ArtifactError         a model artifact that is missing, corrupt or of another format
- └── StoreError            the session store failed or timed out
+ ├── StoreError            the session store failed or timed out
+ └── StepError             ONNX Runtime failed running a model step (service/runtime/onnx_step.py)
 """
 
 
