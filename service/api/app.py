@@ -1,0 +1,116 @@
+"""The app factory: routes, the edge middleware, error handlers, and a lifespan that opens (and
+closes, in reverse order) the session store and the active model.
+
+Start-up loads and verifies the active artifact: the one the store's shared choice names (so a
+restarted worker follows the last switch), else the one the settings name. `/readyz` answers
+ready only while the model is loaded and the store answers.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import logging
+from collections.abc import AsyncIterator
+
+from fastapi import FastAPI
+
+from service import __version__
+from service.api.deps import Service
+from service.api.errors import install_handlers
+from service.api.metrics import ServiceMetrics
+from service.api.middleware import EdgeMiddleware
+from service.api.routes import router
+from service.config import Settings, load_settings
+from service.errors import CairnError, StoreError
+from service.runtime.active import ActiveModel, ModelChoice, resolve_choice
+from service.runtime.visits import Visits
+from service.store.base import SessionStore, open_store
+
+log = logging.getLogger("cairn.service")
+
+DESCRIPTION = """Next-click recommendations for anonymous visits.
+
+Post each click of a visit to `/v1/sessions/{session_id}/clicks`; the answer holds the next
+recommendations, which recommender gave them (`served_by`) and why a fallback answered
+(`fallback_reason`). Session ids are opaque: 1-128 letters, digits and `-_.:`.
+"""
+
+
+def create_app(settings: Settings, store: SessionStore | None = None) -> FastAPI:
+    """The service for `settings`; `store` replaces the one the settings name (tests pass their own)."""
+    metrics = ServiceMetrics()
+
+    @contextlib.asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        session_store = store if store is not None else open_store(settings)
+        active = ActiveModel(settings, session_store)
+        follower: asyncio.Task | None = None
+        try:
+            configured = await asyncio.to_thread(resolve_choice, settings)
+            shared = await _shared_choice(session_store)
+            try:
+                await active.open(shared or configured)
+            except CairnError as exc:
+                if shared is None or shared == configured:
+                    raise
+                log.error("cannot load the shared model choice %s (%s); serving the configured one", shared.tag, exc)
+                await active.open(configured)
+            service = Service(
+                settings=settings,
+                store=session_store,
+                active=active,
+                visits=Visits(session_store, active, settings.history_length, settings.event_memory),
+                metrics=metrics,
+            )
+            metrics.registry.on_collect(lambda: _collect(service))
+            app.state.service = service
+            if session_store.kind != "memory":
+                follower = asyncio.get_running_loop().create_task(active.follow(), name="cairn-model-follower")
+            model, choice = active.current
+            log.info("ready: %s (%s), %s store", choice.tag, choice.recommender, session_store.kind)
+            yield
+        finally:
+            if follower is not None:
+                follower.cancel()
+                with contextlib.suppress(asyncio.CancelledError):
+                    await follower
+            await active.close()
+            await session_store.close()
+
+    app = FastAPI(title="cairn", version=__version__, description=DESCRIPTION, lifespan=lifespan)
+    app.add_middleware(EdgeMiddleware, metrics=metrics, store_kind=settings.store_kind)
+    install_handlers(app)
+    app.include_router(router)
+    return app
+
+
+async def _shared_choice(store: SessionStore) -> ModelChoice | None:
+    try:
+        raw = await store.load_active_model()
+    except StoreError as exc:
+        log.warning("session store not reachable at start (%s); serving the configured model", exc)
+        return None
+    if raw is None:
+        return None
+    try:
+        return ModelChoice.from_bytes(raw)
+    except CairnError as exc:
+        log.error("ignoring the shared model choice: %s", exc)
+        return None
+
+
+def _collect(service: Service) -> None:
+    m = service.metrics
+    m.active_model.clear()
+    if not service.active.ready:
+        return
+    model, choice = service.active.current
+    m.active_model.set((choice.name, choice.version, choice.recommender), 1.0)
+    m.gru_batches.set((), float(model.batcher.batches))
+    m.gru_batched_clicks.set((), float(model.batcher.clicks))
+
+
+def app_from_environment() -> FastAPI:
+    """Factory for uvicorn worker processes: settings from the environment `cairn serve` prepared."""
+    return create_app(load_settings())

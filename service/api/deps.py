@@ -1,0 +1,31 @@
+"""What route handlers receive: the service's parts, opened by the app's lifespan (never module globals)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Annotated
+
+from fastapi import Depends, Request
+
+from service.api.metrics import ServiceMetrics
+from service.config import Settings
+from service.runtime.active import ActiveModel
+from service.runtime.visits import Visits
+from service.store.base import SessionStore
+
+
+@dataclass
+class Service:
+    settings: Settings
+    store: SessionStore
+    active: ActiveModel
+    visits: Visits
+    metrics: ServiceMetrics
+
+
+async def get_service(request: Request) -> Service:
+    # async: FastAPI runs a plain `def` dependency in a worker thread, a hop on every request.
+    return request.app.state.service
+
+
+ServiceDep = Annotated[Service, Depends(get_service)]

@@ -1,0 +1,232 @@
+"""The HTTP routes. Handlers validate (through the schemas), call the visit logic, and answer JSON.
+
+Answers with recommendations are serialised here directly: the response model documents them in
+the OpenAPI page, and skipping its per-request re-validation keeps the click path short.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import hmac
+import json
+import os
+import time
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Path, Query, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import Response
+from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+from pydantic import ValidationError
+
+from service.api.deps import ServiceDep
+from service.api.errors import ApiError
+from service.api.metrics import CONTENT_TYPE
+from service.api.schemas import (
+    BUDGET_MAX,
+    BUDGET_MIN,
+    COUNT_MAX,
+    COUNT_MIN,
+    SESSION_ID_CHARS,
+    SESSION_ID_MAX,
+    SESSION_ID_PATTERN,
+    ActiveModelAnswer,
+    ClickRequest,
+    ErrorAnswer,
+    ModelChoiceBody,
+    ModelsAnswer,
+    RecommendationAnswer,
+)
+from service.artifacts import list_artifacts
+from service.errors import ArtifactError, CairnError, StoreError
+from service.runtime.active import ModelChoice
+from service.runtime.visits import Answer, Timing
+
+router = APIRouter()
+_NO_STORE = {"cache-control": "no-store"}
+_bearer = HTTPBearer(auto_error=False, description="CAIRN_ADMIN_TOKEN")
+_ERRORS: dict[int | str, dict[str, Any]] = {code: {"model": ErrorAnswer} for code in (400, 413, 422, 503)}
+
+SessionId = Annotated[
+    str,
+    Path(
+        min_length=1,
+        max_length=SESSION_ID_MAX,
+        pattern=SESSION_ID_PATTERN,
+        description=f"opaque visit id: 1-{SESSION_ID_MAX} {SESSION_ID_CHARS}",
+    ),
+]
+
+
+def _timing(request: Request) -> Timing:
+    return request.state.timing
+
+
+def _answer(request: Request, session_id: str, answer: Answer) -> Response:
+    timing = _timing(request)
+    request.state.served_by = answer.served_by  # the edge middleware records these once
+    request.state.fallback_reason = answer.fallback_reason
+    body = {
+        "session_id": session_id,
+        "items": [{"item_id": i, "score": s} for i, s in zip(answer.item_ids, answer.scores)],
+        "served_by": answer.served_by,
+        "model_version": answer.model_version,
+        "fallback_reason": answer.fallback_reason,
+        "took_ms": round((time.perf_counter() - timing.started) * 1e3, 3),
+        "sequence": answer.sequence,
+        "duplicate": answer.duplicate,
+    }
+    # A visit's list is personal: no shared cache on the way may keep it (RFC 9111, section 5.2.2.5).
+    return Response(json.dumps(body, separators=(",", ":")), media_type="application/json", headers=_NO_STORE)
+
+
+@router.post(
+    "/v1/sessions/{session_id}/clicks",
+    response_model=RecommendationAnswer,
+    responses=_ERRORS,
+    summary="Record a click and get the next recommendations",
+    tags=["sessions"],
+)
+async def post_click(session_id: SessionId, click: ClickRequest, request: Request, service: ServiceDep) -> Response:
+    settings = service.settings
+    answer = await service.visits.click(
+        session_id,
+        click.item_id,
+        click.event_id,
+        click.count or settings.default_count,
+        click.exclude_seen,
+        (click.budget_ms or settings.default_budget_ms) / 1e3,
+        _timing(request),
+    )
+    return _answer(request, session_id, answer)
+
+
+@router.get(
+    "/v1/sessions/{session_id}/recommendations",
+    response_model=RecommendationAnswer,
+    responses=_ERRORS,
+    summary="The visit's current recommendations, without a new click",
+    tags=["sessions"],
+)
+async def get_recommendations(
+    session_id: SessionId,
+    request: Request,
+    service: ServiceDep,
+    count: Annotated[int | None, Query(ge=COUNT_MIN, le=COUNT_MAX)] = None,
+    exclude_seen: bool = True,
+    budget_ms: Annotated[int | None, Query(ge=BUDGET_MIN, le=BUDGET_MAX)] = None,
+) -> Response:
+    settings = service.settings
+    answer = await service.visits.current(
+        session_id,
+        count or settings.default_count,
+        exclude_seen,
+        (budget_ms or settings.default_budget_ms) / 1e3,
+        _timing(request),
+    )
+    return _answer(request, session_id, answer)
+
+
+@router.delete(
+    "/v1/sessions/{session_id}",
+    status_code=204,
+    responses=_ERRORS,
+    summary="Forget a visit (idempotent)",
+    tags=["sessions"],
+)
+async def delete_session(session_id: SessionId, request: Request, service: ServiceDep) -> Response:
+    try:
+        await service.visits.forget(session_id, _timing(request))
+    except StoreError as exc:
+        raise ApiError(503, "store_unavailable", f"the session store failed: {exc}") from exc
+    return Response(status_code=204)
+
+
+def _active_answer(choice: ModelChoice) -> dict[str, str]:
+    return {"name": choice.name, "version": choice.version, "recommender": choice.recommender, "model_version": choice.tag}
+
+
+@router.get("/v1/models", response_model=ModelsAnswer, summary="Artifacts in the model store, and the active one", tags=["models"])
+async def get_models(service: ServiceDep) -> dict[str, Any]:
+    _, choice = service.active.current
+    listings = await asyncio.to_thread(list_artifacts, service.settings.model_store)
+    artifacts = []
+    for a in listings:
+        m = a.manifest or {}
+        artifacts.append(
+            {
+                "name": a.name,
+                "version": a.version,
+                "verified": a.problem is None,
+                "problem": a.problem,
+                "active": (a.name, a.version) == (choice.name, choice.version),
+                "created_at": m.get("created_at"),
+                "data_fingerprint": m.get("data_fingerprint"),
+                "metrics": m.get("metrics") or {},
+                "hyperparameters": m.get("hyperparameters") or {},
+            }
+        )
+    return {"active": _active_answer(choice), "artifacts": artifacts}
+
+
+@router.put(
+    "/v1/models/active",
+    response_model=ActiveModelAnswer,
+    responses={code: {"model": ErrorAnswer} for code in (401, 403, 404, 409, 422, 503)},
+    summary="Switch the serving artifact (and recommender) at run time",
+    tags=["models"],
+    openapi_extra={"requestBody": {"required": True, "content": {"application/json": {"schema": ModelChoiceBody.model_json_schema()}}}},
+)
+async def put_active_model(
+    request: Request,
+    service: ServiceDep,
+    credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
+) -> dict[str, str]:
+    token = service.settings.admin_token
+    if token is None:
+        raise ApiError(403, "disabled", "model switching is disabled: the service runs without CAIRN_ADMIN_TOKEN")
+    # Constant-time comparison, so response time does not reveal how much of a guess was right.
+    if credentials is None or not hmac.compare_digest(credentials.credentials.encode(), token.get_secret_value().encode()):
+        raise ApiError(401, "unauthorized", "a valid bearer token is needed", "authorization", {"WWW-Authenticate": "Bearer"})
+    # The body is read only after the token checks out (auth first, then validation).
+    try:
+        body = ModelChoiceBody.model_validate_json(await request.body())
+    except ValidationError as exc:
+        raise RequestValidationError([{**e, "loc": ("body", *e["loc"])} for e in exc.errors(include_url=False)]) from None
+    _, current = service.active.current
+    choice = ModelChoice(body.name, body.version, body.recommender or current.recommender)
+    try:
+        await service.active.switch(choice)
+    except ArtifactError as exc:
+        if not (service.settings.model_store / choice.name / choice.version).is_dir():
+            raise ApiError(404, "unknown_artifact", f"no artifact {choice.tag} in the model store", "version") from exc
+        raise ApiError(409, "artifact_refused", f"{choice.tag} failed verification, still serving {current.tag}: {exc}") from exc
+    except StoreError as exc:
+        raise ApiError(503, "store_unavailable", f"could not share the choice, still serving {current.tag}: {exc}") from exc
+    except CairnError as exc:
+        raise ApiError(422, "invalid_request", str(exc), "recommender") from exc
+    return _active_answer(choice)
+
+
+@router.get("/healthz", summary="The process is alive", tags=["operations"])
+async def healthz() -> dict[str, Any]:
+    return {"status": "ok", "pid": os.getpid()}
+
+
+@router.get("/readyz", summary="Model loaded and session store reachable", tags=["operations"])
+async def readyz(service: ServiceDep) -> Response:
+    model_ready = service.active.ready
+    try:
+        await service.store.ping()
+        store_ready = True
+    except StoreError:
+        store_ready = False
+    body: dict[str, Any] = {"ready": model_ready and store_ready, "model": model_ready, "store": store_ready, "pid": os.getpid()}
+    if model_ready:
+        body["active"] = _active_answer(service.active.current[1])
+    return Response(json.dumps(body), status_code=200 if body["ready"] else 503, media_type="application/json")
+
+
+@router.get("/metrics", summary="Prometheus text format 0.0.4", tags=["operations"])
+async def metrics(service: ServiceDep) -> Response:
+    return Response(service.metrics.render(), media_type=CONTENT_TYPE)

@@ -1,0 +1,101 @@
+"""Request and response bodies of the HTTP API (pydantic), validated at the edge.
+
+Session ids are opaque to the service: 1-128 characters from SESSION_ID_CHARS (letters, digits and
+`-_.:`), so they are safe in store keys, logs and URLs without escaping.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictInt, StringConstraints, field_validator
+
+SESSION_ID_PATTERN = r"^[A-Za-z0-9._:-]+$"
+SESSION_ID_CHARS = "letters, digits and - _ . :"
+SESSION_ID_MAX = 128
+ITEM_ID_MAX = 256
+EVENT_ID_MAX = 128
+COUNT_MIN, COUNT_MAX = 1, 100
+BUDGET_MIN, BUDGET_MAX = 1, 10_000
+
+_Int64 = Annotated[StrictInt, Field(ge=-(2**63), le=2**63 - 1)]
+ItemId = Annotated[str, StringConstraints(strict=True, min_length=1, max_length=ITEM_ID_MAX)] | _Int64
+EventId = Annotated[str, StringConstraints(strict=True, min_length=1, max_length=EVENT_ID_MAX)] | _Int64
+Count = Annotated[StrictInt, Field(ge=COUNT_MIN, le=COUNT_MAX, description="items to return")]
+BudgetMs = Annotated[StrictInt, Field(ge=BUDGET_MIN, le=BUDGET_MAX, description="time budget of this request in ms")]
+
+
+class ClickRequest(BaseModel):
+    """One click of a visit."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    item_id: ItemId = Field(description="the clicked item; an integer is taken as its decimal string")
+    event_id: EventId | None = Field(None, description="client id of this click; a replayed one is not applied twice")
+    count: Count | None = None
+    exclude_seen: StrictBool = Field(True, description="leave out items the visit has clicked")
+    budget_ms: BudgetMs | None = None
+
+    @field_validator("item_id", "event_id", mode="after")
+    @classmethod
+    def _as_text(cls, value: str | int | None) -> str | None:
+        return None if value is None else str(value)
+
+
+class ScoredItem(BaseModel):
+    item_id: str
+    score: float
+
+
+class RecommendationAnswer(BaseModel):
+    session_id: str
+    items: list[ScoredItem]
+    served_by: str = Field(description="gru, neighbours or popularity")
+    model_version: str = Field(description="name/version of the artifact that answered")
+    fallback_reason: str | None = Field(
+        description="why the active recommender did not answer: unknown_item, no_history, deadline, model_error, store_unavailable"
+    )
+    took_ms: float
+    sequence: int = Field(description="clicks this visit has applied")
+    duplicate: bool = Field(False, description="true when the click's event_id was applied before; nothing was applied now")
+
+
+class ModelChoiceBody(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+    name: Annotated[str, StringConstraints(strict=True, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")]
+    version: Annotated[str, StringConstraints(strict=True, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")]
+    recommender: Annotated[str, StringConstraints(strict=True, pattern=r"^(gru|neighbours|popularity)$")] | None = Field(
+        None, description="gru, neighbours or popularity; unset: keep the current one"
+    )
+
+
+class ActiveModelAnswer(BaseModel):
+    name: str
+    version: str
+    recommender: str
+    model_version: str
+
+
+class ArtifactEntry(BaseModel):
+    name: str
+    version: str
+    verified: bool
+    problem: str | None
+    active: bool
+    created_at: str | None
+    data_fingerprint: str | None
+    metrics: dict[str, Any]
+    hyperparameters: dict[str, Any]
+
+
+class ModelsAnswer(BaseModel):
+    active: ActiveModelAnswer
+    artifacts: list[ArtifactEntry]
+
+
+class ErrorAnswer(BaseModel):
+    error: str
+    message: str
+    field: str | None
+    status: int

@@ -1,0 +1,99 @@
+"""`cairn serve`: the HTTP service on uvicorn (uvloop, httptools).
+
+Flags override the CAIRN_ environment variables (see service/config.py for all of them). Before
+uvicorn starts, the settings, the artifact they name and the port are checked here, so a bad one
+stops start-up with one line naming it. With --workers N > 1, uvicorn runs N processes that share
+one listening socket and the Redis store; each rebuilds the same settings from the environment.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import logging
+import socket
+
+from service.config import RECOMMENDERS, Settings, SettingsError, export_environment, load_settings
+from service.errors import ArtifactError
+
+# flag -> settings field
+_FLAGS = {
+    "--host": "host",
+    "--port": "port",
+    "--workers": "workers",
+    "--model": "model",
+    "--model-store": "model_store",
+    "--model-name": "model_name",
+    "--model-version": "model_version",
+    "--store": "store",
+    "--log-level": "log_level",
+}
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--host", help="address to listen on (CAIRN_HOST, default 127.0.0.1)")
+    parser.add_argument("--port", type=int, help="port to listen on (CAIRN_PORT, default 8000)")
+    parser.add_argument("--workers", type=int, help="worker processes; more than one needs a redis:// store (CAIRN_WORKERS, default 1)")
+    parser.add_argument("--model", choices=RECOMMENDERS, help="which recommender answers (CAIRN_MODEL, default gru)")
+    parser.add_argument("--model-store", help="artifacts folder (CAIRN_MODEL_STORE, default model_store/)")
+    parser.add_argument("--model-name", help="artifact name (CAIRN_MODEL_NAME; default: the only name in the store)")
+    parser.add_argument("--model-version", help="artifact version (CAIRN_MODEL_VERSION; default: the newest)")
+    parser.add_argument("--store", help="'memory' or redis://host:port/db (CAIRN_STORE, default memory)")
+    parser.add_argument("--log-level", choices=("debug", "info", "warning", "error"), help="(CAIRN_LOG_LEVEL, default info)")
+    parser.add_argument(
+        "--access-log", action="store_true", default=None, help="log each request line; it shows session ids (CAIRN_ACCESS_LOG)"
+    )
+
+
+def settings_from_args(args: argparse.Namespace) -> Settings:
+    fields = {**_FLAGS, "--access-log": "access_log"}
+    overrides = {field: getattr(args, field, None) for field in fields.values()}
+    return load_settings(overrides, flags={field: flag for flag, field in fields.items()})
+
+
+def preflight(settings: Settings) -> None:
+    """Fail now, with one line, on what would otherwise fail inside every worker."""
+    from service.artifacts import verify_artifact
+    from service.runtime.active import artifact_path, resolve_choice
+    from service.store.base import open_store
+
+    choice = resolve_choice(settings)
+    try:
+        verify_artifact(artifact_path(settings, choice.name, choice.version))
+    except ArtifactError as exc:
+        raise SettingsError(f"artifact {choice.tag} cannot be served: {exc}") from exc
+    open_store(settings)  # parses the store URL; connects nothing
+    with socket.socket(socket.AF_INET6 if ":" in settings.host else socket.AF_INET, socket.SOCK_STREAM) as probe:
+        probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)  # as uvicorn binds
+        try:
+            probe.bind((settings.host, settings.port))
+        except OSError as exc:
+            raise SettingsError(f"--port {settings.port} on {settings.host}: cannot listen ({exc.strerror})") from exc
+
+
+def run(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    settings = settings_from_args(args)
+    preflight(settings)
+    logging.basicConfig(level=settings.log_level.upper(), format="%(asctime)s %(levelname)s %(name)s[%(process)d]: %(message)s")
+    options = {
+        "host": settings.host,
+        "port": settings.port,
+        "loop": "uvloop" if importlib.util.find_spec("uvloop") else "asyncio",
+        "http": "httptools",
+        "lifespan": "on",
+        "log_config": None,  # uvicorn's loggers go to the root handler configured above
+        "log_level": settings.log_level,
+        "access_log": settings.access_log,
+        "server_header": False,
+        "timeout_graceful_shutdown": 5,
+    }
+    if settings.workers == 1:
+        from service.api.app import create_app
+
+        uvicorn.run(create_app(settings), **options)
+    else:
+        export_environment(settings)  # spawned workers rebuild the same settings from it
+        uvicorn.run("service.api.app:app_from_environment", factory=True, workers=settings.workers, **options)
+    return 0

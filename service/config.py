@@ -1,0 +1,158 @@
+"""The service's settings: one pydantic-settings object, the only reader of the environment.
+
+Every knob is an environment variable with the `CAIRN_` prefix (`model_store` <- `CAIRN_MODEL_STORE`);
+`cairn serve` flags override them. A bad value stops start-up with one line that names the
+setting and the value (`SettingsError`), never a traceback.
+"""
+
+from __future__ import annotations
+
+import difflib
+import os
+import re
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import Field, SecretStr, ValidationError, field_validator, model_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+from service.errors import CairnError
+
+ENV_PREFIX = "CAIRN_"
+RECOMMENDERS = ("gru", "neighbours", "popularity")
+ARTIFACT_PART = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")  # as service.artifacts accepts
+_MIN_TOKEN = 16  # shorter admin tokens are guessable placeholders (common practice)
+
+
+class SettingsError(CairnError):
+    """A setting with a value the service cannot run with."""
+
+
+class Settings(BaseSettings):
+    model_config = SettingsConfigDict(env_prefix=ENV_PREFIX, extra="forbid", frozen=True)
+
+    # Which recommender answers, and from which artifact.
+    model: Literal["gru", "neighbours", "popularity"] = "gru"
+    model_store: Path = Path("model_store")  # folder of <name>/<version>/ artifacts
+    model_name: str | None = None  # default: the only name in the store
+    model_version: str | None = None  # default: that name's newest version
+    # Session store: "memory" (in this process) or a redis:// URL shared by workers and replicas.
+    store: str = "memory"
+    admin_token: SecretStr | None = None  # bearer token for PUT /v1/models/active; unset: switching disabled
+
+    # HTTP server.
+    host: str = "127.0.0.1"
+    port: int = Field(8000, ge=1, le=65535)
+    workers: int = Field(1, ge=1, le=64)
+    log_level: Literal["debug", "info", "warning", "error"] = "info"
+    access_log: bool = False  # uvicorn's access log shows session ids in paths; off unless asked for
+
+    # Sessions.
+    history_length: int = Field(20, ge=1, le=200)  # clicks kept per session (replayed on a model switch)
+    session_ttl_s: float = Field(1800.0, ge=0.05, le=30 * 86400)  # inactivity timeout, 30 min (common practice)
+    memory_max_sessions: int = Field(100_000, ge=1)  # memory store: least recently used beyond this are dropped
+    event_memory: int = Field(16, ge=0, le=255)  # recent event_ids kept per session for de-duplication
+
+    # Answers.
+    default_count: int = Field(10, ge=1, le=100)  # items per answer when a request does not say
+    default_budget_ms: int = Field(1000, ge=1, le=10_000)  # time budget when a request does not say
+
+    # Model runtime.
+    ort_threads: int = Field(1, ge=1, le=64)  # ONNX Runtime intra-op threads of the one step session
+    max_batch: int = Field(64, ge=1, le=1024)  # most clicks the GRU runner scores in one call
+    model_poll_s: float = Field(0.5, ge=0.05, le=10.0)  # how often workers read the shared active-model choice
+
+    # Redis.
+    redis_pool_size: int = Field(32, ge=1, le=10_000)  # connections per worker (one bounded pool)
+    redis_timeout_s: float = Field(0.25, gt=0, le=60)  # per command
+    redis_connect_timeout_s: float = Field(1.0, gt=0, le=60)
+    redis_pool_timeout_s: float = Field(0.5, gt=0, le=60)  # wait for a free pooled connection
+    redis_prefix: str = Field("cairn:", pattern=r"^[A-Za-z0-9:._-]{0,32}$")
+
+    @field_validator("store")
+    @classmethod
+    def _store_kind(cls, value: str) -> str:
+        if value == "memory" or value.startswith(("redis://", "rediss://", "unix://")):
+            return value
+        raise ValueError("use 'memory' or a redis://host:port/db URL")
+
+    @field_validator("model_name", "model_version")
+    @classmethod
+    def _artifact_part(cls, value: str | None) -> str | None:
+        if value in (None, ""):
+            return None
+        if not ARTIFACT_PART.fullmatch(value):
+            raise ValueError("use 1-64 letters, digits, '.', '_' or '-', starting with a letter or digit")
+        return value
+
+    @field_validator("admin_token")
+    @classmethod
+    def _token_strength(cls, value: SecretStr | None) -> SecretStr | None:
+        if value is None or value.get_secret_value() == "":
+            return None
+        if len(value.get_secret_value()) < _MIN_TOKEN:
+            raise ValueError(f"shorter than {_MIN_TOKEN} characters; use a long random token")
+        return value
+
+    @model_validator(mode="after")
+    def _workers_need_shared_store(self) -> Settings:
+        if self.workers > 1 and self.store == "memory":
+            raise ValueError(
+                f"{self.workers} workers with CAIRN_STORE=memory would each keep their own sessions; "
+                "use a redis:// store or one worker"
+            )
+        return self
+
+    @property
+    def store_kind(self) -> str:
+        return "memory" if self.store == "memory" else "redis"
+
+
+def load_settings(overrides: dict[str, Any] | None = None, flags: dict[str, str] | None = None) -> Settings:
+    """Settings from the environment, `overrides` (field -> value, e.g. from CLI flags) winning.
+
+    `flags` maps a field to the flag it came from, so an error names what the user typed.
+    """
+    overrides = {k: v for k, v in (overrides or {}).items() if v is not None}
+    unknown = sorted(k for k in os.environ if k.startswith(ENV_PREFIX) and k[len(ENV_PREFIX) :].lower() not in Settings.model_fields)
+    if unknown:
+        # A misspelt setting would otherwise be ignored silently, and the default used in its place.
+        known = [f"{ENV_PREFIX}{f.upper()}" for f in Settings.model_fields]
+        close = difflib.get_close_matches(unknown[0], known, n=1)
+        hint = f" (did you mean {close[0]}?)" if close else ""
+        raise SettingsError(f"{unknown[0]}={os.environ[unknown[0]]!r}: no such setting{hint}")
+    try:
+        return Settings(**overrides)
+    except ValidationError as exc:
+        raise SettingsError(_one_line(exc, overrides, flags or {})) from None
+
+
+def _one_line(exc: ValidationError, overrides: dict[str, Any], flags: dict[str, str]) -> str:
+    parts = []
+    for err in exc.errors(include_url=False):
+        loc = [str(p) for p in err.get("loc", ())]
+        field = loc[0] if loc else ""
+        msg = err.get("msg", "invalid").removeprefix("Value error, ")
+        if not field:  # a rule across fields; its message names them
+            parts.append(msg)
+            continue
+        name = flags[field] if field in overrides and field in flags else f"{ENV_PREFIX}{field.upper()}"
+        value = overrides.get(field, err.get("input"))
+        shown = "<hidden>" if field == "admin_token" else repr(value)
+        parts.append(f"{name}={shown}: {msg}")
+    return "; ".join(parts) or "invalid settings"
+
+
+def export_environment(settings: Settings) -> None:
+    """Write settings back as CAIRN_ variables, so worker processes spawned later rebuild the same object."""
+    for name in Settings.model_fields:
+        value = getattr(settings, name)
+        key = f"{ENV_PREFIX}{name.upper()}"
+        if value is None:
+            os.environ.pop(key, None)
+        elif isinstance(value, SecretStr):
+            os.environ[key] = value.get_secret_value()
+        elif isinstance(value, bool):
+            os.environ[key] = "true" if value else "false"
+        else:
+            os.environ[key] = str(value)

@@ -1,0 +1,256 @@
+"""The model a process serves, and switching it at run time without dropping a request.
+
+A `LoadedModel` is one artifact made ready: its id map, the popularity and neighbour recommenders,
+and the GRU on one ONNX Runtime session behind the step batcher. `ActiveModel` holds the choice
+(artifact name, version, which recommender answers) and the model loaded for it. A switch loads
+and verifies the new artifact off the event loop first; an artifact that fails leaves the old one
+serving. Requests take the pair once at their start, so a switch never mixes two models within
+one answer; the old model is closed after the longest request budget has passed.
+
+With a shared store (Redis) the choice is kept in the store too, and a background task reads it
+every `model_poll_s`, so every worker and replica follows a switch made through any of them.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import gc
+import json
+import logging
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from service.artifacts import Artifact, list_artifacts, load_artifact
+from service.config import ARTIFACT_PART, RECOMMENDERS, Settings, SettingsError
+from service.errors import ArtifactError, CairnError, StoreError
+from service.runtime.batching import StepBatcher
+from service.runtime.onnx_step import OnnxStep, StepError
+from service.runtime.recommenders import GruRecommender, NeighbourRecommender, PopularityRecommender
+from service.store.base import SessionStore
+
+log = logging.getLogger("cairn.service")
+
+RETIRE_AFTER_S = 11.0  # longest request budget (10 s) and a margin: no request still uses the old model
+RETRY_REFUSED_S = 30.0  # a shared choice this process could not load is tried again after this long
+
+
+@dataclass(frozen=True)
+class ModelChoice:
+    name: str
+    version: str
+    recommender: str  # gru | neighbours | popularity
+
+    @property
+    def tag(self) -> str:
+        return f"{self.name}/{self.version}"
+
+    def to_bytes(self) -> bytes:
+        return json.dumps({"name": self.name, "version": self.version, "recommender": self.recommender}).encode()
+
+    @classmethod
+    def from_bytes(cls, raw: bytes) -> ModelChoice:
+        try:
+            data = json.loads(raw)
+            choice = cls(str(data["name"]), str(data["version"]), str(data["recommender"]))
+        except (ValueError, KeyError, TypeError) as exc:
+            raise StoreError(f"the stored active-model choice is unreadable ({type(exc).__name__})") from exc
+        if choice.recommender not in RECOMMENDERS:
+            raise StoreError(f"the stored active-model choice names recommender {choice.recommender!r}")
+        return choice
+
+
+class LoadedModel:
+    """One artifact ready to serve. Build with `load_model` (blocking), then `start` on the event loop."""
+
+    def __init__(self, artifact: Artifact, step: OnnxStep, max_batch: int) -> None:
+        if step.n_items != artifact.n_items:
+            raise ArtifactError(f"{artifact.path}: step graph scores {step.n_items} items, the id map has {artifact.n_items}")
+        self.artifact = artifact
+        self.tag = f"{artifact.name}/{artifact.version}"
+        self.item_index = artifact.item_index
+        self.item_ids = artifact.item_ids  # index -> id
+        self.popularity = PopularityRecommender(artifact.popularity)
+        self.neighbours = NeighbourRecommender(artifact.neighbour_items, artifact.neighbour_scores, self.popularity)
+        self.batcher = StepBatcher(step, max_batch=max_batch)
+        self.gru = GruRecommender(self.batcher)
+
+    def start(self) -> None:
+        self.batcher.start()
+
+    async def close(self) -> None:
+        await self.batcher.close()
+
+    def index_of(self, item_id: str) -> int:
+        """Index of an item id in this model's vocabulary, -1 when the model does not know it."""
+        return self.item_index.get(item_id, -1)
+
+    def known_indices(self, item_ids: tuple[str, ...]) -> list[int]:
+        """Indices of the known ids among `item_ids`, in order."""
+        index = self.item_index
+        return [i for i in (index.get(x, -1) for x in item_ids) if i >= 0]
+
+    def ids_of(self, indices: list[int]) -> list[str]:
+        ids = self.item_ids
+        return [ids[i] for i in indices]
+
+
+def load_model(path: Path, ort_threads: int, max_batch: int) -> LoadedModel:
+    """Verify and load an artifact and open its step graph. Blocking: run it off the event loop."""
+    artifact = load_artifact(path)
+    step = OnnxStep(artifact.step_graph, threads=ort_threads)
+    # One step now: a graph that cannot run fails the load, and the first visitor does not pay
+    # ONNX Runtime's first-call set-up.
+    try:
+        step.run(np.zeros(1, dtype=np.int64), step.zero_hidden(1), 1)
+    except StepError as exc:
+        raise ArtifactError(f"{path}: the step graph does not run ({exc})") from exc
+    return LoadedModel(artifact, step, max_batch)
+
+
+def resolve_choice(settings: Settings) -> ModelChoice:
+    """The artifact the settings name, with the defaults filled in; SettingsError when there is none."""
+    store = settings.model_store
+    listings = list_artifacts(store)
+    if not listings:
+        raise SettingsError(f"CAIRN_MODEL_STORE={str(store)!r}: no artifacts there (write one with `cairn export`)")
+    names = sorted({a.name for a in listings})
+    name = settings.model_name
+    if name is None:
+        if len(names) > 1:
+            raise SettingsError(f"CAIRN_MODEL_NAME is unset and {str(store)!r} holds {len(names)} names ({', '.join(names)}); set it")
+        name = names[0]
+    versions = [a.version for a in listings if a.name == name]  # newest last
+    if not versions:
+        raise SettingsError(f"CAIRN_MODEL_NAME={name!r}: not in {str(store)!r} (names: {', '.join(names)})")
+    version = settings.model_version or versions[-1]
+    if version not in versions:
+        raise SettingsError(f"CAIRN_MODEL_VERSION={version!r}: {name!r} has no such version (versions: {', '.join(versions)})")
+    return ModelChoice(name, version, settings.model)
+
+
+def artifact_path(settings: Settings, name: str, version: str) -> Path:
+    return Path(settings.model_store) / name / version
+
+
+class ActiveModel:
+    """The (model, choice) pair a process serves; `switch` changes it, `follow` tracks the shared choice."""
+
+    def __init__(self, settings: Settings, store: SessionStore) -> None:
+        self.settings = settings
+        self.store = store
+        self._current: tuple[LoadedModel, ModelChoice] | None = None
+        self._lock = asyncio.Lock()
+        self._retiring: set[asyncio.Task] = set()
+        self._retired: list[LoadedModel] = []
+        self._refused: tuple[bytes, float] | None = None  # shared choice that failed here, and when; not retried every poll
+
+    @property
+    def current(self) -> tuple[LoadedModel, ModelChoice]:
+        if self._current is None:
+            raise RuntimeError("no model loaded yet")
+        return self._current
+
+    @property
+    def ready(self) -> bool:
+        return self._current is not None
+
+    async def open(self, choice: ModelChoice) -> None:
+        await self._install(choice)
+
+    async def switch(self, choice: ModelChoice, publish: bool = True) -> None:
+        """Serve `choice` from now on; ArtifactError (the old model keeps serving) when it cannot be loaded.
+
+        With `publish`, the choice is written to the store after the artifact loaded and before it
+        serves here, so a choice that other workers follow is always one that loads.
+        """
+        before_swap = None
+        if publish:
+
+            async def before_swap() -> None:
+                await self.store.save_active_model(choice.to_bytes())
+
+        await self._install(choice, before_swap)
+        if publish:
+            self._refused = None
+
+    async def _install(self, choice: ModelChoice, before_swap: Callable[[], Awaitable[None]] | None = None) -> None:
+        if choice.recommender not in RECOMMENDERS:
+            raise SettingsError(f"recommender {choice.recommender!r}: use one of {', '.join(RECOMMENDERS)}")
+        for part in (choice.name, choice.version):
+            if not ARTIFACT_PART.fullmatch(part):  # also keeps a stored choice from naming a path outside the store
+                raise ArtifactError(f"artifact name or version {part!r}: use 1-64 letters, digits, '.', '_' or '-'")
+        async with self._lock:
+            old = self._current
+            if old is not None and old[0].tag == choice.tag:
+                if before_swap is not None:
+                    await before_swap()
+                self._current = (old[0], choice)  # same artifact (another recommender, or none): nothing to load
+            else:
+                path = artifact_path(self.settings, choice.name, choice.version)
+                if not path.is_dir():
+                    raise ArtifactError(f"no artifact {choice.tag} in {str(self.settings.model_store)!r}")
+                model = await asyncio.to_thread(load_model, path, self.settings.ort_threads, self.settings.max_batch)
+                model.start()
+                if before_swap is not None:
+                    try:
+                        await before_swap()
+                    except BaseException:
+                        await model.close()
+                        raise
+                self._current = (model, choice)
+                if old is not None:
+                    self._retire(old[0])
+                # The model's id map and tables are a few hundred thousand long-lived objects; the
+                # cyclic GC would walk them all in every full collection (tens of ms, the latency
+                # tail). Freezing moves them out of its sight; reference counting still frees them.
+                gc.freeze()
+        if old is None or old[1] != choice:
+            log.info("serving %s with %s", choice.tag, choice.recommender)
+
+    def _retire(self, model: LoadedModel) -> None:
+        async def later() -> None:
+            await asyncio.sleep(RETIRE_AFTER_S)
+            await model.close()
+            self._retired.remove(model)
+
+        self._retired.append(model)
+        task = asyncio.get_running_loop().create_task(later())
+        self._retiring.add(task)
+        task.add_done_callback(self._retiring.discard)
+
+    async def adopt_shared(self) -> None:
+        """Switch to the choice kept in the store if it differs from ours (one poll of `follow`)."""
+        raw = await self.store.load_active_model()
+        now = asyncio.get_running_loop().time()
+        if raw is None or (self._refused is not None and self._refused[0] == raw and now < self._refused[1] + RETRY_REFUSED_S):
+            return
+        choice = ModelChoice.from_bytes(raw)
+        if self._current is not None and self._current[1] == choice:
+            return
+        try:
+            await self._install(choice)
+        except CairnError as exc:
+            self._refused = (raw, now)
+            log.error("cannot follow the shared model choice %s: %s", choice.tag, exc)
+
+    async def follow(self) -> None:
+        """Poll the shared choice until cancelled; store trouble is logged and retried at the next poll."""
+        while True:
+            await asyncio.sleep(self.settings.model_poll_s)
+            try:
+                await self.adopt_shared()
+            except StoreError as exc:
+                log.warning("reading the shared model choice failed: %s", exc)
+
+    async def close(self) -> None:
+        for task in list(self._retiring):
+            task.cancel()
+        for model in list(self._retired):
+            await model.close()
+        self._retired.clear()
+        if self._current is not None:
+            await self._current[0].close()
+            self._current = None

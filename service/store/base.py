@@ -1,0 +1,51 @@
+"""The one interface of session stores, and opening the one the settings name.
+
+A store keeps opaque values (`service.store.state` encodes them) under session ids and writes with
+check-and-set: `save` lands only if the stored value still carries the token the caller read, so
+two concurrent clicks on one visit can never both land on the same old state (the loser re-reads
+and retries). Every write restarts the session's inactivity timeout. The store also keeps the
+active-model choice, so that every worker sharing the store follows one choice.
+"""
+
+from __future__ import annotations
+
+from typing import Protocol
+
+from service.config import Settings
+
+
+class SessionStore(Protocol):
+    kind: str  # "memory" or "redis"
+
+    async def load(self, session_id: str) -> bytes | None: ...
+
+    async def save(self, session_id: str, value: bytes, expected_token: bytes) -> bool: ...
+
+    async def delete(self, session_id: str) -> None: ...
+
+    async def load_active_model(self) -> bytes | None: ...
+
+    async def save_active_model(self, value: bytes) -> None: ...
+
+    async def ping(self) -> None: ...
+
+    async def close(self) -> None: ...
+
+
+def open_store(settings: Settings) -> SessionStore:
+    """The store of `settings.store`; nothing is connected yet (`ping` does that)."""
+    if settings.store == "memory":
+        from service.store.memory import MemoryStore
+
+        return MemoryStore(max_entries=settings.memory_max_sessions, ttl_s=settings.session_ttl_s)
+    from service.store.redis import RedisStore
+
+    return RedisStore(
+        settings.store,
+        ttl_s=settings.session_ttl_s,
+        pool_size=settings.redis_pool_size,
+        timeout_s=settings.redis_timeout_s,
+        connect_timeout_s=settings.redis_connect_timeout_s,
+        pool_timeout_s=settings.redis_pool_timeout_s,
+        prefix=settings.redis_prefix,
+    )

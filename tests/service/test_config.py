@@ -1,0 +1,103 @@
+"""Settings: CAIRN_ environment variables, flags over them, and one-line refusals of bad values."""
+
+from __future__ import annotations
+
+import argparse
+import os
+import socket
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from service.api import serve_cli
+from service.config import Settings, SettingsError, export_environment, load_settings
+
+
+def parse(argv: list[str]) -> argparse.Namespace:
+    parser = argparse.ArgumentParser()
+    serve_cli.configure(parser)
+    return parser.parse_args(argv)
+
+
+def test_defaults():
+    s = load_settings()
+    assert (s.model, s.store, s.port, s.workers, s.history_length, s.session_ttl_s) == ("gru", "memory", 8000, 1, 20, 1800.0)
+    assert s.model_store == Path("model_store") and s.admin_token is None and s.model_name is None
+
+
+def test_environment_then_flags(monkeypatch):
+    monkeypatch.setenv("CAIRN_MODEL", "neighbours")
+    monkeypatch.setenv("CAIRN_PORT", "9000")
+    monkeypatch.setenv("CAIRN_SESSION_TTL_S", "60")
+    monkeypatch.setenv("CAIRN_STORE", "redis://127.0.0.1:7000/2")
+    monkeypatch.setenv("CAIRN_REDIS_POOL_SIZE", "8")
+    s = serve_cli.settings_from_args(parse(["--port", "9100", "--workers", "3"]))
+    assert (s.model, s.port, s.workers, s.session_ttl_s, s.redis_pool_size) == ("neighbours", 9100, 3, 60.0, 8)
+    assert s.store_kind == "redis"
+
+
+@pytest.mark.parametrize(
+    "env, flags, named",
+    [
+        ({"CAIRN_MODEL": "bogus"}, [], "CAIRN_MODEL='bogus'"),
+        ({"CAIRN_STORE": "mysql://db"}, [], "CAIRN_STORE='mysql://db'"),
+        ({"CAIRN_SESSION_TTL_S": "-1"}, [], "CAIRN_SESSION_TTL_S='-1'"),
+        ({"CAIRN_HISTORY_LENGTH": "0"}, [], "CAIRN_HISTORY_LENGTH='0'"),
+        ({"CAIRN_MODEL_VERSION": "../v1"}, [], "CAIRN_MODEL_VERSION='../v1'"),
+        ({"CAIRN_ORT_THREADS": "many"}, [], "CAIRN_ORT_THREADS='many'"),
+        ({}, ["--port", "0"], "--port=0"),
+        ({}, ["--workers", "2"], "CAIRN_STORE=memory"),
+        ({"CAIRN_MODLE": "gru"}, [], "did you mean CAIRN_MODEL?"),
+    ],
+)
+def test_bad_values_fail_with_one_line_naming_them(monkeypatch, env, flags, named):
+    for k, v in env.items():
+        monkeypatch.setenv(k, v)
+    with pytest.raises(SettingsError) as info:
+        serve_cli.settings_from_args(parse(flags))
+    message = str(info.value)
+    assert named in message and "\n" not in message, message
+
+
+def test_a_short_token_is_refused_without_being_shown(monkeypatch):
+    monkeypatch.setenv("CAIRN_ADMIN_TOKEN", "hunter2")
+    with pytest.raises(SettingsError) as info:
+        load_settings()
+    assert "CAIRN_ADMIN_TOKEN=<hidden>" in str(info.value) and "hunter2" not in str(info.value)
+
+
+def test_export_environment_rebuilds_the_same_settings(monkeypatch, tmp_path):
+    s = Settings(model="popularity", model_store=tmp_path, store="redis://127.0.0.1:7/1", workers=2,
+                 admin_token="a-long-enough-admin-token", access_log=True, session_ttl_s=12.5)
+    saved = dict(os.environ)
+    try:
+        export_environment(s)
+        assert load_settings() == s
+    finally:
+        os.environ.clear()
+        os.environ.update(saved)
+
+
+def run_serve(args: list[str], env: dict[str, str], cwd: Path) -> subprocess.CompletedProcess:
+    clean = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
+    return subprocess.run([sys.executable, "-m", "service.cli", "serve", *args], env={**clean, **env}, cwd=cwd,
+                          capture_output=True, text=True, timeout=60)
+
+
+def test_cairn_serve_refuses_bad_settings_with_one_line(tmp_path, model_store):
+    r = run_serve([], {"CAIRN_MODEL": "bogus"}, tmp_path)
+    assert r.returncode == 2 and r.stderr.count("\n") == 1 and "CAIRN_MODEL='bogus'" in r.stderr, r.stderr
+    r = run_serve(["--model-store", str(tmp_path / "empty")], {}, tmp_path)
+    assert r.returncode == 2 and "CAIRN_MODEL_STORE" in r.stderr and "no artifacts" in r.stderr and r.stderr.count("\n") == 1
+    r = run_serve(["--model-store", str(model_store), "--model-version", "v7"], {}, tmp_path)
+    assert r.returncode == 2 and "CAIRN_MODEL_VERSION='v7'" in r.stderr and "v1, v2" in r.stderr, r.stderr
+    with socket.socket() as busy:
+        busy.bind(("127.0.0.1", 0))
+        busy.listen()
+        port = busy.getsockname()[1]
+        r = run_serve(["--model-store", str(model_store), "--model-version", "v0-broken", "--port", str(port)], {}, tmp_path)
+        assert r.returncode == 2 and "checksum" in r.stderr and r.stderr.count("\n") == 1, r.stderr
+        r = run_serve(["--model-store", str(model_store), "--model-version", "v1", "--port", str(port)], {}, tmp_path)
+        assert r.returncode == 2 and f"--port {port}" in r.stderr and r.stderr.count("\n") == 1, r.stderr

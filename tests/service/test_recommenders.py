@@ -1,0 +1,123 @@
+"""The run-time recommenders against plain references: sorting for popularity, the raw table for
+neighbours, and OnnxStep called one click at a time for the batched GRU runner."""
+
+from __future__ import annotations
+
+import asyncio
+
+import numpy as np
+import pytest
+
+from service.artifacts import load_artifact
+from service.runtime.batching import StepBatcher
+from service.runtime.onnx_step import OnnxStep
+from service.runtime.recommenders import GruRecommender, NeighbourRecommender, PopularityRecommender, without_seen
+
+
+def test_popularity_order_with_ties_is_stable():
+    counts = np.array([3, 9, 3, 1, 9, 0], dtype=np.float32)
+    pop = PopularityRecommender(counts)
+    reference = sorted(range(len(counts)), key=lambda i: (-counts[i], i))  # ties: lower index first
+    assert pop.top(6).items == reference
+    assert pop.top(3, seen={4}).items == [1, 0, 2]
+    assert pop.top(10).items == reference  # never more than there are
+    assert pop.top(2, seen={1}).scores == [9.0, 3.0]
+
+
+def test_neighbours_slice_rows_exclude_seen_and_top_up_from_popularity():
+    rows = np.array([[2, 1, -1], [0, -1, -1], [1, 0, 3], [-1, -1, -1]], dtype=np.int32)
+    scores = np.array([[0.9, 0.5, 0], [0.7, 0, 0], [0.8, 0.6, 0.1], [0, 0, 0]], dtype=np.float32)
+    pop = PopularityRecommender(np.array([1, 2, 3, 4], dtype=np.float32))  # order 3, 2, 1, 0
+    nb = NeighbourRecommender(rows, scores, pop)
+    r = nb.neighbours_of(0, 2)
+    assert r.items == [2, 1] and r.scores == pytest.approx([0.9, 0.5])
+    r = nb.neighbours_of(2, 3, seen=frozenset({1, 2}))
+    assert r.items == [0, 3]  # only two left once 1 and 2 are gone, and popularity has nothing else
+    r = nb.neighbours_of(1, 3, seen=frozenset({1}))
+    assert r.items == [0, 3, 2] and r.scores == pytest.approx([0.7, 0, 0])
+    r = nb.neighbours_of(3, 2)  # no neighbours at all: popularity
+    assert r.items == [3, 2]
+    assert asyncio.run(nb.rank(-1, 2)).items == [3, 2]
+
+
+def test_without_seen_keeps_order():
+    r = without_seen([5, 3, 8, 1], [4.0, 3.0, 2.0, 1.0], {3, 1}, 5)
+    assert r.items == [5, 8] and r.scores == [4.0, 2.0]
+    assert without_seen([5, 3, 8, 1], [4.0, 3.0, 2.0, 1.0], {3}, 2).items == [5, 8]
+    assert without_seen([5, 3, 8], [3.0, 2.0, 1.0], frozenset(), 2).items == [5, 3]
+
+
+@pytest.fixture(scope="module", params=[1, 2], ids=["one-layer", "two-layers"])
+def graph(request, tmp_path_factory):
+    from service.offline.export import write_random_artifact
+
+    path = write_random_artifact(tmp_path_factory.mktemp("rec"), "g", "v1", n_items=300, hidden_size=16, layers=request.param, seed=5)
+    return load_artifact(path), OnnxStep(path / "step.onnx")
+
+
+def test_batched_steps_equal_single_steps(graph):
+    artifact, step = graph
+    rng = np.random.default_rng(0)
+    items = rng.integers(0, artifact.n_items, size=40)
+    hiddens = rng.normal(size=(40, step.layers, step.hidden_size)).astype(np.float32)  # [clicks, L, H]
+    top_ns = rng.integers(1, 30, size=40)
+
+    async def go():
+        batcher = StepBatcher(step, max_batch=16)
+        batcher.start()
+        try:
+            results = await asyncio.gather(*(batcher.run(int(i), h, int(k)) for i, h, k in zip(items, hiddens, top_ns)))
+        finally:
+            await batcher.close()
+        return results, batcher.batches, batcher.clicks
+
+    results, batches, clicks = asyncio.run(go())
+    assert clicks == 40 and batches < 40  # waiting clicks shared calls
+    for (nh, top, sc), i, h, k in zip(results, items, hiddens, top_ns):
+        ref_h, ref_top, ref_sc = step.run(np.array([i], dtype=np.int64), h[:, None, :].copy(), int(k))  # B = 1
+        assert np.allclose(nh, ref_h[:, 0, :], atol=1e-6)
+        assert top.tolist() == ref_top[0].tolist()
+        assert np.allclose(sc, ref_sc[0], atol=1e-5)
+
+
+def test_gru_rank_repeats_the_last_step(graph):
+    artifact, step = graph
+
+    async def go():
+        batcher = StepBatcher(step)
+        batcher.start()
+        gru = GruRecommender(batcher)
+        try:
+            state = gru.start()
+            state = await gru.advance(state, 3)
+            state, ranked = await gru.step(state, 7, 5, seen=frozenset({3, 7}))
+            again = await gru.rank(state, 5, seen=frozenset({3, 7}))
+            with pytest.raises(ValueError):
+                await gru.rank(gru.start(), 5)
+        finally:
+            await batcher.close()
+        return ranked, again
+
+    ranked, again = asyncio.run(go())
+    h = step.zero_hidden(1)
+    h, _, _ = step.run(np.array([3]), h, 1)
+    _, top, _ = step.run(np.array([7]), h, artifact.n_items)
+    reference = [i for i in top[0].tolist() if i not in (3, 7)][:5]
+    assert ranked.items == again.items == reference
+
+
+def test_closed_batcher_refuses_work(graph):
+    from service.runtime.onnx_step import StepError
+
+    _, step = graph
+
+    async def go():
+        batcher = StepBatcher(step)
+        with pytest.raises(StepError):
+            await batcher.run(0, np.zeros((step.layers, step.hidden_size), np.float32), 1)  # never started
+        batcher.start()
+        await batcher.close()
+        with pytest.raises(StepError):
+            await batcher.run(0, np.zeros((step.layers, step.hidden_size), np.float32), 1)
+
+    asyncio.run(go())

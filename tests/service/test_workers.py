@@ -1,0 +1,115 @@
+"""`cairn serve --workers 2` as a subprocess sharing a real Redis: one visit across both workers,
+and a model switch through one worker that the other follows within a second."""
+
+from __future__ import annotations
+
+import os
+import re
+import socket
+import subprocess
+import sys
+import time
+from collections import Counter
+
+import httpx
+import pytest
+
+CLICKS = [f"sku-{i:06d}" for i in (5, 50, 150, 250, 350, 450, 45, 145, 245, 345, 445, 40)]
+
+
+def fresh(url: str) -> httpx.Client:
+    # No keep-alive: every request is a new connection, so the kernel hands it to either worker.
+    return httpx.Client(base_url=url, timeout=10, limits=httpx.Limits(max_keepalive_connections=0))
+
+
+def worker_of_each_scrape(url: str, want: int = 2, tries: int = 200) -> dict[str, str]:
+    """pid -> that worker's /metrics text, scraping until `want` workers answered."""
+    seen: dict[str, str] = {}
+    with fresh(url) as c:
+        for _ in range(tries):
+            text = c.get("/metrics").text
+            pid = re.search(r'cairn_worker_info\{pid="(\d+)"\} 1', text).group(1)
+            seen[pid] = text
+            if len(seen) >= want:
+                break
+    return seen
+
+
+def clicks_served(metrics_text: str) -> int:
+    m = re.search(r'cairn_http_requests_total\{route="/v1/sessions/\{session_id\}/clicks",method="POST",status="200"\} (\d+)', metrics_text)
+    return int(m.group(1)) if m else 0
+
+
+@pytest.fixture()
+def two_workers(model_store, redis_url, tmp_path, token):
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
+    env.update(
+        CAIRN_STORE=redis_url,
+        CAIRN_MODEL_STORE=str(model_store),
+        CAIRN_MODEL_NAME="shop",
+        CAIRN_MODEL_VERSION="v1",
+        CAIRN_ADMIN_TOKEN=token,
+        CAIRN_REDIS_PREFIX=f"w{os.getpid()}:",
+        CAIRN_LOG_LEVEL="warning",
+    )
+    log = open(tmp_path / "serve.log", "w+")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "service.cli", "serve", "--workers", "2", "--port", str(port)],
+        env=env, cwd=tmp_path, stdout=log, stderr=subprocess.STDOUT,
+    )
+    url = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                if len(worker_of_each_scrape(url, tries=40)) == 2:
+                    break
+            except httpx.TransportError:
+                pass
+            if proc.poll() is not None or time.monotonic() > deadline:
+                log.seek(0)
+                pytest.fail(f"cairn serve --workers 2 did not come up:\n{log.read()}")
+            time.sleep(0.1)
+        yield url
+    finally:
+        proc.terminate()
+        try:
+            proc.wait(timeout=15)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+        log.close()
+
+
+def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, sid, token):
+    url = two_workers
+    session = sid("w")
+    before = {pid: clicks_served(text) for pid, text in worker_of_each_scrape(url).items()}
+    with fresh(url) as c:
+        for n, item in enumerate(CLICKS[:8], start=1):
+            answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
+            assert answer["sequence"] == n and answer["served_by"] == "gru"
+            assert [i["item_id"] for i in answer["items"]] == offline["v1"].top(CLICKS[:n], count=6)[0]
+    after = {pid: clicks_served(text) for pid, text in worker_of_each_scrape(url).items()}
+    served = Counter({pid: after[pid] - before.get(pid, 0) for pid in after})
+    assert sum(served.values()) == 8
+    assert len([pid for pid, n in served.items() if n > 0]) == 2, f"one worker served the whole visit: {served}"
+
+    with fresh(url) as c:
+        r = c.put("/v1/models/active", json={"name": "shop", "version": "v2"}, headers={"authorization": f"Bearer {token}"})
+        assert r.status_code == 200, r.text
+        switched_at = time.monotonic()
+        # Both workers serve v2 within a second (they poll the shared choice every 0.5 s).
+        following: dict[str, str] = {}
+        while time.monotonic() - switched_at < 1.0:
+            ready = c.get("/readyz").json()
+            following[str(ready["pid"])] = ready["active"]["version"]
+            if len(following) == 2 and set(following.values()) == {"v2"}:
+                break
+        assert len(following) == 2 and set(following.values()) == {"v2"}, following
+        for n, item in enumerate(CLICKS[8:], start=9):
+            answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
+            assert answer["sequence"] == n and answer["model_version"] == "shop/v2"
+            assert [i["item_id"] for i in answer["items"]] == offline["v2"].top(CLICKS[:n], count=6)[0]
