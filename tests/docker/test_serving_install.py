@@ -1,0 +1,113 @@
+"""The serving image's dependency list, checked without a container engine: it matches the
+package's core dependencies, and installed into a fresh virtual environment with the package
+(no extras, the offline code left out as the Dockerfile does) it serves a click with no torch.
+
+Slow (one pip install from the package index, tens of seconds); kept to one install.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import subprocess
+import sys
+import time
+import tomllib
+import urllib.error
+import urllib.request
+from pathlib import Path
+
+from packaging.requirements import Requirement
+
+from service.load.ports import free_loopback_port
+
+ROOT = Path(__file__).resolve().parents[2]
+REQUIREMENTS = ROOT / "docker" / "requirements-serve.txt"
+NOT_SERVING = ("offline", "bench", "load")  # what docker/Dockerfile removes before installing
+
+
+def _requirements() -> list[Requirement]:
+    lines = [ln.split("#", 1)[0].strip() for ln in REQUIREMENTS.read_text(encoding="utf-8").splitlines()]
+    return [Requirement(ln) for ln in lines if ln]
+
+
+def test_serving_pins_satisfy_the_core_dependencies_and_nothing_more() -> None:
+    # Requirement and specifier semantics from `packaging` (PEP 508, PEP 440).
+    core = [Requirement(r) for r in tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))["project"]["dependencies"]]
+    pinned = {r.name.lower(): r for r in _requirements()}
+    assert set(pinned) == {r.name.lower() for r in core}
+    for req in core:
+        pin = pinned[req.name.lower()]
+        [spec] = list(pin.specifier)
+        assert spec.operator == "==", pin
+        assert req.specifier.contains(spec.version), f"{pin} is outside pyproject's {req}"
+        assert str(pin.marker) == str(req.marker) if req.marker else pin.marker is None
+    assert not {"torch", "onnx", "polars"} & set(pinned)
+
+
+def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Path) -> None:
+    from service.offline.export import write_random_artifact
+
+    src = tmp_path / "src"
+    src.mkdir()
+    for name in ("pyproject.toml", "README.md"):
+        shutil.copy(ROOT / name, src / name)
+    shutil.copytree(ROOT / "service", src / "service", ignore=shutil.ignore_patterns("__pycache__", "*.pyc"))
+    for name in NOT_SERVING:
+        shutil.rmtree(src / "service" / name, ignore_errors=True)
+
+    venv = tmp_path / "venv"
+    subprocess.run([sys.executable, "-m", "venv", str(venv)], check=True, timeout=120)
+    py = venv / "bin" / "python"
+    install = subprocess.run(
+        [str(py), "-m", "pip", "install", "-q", "--disable-pip-version-check", "-r", str(REQUIREMENTS), str(src)],
+        capture_output=True,
+        text=True,
+        timeout=540,
+    )
+    assert install.returncode == 0, install.stdout[-3000:] + install.stderr[-3000:]
+    no_torch = subprocess.run([str(py), "-c", "import torch"], capture_output=True, text=True, timeout=60)
+    assert no_torch.returncode != 0 and "No module named 'torch'" in no_torch.stderr
+
+    store = tmp_path / "model_store"
+    write_random_artifact(store, "shop", "v1", n_items=50, hidden_size=8, neighbours=5, seed=0)
+    port = free_loopback_port()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
+    env.update(CAIRN_MODEL_STORE=str(store), CAIRN_MODEL="gru", CAIRN_STORE="memory")
+    log = open(tmp_path / "serve.log", "wb")
+    server = subprocess.Popen(
+        [str(venv / "bin" / "cairn"), "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "1"],
+        stdout=log, stderr=subprocess.STDOUT, env=env, cwd=tmp_path, start_new_session=True,
+    )  # fmt: skip
+    base = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            assert server.poll() is None, (tmp_path / "serve.log").read_text()
+            try:
+                with urllib.request.urlopen(f"{base}/healthz", timeout=2) as resp:
+                    if resp.status == 200:
+                        break
+            except (urllib.error.URLError, OSError):
+                pass
+            assert time.monotonic() < deadline, (tmp_path / "serve.log").read_text()
+            time.sleep(0.2)
+        body = json.dumps({"item_id": "sku-000007", "count": 3, "exclude_seen": False}).encode()
+        request = urllib.request.Request(
+            f"{base}/v1/sessions/fresh-venv-1/clicks", data=body, method="POST", headers={"Content-Type": "application/json"}
+        )
+        with urllib.request.urlopen(request, timeout=10) as resp:
+            answer = json.loads(resp.read())
+            assert resp.status == 200
+        assert answer["session_id"] == "fresh-venv-1"
+        assert answer["served_by"] == "gru" and answer["fallback_reason"] is None
+        assert len(answer["items"]) == 3
+    finally:
+        server.terminate()
+        try:
+            server.wait(timeout=15)
+        except subprocess.TimeoutExpired:
+            server.kill()
+            server.wait(timeout=5)
+        log.close()
