@@ -31,6 +31,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from service.artifacts import STEP_GRAPH
+from service.bench._common import MatVecFloor
 from service.offline.export import write_random_artifact
 from service.runtime.onnx_step import OnnxStep
 
@@ -39,27 +40,7 @@ EVICT_BYTES = 64 << 20
 TIGHT_BLOCK = 50
 
 
-class _Floor:
-    """NumPy matrix-vector scoring and top-k with the step's sizes, outputs prepared once."""
-
-    def __init__(self, n_items: int, size: int, batch: int, top_n: int, seed: int) -> None:
-        rng = np.random.default_rng(seed)
-        # O^T [D, n_items], the layout the step graph stores too and NumPy's fastest here.
-        self.output_t = (0.1 * rng.standard_normal((size, n_items))).astype(np.float32)
-        self.bias = (0.1 * rng.standard_normal(n_items)).astype(np.float32)  # [n_items]
-        self.features = rng.standard_normal((batch, size)).astype(np.float32)  # f [B, D]
-        self.scores = np.empty((batch, n_items), dtype=np.float32)
-        self.top_n = top_n
-
-    def __call__(self) -> np.ndarray:
-        s = np.matmul(self.features, self.output_t, out=self.scores)  # [B, n_items]
-        s += self.bias
-        top = np.argpartition(s, -self.top_n, axis=1)[:, -self.top_n :]  # [B, top_n], unordered
-        order = np.argsort(-np.take_along_axis(s, top, axis=1), axis=1)
-        return np.take_along_axis(top, order, axis=1)  # [B, top_n], best first
-
-
-def _measure(step: OnnxStep, floor: _Floor, batch: int, top_n: int, calls: int, evict: np.ndarray | None, seed: int) -> dict:
+def _measure(step: OnnxStep, floor: MatVecFloor, batch: int, top_n: int, calls: int, evict: np.ndarray | None, seed: int) -> dict:
     rng = np.random.default_rng(seed)
     items = rng.integers(0, step.n_items, size=(calls, batch)).astype(np.int64)  # [calls, B]
     hidden = step.zero_hidden(batch)  # [L, B, H]
@@ -117,7 +98,7 @@ def main(argv: list[str] | None = None) -> int:
         evict = np.zeros(EVICT_BYTES // 4, dtype=np.float32)
         # Batch 32 costs about ten times as much per call: fewer calls keep the run short.
         for batch, tight_calls, cold_calls in ((1, args.calls, args.cold_calls), (32, args.calls // 10, args.cold_calls // 3)):
-            floor = _Floor(args.items, args.hidden_size, batch, args.top, args.seed)
+            floor = MatVecFloor(args.items, args.hidden_size, batch, args.top, args.seed)
             _measure(step, floor, batch, args.top, max(20, tight_calls // 10), None, args.seed)  # warm-up, not reported
             results.append(_measure(step, floor, batch, args.top, max(20, tight_calls), None, args.seed + 1))
             results.append(_measure(step, floor, batch, args.top, max(20, cold_calls), evict, args.seed + 2))
