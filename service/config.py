@@ -36,7 +36,8 @@ class Settings(BaseSettings):
     model_store: Path = Path("model_store")  # folder of <name>/<version>/ artifacts
     model_name: str | None = None  # default: the only name in the store
     model_version: str | None = None  # default: that name's newest version
-    # Session store: "memory" (in this process) or a redis:// URL shared by workers and replicas.
+    # Session store: "memory" (in this process), a redis:// (rediss:// for TLS) URL shared by workers
+    # and replicas, or redis-cluster://host:port,host:port,... (rediss-cluster:// for TLS).
     store: str = "memory"
     admin_token: SecretStr | None = None  # bearer token for PUT /v1/models/active; unset: switching disabled
 
@@ -46,6 +47,8 @@ class Settings(BaseSettings):
     workers: int = Field(1, ge=1, le=64)
     log_level: Literal["debug", "info", "warning", "error"] = "info"
     access_log: bool = False  # uvicorn's access log shows session ids in paths; off unless asked for
+    tls_certfile: Path | None = None  # PEM certificate chain: serve HTTPS directly (else plain HTTP behind a TLS proxy)
+    tls_keyfile: Path | None = None  # its PEM private key
 
     # Sessions.
     history_length: int = Field(20, ge=1, le=200)  # clicks kept per session (replayed on a model switch)
@@ -55,7 +58,26 @@ class Settings(BaseSettings):
 
     # Answers.
     default_count: int = Field(10, ge=1, le=100)  # items per answer when a request does not say
-    default_budget_ms: int = Field(1000, ge=1, le=10_000)  # time budget when a request does not say
+    default_budget_ms: int = Field(50, ge=1, le=10_000)  # time budget when a request does not say
+
+    # Guards: deadlines and circuit breakers (service/resilience). false: none of it, to measure its cost.
+    guards: bool = True
+    latency_quantile: float = Field(0.95, gt=0, le=1)  # the model may start only if this quantile of its steps fits
+    latency_window: int = Field(256, ge=8, le=100_000)  # recent calls the quantile is taken over
+    latency_max_age_s: float = Field(30.0, gt=0, le=3600)  # older samples leave the window
+    # A breaker opens when, over `window_s`, at least `min_calls` calls were made and `failure_ratio`
+    # of them failed or timed out; after `cool_down_s` it lets `trial_calls` calls through, and
+    # closes when they all succeed.
+    model_breaker_window_s: float = Field(10.0, gt=0, le=3600)
+    model_breaker_min_calls: int = Field(20, ge=1, le=100_000)
+    model_breaker_failure_ratio: float = Field(0.5, gt=0, le=1)
+    model_breaker_cool_down_s: float = Field(5.0, ge=0, le=3600)
+    model_breaker_trial_calls: int = Field(3, ge=1, le=1000)
+    store_breaker_window_s: float = Field(10.0, gt=0, le=3600)
+    store_breaker_min_calls: int = Field(20, ge=1, le=100_000)
+    store_breaker_failure_ratio: float = Field(0.5, gt=0, le=1)
+    store_breaker_cool_down_s: float = Field(1.0, ge=0, le=3600)  # short: Redis back means sessions stored again soon
+    store_breaker_trial_calls: int = Field(3, ge=1, le=1000)
 
     # Model runtime.
     ort_threads: int = Field(1, ge=1, le=64)  # ONNX Runtime intra-op threads of the one step session
@@ -63,7 +85,7 @@ class Settings(BaseSettings):
     model_poll_s: float = Field(0.5, ge=0.05, le=10.0)  # how often workers read the shared active-model choice
 
     # Redis.
-    redis_pool_size: int = Field(32, ge=1, le=10_000)  # connections per worker (one bounded pool)
+    redis_pool_size: int = Field(32, ge=1, le=10_000)  # connections per worker (per cluster master; one bounded pool)
     redis_timeout_s: float = Field(0.25, gt=0, le=60)  # per command
     redis_connect_timeout_s: float = Field(1.0, gt=0, le=60)
     redis_pool_timeout_s: float = Field(0.5, gt=0, le=60)  # wait for a free pooled connection
@@ -74,7 +96,10 @@ class Settings(BaseSettings):
     def _store_kind(cls, value: str) -> str:
         if value == "memory" or value.startswith(("redis://", "rediss://", "unix://")):
             return value
-        raise ValueError("use 'memory' or a redis://host:port/db URL")
+        if value.startswith(CLUSTER_SCHEMES):
+            cluster_nodes(value)  # raises ValueError naming what is wrong
+            return value
+        raise ValueError("use 'memory', a redis://host:port/db URL or redis-cluster://host:port,host:port,...")
 
     @field_validator("model_name", "model_version")
     @classmethod
@@ -95,6 +120,12 @@ class Settings(BaseSettings):
         return value
 
     @model_validator(mode="after")
+    def _tls_pair(self) -> Settings:
+        if (self.tls_certfile is None) != (self.tls_keyfile is None):
+            raise ValueError("CAIRN_TLS_CERTFILE and CAIRN_TLS_KEYFILE go together: set both or neither")
+        return self
+
+    @model_validator(mode="after")
     def _workers_need_shared_store(self) -> Settings:
         if self.workers > 1 and self.store == "memory":
             raise ValueError(
@@ -105,7 +136,50 @@ class Settings(BaseSettings):
 
     @property
     def store_kind(self) -> str:
-        return "memory" if self.store == "memory" else "redis"
+        if self.store == "memory":
+            return "memory"
+        return "redis-cluster" if self.store.startswith(CLUSTER_SCHEMES) else "redis"
+
+
+CLUSTER_SCHEMES = ("redis-cluster://", "rediss-cluster://")
+
+
+def cluster_nodes(url: str) -> tuple[list[tuple[str, int]], str | None, str | None, bool]:
+    """(host, port) of each startup node, user name, password and TLS of a redis-cluster:// URL.
+
+    `redis-cluster://[user:password@]host:port[,host:port...]`; rediss-cluster:// connects with TLS.
+    Credentials are percent-decoded, as in redis:// URLs. ValueError names what is wrong (never the password).
+    """
+    from urllib.parse import unquote
+
+    scheme, _, rest = url.partition("://")
+    tls = scheme == "rediss-cluster"
+    user = password = None
+    if "@" in rest:
+        credentials, _, rest = rest.rpartition("@")
+        user_part, colon, password_part = credentials.partition(":")
+        user = unquote(user_part) or None
+        password = unquote(password_part) if colon else None
+    rest = rest.rstrip("/")
+    if "/" in rest or "?" in rest:
+        raise ValueError("a Redis Cluster has only database 0: give host:port pairs without a path or options")
+    nodes = []
+    for part in rest.split(","):
+        host, colon, port = part.strip().rpartition(":")
+        if not colon or not host or not port.isdigit() or not 1 <= int(port) <= 65535:
+            raise ValueError(f"cluster node {part.strip()!r}: use host:port")
+        nodes.append((host.strip("[]"), int(port)))
+    return nodes, user, password, tls
+
+
+def redacted(url: str) -> str:
+    """A store URL as it may be shown in messages and logs: any password replaced by ***."""
+    scheme, sep, rest = url.partition("://")
+    if not sep or "@" not in rest:
+        return url
+    credentials, _, location = rest.rpartition("@")  # the last @: a password may hold one unencoded
+    user, colon, _ = credentials.partition(":")
+    return f"{scheme}://{user}{':***' if colon else ''}@{location}"
 
 
 def load_settings(overrides: dict[str, Any] | None = None, flags: dict[str, str] | None = None) -> Settings:
@@ -138,7 +212,7 @@ def _one_line(exc: ValidationError, overrides: dict[str, Any], flags: dict[str, 
             continue
         name = flags[field] if field in overrides and field in flags else f"{ENV_PREFIX}{field.upper()}"
         value = overrides.get(field, err.get("input"))
-        shown = "<hidden>" if field == "admin_token" else repr(value)
+        shown = "<hidden>" if field == "admin_token" else repr(redacted(value) if field == "store" and isinstance(value, str) else value)
         parts.append(f"{name}={shown}: {msg}")
     return "; ".join(parts) or "invalid settings"
 

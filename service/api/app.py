@@ -3,7 +3,10 @@ closes, in reverse order) the session store and the active model.
 
 Start-up loads and verifies the active artifact: the one the store's shared choice names (so a
 restarted worker follows the last switch), else the one the settings name. `/readyz` answers
-ready only while the model is loaded and the store answers.
+ready only while the model is loaded, the store answers and no circuit breaker is open.
+
+`wrap_model` is for tests and benchmarks: a class (or any callable) that wraps the GRU recommender
+of every loaded artifact, to make it slow or failing without patching the service.
 """
 
 from __future__ import annotations
@@ -11,6 +14,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
+import time
 from collections.abc import AsyncIterator
 
 from fastapi import FastAPI
@@ -23,7 +27,8 @@ from service.api.middleware import EdgeMiddleware
 from service.api.routes import router
 from service.config import Settings, load_settings
 from service.errors import CairnError, StoreError
-from service.runtime.active import ActiveModel, ModelChoice, resolve_choice
+from service.resilience.guards import Guards
+from service.runtime.active import ActiveModel, ModelChoice, ModelWrapper, resolve_choice
 from service.runtime.visits import Visits
 from service.store.base import SessionStore, open_store
 
@@ -37,14 +42,15 @@ recommendations, which recommender gave them (`served_by`) and why a fallback an
 """
 
 
-def create_app(settings: Settings, store: SessionStore | None = None) -> FastAPI:
+def create_app(settings: Settings, store: SessionStore | None = None, wrap_model: ModelWrapper | None = None) -> FastAPI:
     """The service for `settings`; `store` replaces the one the settings name (tests pass their own)."""
     metrics = ServiceMetrics()
 
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         session_store = store if store is not None else open_store(settings)
-        active = ActiveModel(settings, session_store)
+        guards = Guards(settings, on_change=metrics.breaker_changed)
+        active = ActiveModel(settings, session_store, wrap_model=wrap_model, on_replaced=guards.model_replaced)
         follower: asyncio.Task | None = None
         try:
             configured = await asyncio.to_thread(resolve_choice, settings)
@@ -60,15 +66,19 @@ def create_app(settings: Settings, store: SessionStore | None = None) -> FastAPI
                 settings=settings,
                 store=session_store,
                 active=active,
-                visits=Visits(session_store, active, settings.history_length, settings.event_memory),
+                visits=Visits(session_store, active, settings.history_length, settings.event_memory, guards),
                 metrics=metrics,
+                guards=guards,
             )
             metrics.registry.on_collect(lambda: _collect(service))
             app.state.service = service
             if session_store.kind != "memory":
                 follower = asyncio.get_running_loop().create_task(active.follow(), name="cairn-model-follower")
             model, choice = active.current
-            log.info("ready: %s (%s), %s store", choice.tag, choice.recommender, session_store.kind)
+            log.info(
+                "ready: %s (%s), %s store, guards %s, default budget %d ms",
+                choice.tag, choice.recommender, session_store.kind, "on" if guards.enabled else "off", settings.default_budget_ms,
+            )  # fmt: skip
             yield
         finally:
             if follower is not None:
@@ -109,6 +119,13 @@ def _collect(service: Service) -> None:
     m.active_model.set((choice.name, choice.version, choice.recommender), 1.0)
     m.gru_batches.set((), float(model.batcher.batches))
     m.gru_batched_clicks.set((), float(model.batcher.clicks))
+    guards = service.guards
+    for breaker in guards.breakers():
+        m.breaker_state.set((breaker.name,), float(breaker.state))  # reading the state moves an open breaker past its cool-down
+    now = time.perf_counter()
+    m.latency_estimate.set(("model",), guards.model_latency.estimate(now))
+    if service.store.kind != "memory":
+        m.latency_estimate.set(("store",), guards.store_latency.estimate(now))
 
 
 def app_from_environment() -> FastAPI:

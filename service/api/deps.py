@@ -9,6 +9,7 @@ from fastapi import Depends, Request
 
 from service.api.metrics import ServiceMetrics
 from service.config import Settings
+from service.resilience.guards import Guards
 from service.runtime.active import ActiveModel
 from service.runtime.visits import Visits
 from service.store.base import SessionStore
@@ -21,6 +22,7 @@ class Service:
     active: ActiveModel
     visits: Visits
     metrics: ServiceMetrics
+    guards: Guards
 
 
 async def get_service(request: Request) -> Service:

@@ -16,6 +16,8 @@ import math
 import os
 from collections.abc import Callable, Iterable
 
+from service.resilience.breaker import BreakerState
+
 CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
 
 # Seconds, from half a millisecond (a memory-store click) to the longest budget (10 s).
@@ -189,6 +191,19 @@ class ServiceMetrics:
         self.gru_batched_clicks: Gauge = add(
             Gauge("cairn_gru_batched_clicks", "Clicks scored by those calls; divided by cairn_gru_batches, the mean batch size.")
         )
+        self.breaker_state: Gauge = add(
+            Gauge("cairn_breaker_state", "Circuit breaker state: 0 closed, 1 half-open, 2 open.", ("breaker",))
+        )
+        self.breaker_transitions: Counter = add(
+            Counter("cairn_breaker_transitions_total", "Circuit breaker state changes, by breaker and the states left and entered.", ("breaker", "from", "to"))
+        )
+        self.latency_estimate: Gauge = add(
+            Gauge("cairn_latency_estimate_seconds", "The running high quantile of one call that the budget check uses, by part (model step, store call).", ("part",))
+        )
+
+    def breaker_changed(self, name: str, old: BreakerState, new: BreakerState) -> None:
+        self.breaker_transitions.inc((name, old.label, new.label))
+        self.breaker_state.set((name,), float(new))
 
     def render(self) -> str:
         return self.registry.render()

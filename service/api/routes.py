@@ -2,15 +2,18 @@
 
 Answers with recommendations are serialised here directly: the response model documents them in
 the OpenAPI page, and skipping its per-request re-validation keeps the click path short.
+Error answers say what went wrong in the caller's terms, never the internals behind it: no file
+system paths (artifact problems are named relative to the model store), no store addresses or
+driver messages, no stack traces.
 """
 
 from __future__ import annotations
 
 import asyncio
-import hmac
 import json
 import os
 import time
+from os import PathLike
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Path, Query, Request
@@ -19,6 +22,7 @@ from fastapi.responses import Response
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from pydantic import ValidationError
 
+from service.api.auth import token_matches
 from service.api.deps import ServiceDep
 from service.api.errors import ApiError
 from service.api.metrics import CONTENT_TYPE
@@ -136,9 +140,9 @@ async def get_recommendations(
 )
 async def delete_session(session_id: SessionId, request: Request, service: ServiceDep) -> Response:
     try:
-        await service.visits.forget(session_id, _timing(request))
+        await service.visits.forget(session_id, service.settings.default_budget_ms / 1e3, _timing(request))
     except StoreError as exc:
-        raise ApiError(503, "store_unavailable", f"the session store failed: {exc}") from exc
+        raise ApiError(503, "store_unavailable", "the session store is unavailable; the visit was not deleted, try again") from exc
     return Response(status_code=204)
 
 
@@ -158,7 +162,7 @@ async def get_models(service: ServiceDep) -> dict[str, Any]:
                 "name": a.name,
                 "version": a.version,
                 "verified": a.problem is None,
-                "problem": a.problem,
+                "problem": None if a.problem is None else _without_paths(a.problem, service.settings.model_store),
                 "active": (a.name, a.version) == (choice.name, choice.version),
                 "created_at": m.get("created_at"),
                 "data_fingerprint": m.get("data_fingerprint"),
@@ -185,8 +189,7 @@ async def put_active_model(
     token = service.settings.admin_token
     if token is None:
         raise ApiError(403, "disabled", "model switching is disabled: the service runs without CAIRN_ADMIN_TOKEN")
-    # Constant-time comparison, so response time does not reveal how much of a guess was right.
-    if credentials is None or not hmac.compare_digest(credentials.credentials.encode(), token.get_secret_value().encode()):
+    if credentials is None or not token_matches(credentials.credentials, token):
         raise ApiError(401, "unauthorized", "a valid bearer token is needed", "authorization", {"WWW-Authenticate": "Bearer"})
     # The body is read only after the token checks out (auth first, then validation).
     try:
@@ -200,9 +203,11 @@ async def put_active_model(
     except ArtifactError as exc:
         if not (service.settings.model_store / choice.name / choice.version).is_dir():
             raise ApiError(404, "unknown_artifact", f"no artifact {choice.tag} in the model store", "version") from exc
-        raise ApiError(409, "artifact_refused", f"{choice.tag} failed verification, still serving {current.tag}: {exc}") from exc
+        problem = _without_paths(str(exc), service.settings.model_store)
+        raise ApiError(409, "artifact_refused", f"{choice.tag} failed verification, still serving {current.tag}: {problem}") from exc
     except StoreError as exc:
-        raise ApiError(503, "store_unavailable", f"could not share the choice, still serving {current.tag}: {exc}") from exc
+        message = f"the session store is unavailable, so the choice could not be shared; still serving {current.tag}"
+        raise ApiError(503, "store_unavailable", message) from exc
     except CairnError as exc:
         raise ApiError(422, "invalid_request", str(exc), "recommender") from exc
     return _active_answer(choice)
@@ -213,18 +218,44 @@ async def healthz() -> dict[str, Any]:
     return {"status": "ok", "pid": os.getpid()}
 
 
-@router.get("/readyz", summary="Model loaded and session store reachable", tags=["operations"])
+@router.get("/readyz", summary="Model loaded, session store reachable, no circuit breaker open", tags=["operations"])
 async def readyz(service: ServiceDep) -> Response:
-    model_ready = service.active.ready
+    """200 when every part works; 503 with `degraded` naming the parts that do not ("model", "store").
+
+    A degraded service still answers every click (from the neighbour table, without the visit);
+    503 tells a load balancer or orchestrator to prefer replicas that are whole.
+    """
+    model_loaded = service.active.ready
+    store_ok = True
     try:
-        await service.store.ping()
-        store_ready = True
-    except StoreError:
-        store_ready = False
-    body: dict[str, Any] = {"ready": model_ready and store_ready, "model": model_ready, "store": store_ready, "pid": os.getpid()}
-    if model_ready:
+        async with asyncio.timeout(service.settings.redis_timeout_s):
+            await service.store.ping()
+    except (StoreError, TimeoutError):
+        store_ok = False
+    guards = service.guards
+    degraded = guards.degraded() if guards.enabled else []
+    if not store_ok and "store" not in degraded:
+        degraded.append("store")
+    if not model_loaded and "model" not in degraded:
+        degraded.insert(0, "model")
+    body: dict[str, Any] = {
+        "ready": not degraded,
+        "degraded": degraded,
+        "model": "model" not in degraded,
+        "store": "store" not in degraded,
+        "breakers": {b.name: b.state.label for b in guards.breakers()} if guards.enabled else {},
+        "pid": os.getpid(),
+    }
+    if model_loaded:
         body["active"] = _active_answer(service.active.current[1])
     return Response(json.dumps(body), status_code=200 if body["ready"] else 503, media_type="application/json")
+
+
+def _without_paths(message: str, model_store: PathLike) -> str:
+    """`message` with the model store's location taken out: artifacts are named as name/version/file."""
+    for root in {str(model_store), os.path.abspath(model_store), os.path.realpath(model_store)}:
+        message = message.replace(root.rstrip(os.sep) + os.sep, "")
+    return message
 
 
 @router.get("/metrics", summary="Prometheus text format 0.0.4", tags=["operations"])

@@ -53,10 +53,14 @@ class RecommendationAnswer(BaseModel):
     served_by: str = Field(description="gru, neighbours or popularity")
     model_version: str = Field(description="name/version of the artifact that answered")
     fallback_reason: str | None = Field(
-        description="why the active recommender did not answer: unknown_item, no_history, deadline, model_error, store_unavailable"
+        description=(
+            "why the active recommender did not answer: unknown_item, no_history, budget (the model would not fit in "
+            "what was left of the budget), deadline (it ran past it), model_unavailable (its circuit breaker is open), "
+            "model_error (this call failed), store_unavailable (the session store failed, timed out or its breaker is open)"
+        )
     )
     took_ms: float
-    sequence: int = Field(description="clicks this visit has applied")
+    sequence: int = Field(description="clicks this visit has applied; 0 with store_unavailable or deadline: this click was not recorded")
     duplicate: bool = Field(False, description="true when the click's event_id was applied before; nothing was applied now")
 
 

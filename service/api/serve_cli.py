@@ -27,6 +27,8 @@ _FLAGS = {
     "--model-version": "model_version",
     "--store": "store",
     "--log-level": "log_level",
+    "--tls-certfile": "tls_certfile",
+    "--tls-keyfile": "tls_keyfile",
 }
 
 
@@ -38,11 +40,15 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--model-store", help="artifacts folder (CAIRN_MODEL_STORE, default model_store/)")
     parser.add_argument("--model-name", help="artifact name (CAIRN_MODEL_NAME; default: the only name in the store)")
     parser.add_argument("--model-version", help="artifact version (CAIRN_MODEL_VERSION; default: the newest)")
-    parser.add_argument("--store", help="'memory' or redis://host:port/db (CAIRN_STORE, default memory)")
+    parser.add_argument(
+        "--store", help="'memory', redis://host:port/db (rediss:// for TLS) or redis-cluster://host:port,host:port,... (CAIRN_STORE, default memory)"
+    )
     parser.add_argument("--log-level", choices=("debug", "info", "warning", "error"), help="(CAIRN_LOG_LEVEL, default info)")
     parser.add_argument(
         "--access-log", action="store_true", default=None, help="log each request line; it shows session ids (CAIRN_ACCESS_LOG)"
     )
+    parser.add_argument("--tls-certfile", help="PEM certificate chain: serve HTTPS (CAIRN_TLS_CERTFILE; with --tls-keyfile)")
+    parser.add_argument("--tls-keyfile", help="PEM private key of that certificate (CAIRN_TLS_KEYFILE)")
 
 
 def settings_from_args(args: argparse.Namespace) -> Settings:
@@ -62,6 +68,16 @@ def preflight(settings: Settings) -> None:
         verify_artifact(artifact_path(settings, choice.name, choice.version))
     except ArtifactError as exc:
         raise SettingsError(f"artifact {choice.tag} cannot be served: {exc}") from exc
+    for name, path in (("--tls-certfile", settings.tls_certfile), ("--tls-keyfile", settings.tls_keyfile)):
+        if path is not None and not path.is_file():
+            raise SettingsError(f"{name} {str(path)!r}: no such file")
+    if settings.tls_certfile is not None:
+        import ssl
+
+        try:
+            ssl.create_default_context(ssl.Purpose.CLIENT_AUTH).load_cert_chain(settings.tls_certfile, settings.tls_keyfile)
+        except (ssl.SSLError, OSError) as exc:
+            raise SettingsError(f"--tls-certfile/--tls-keyfile: not a certificate and its key ({exc.__class__.__name__})") from exc
     open_store(settings)  # parses the store URL; connects nothing
     with socket.socket(socket.AF_INET6 if ":" in settings.host else socket.AF_INET, socket.SOCK_STREAM) as probe:
         probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)  # as uvicorn binds
@@ -89,6 +105,9 @@ def run(args: argparse.Namespace) -> int:
         "server_header": False,
         "timeout_graceful_shutdown": 5,
     }
+    if settings.tls_certfile is not None:
+        options["ssl_certfile"] = str(settings.tls_certfile)
+        options["ssl_keyfile"] = str(settings.tls_keyfile)
     if settings.workers == 1:
         from service.api.app import create_app
 

@@ -12,7 +12,8 @@ epoch; the batch never shrinks, so every step has exactly B rows. Sessions of on
 target and are skipped.
 
 The extra negatives of the sampled output are drawn by popularity**alpha, many steps at a time,
-so sampling is one vectorised call every few hundred steps instead of one per step.
+so sampling is one vectorised call every few hundred steps instead of one per step; or, for a
+small catalogue, every item is a negative of every step (`EveryItem`).
 """
 
 from __future__ import annotations
@@ -95,6 +96,8 @@ def sampling_weights(counts: np.ndarray, alpha: float) -> np.ndarray:
 class NegativeSampler:
     """Draws `n_negatives` item indices per step, shared by all rows of the step, in bulk."""
 
+    in_batch = True  # the step's other targets are negatives too
+
     def __init__(self, weights: np.ndarray, n_negatives: int, seed: int, buffer_size: int = SAMPLE_BUFFER) -> None:
         if n_negatives < 0:
             raise ValueError(f"n_negatives must be >= 0, got {n_negatives}")
@@ -125,3 +128,26 @@ class NegativeSampler:
         row = self._buffer[self._next]
         self._next += 1
         return row
+
+
+class EveryItem:
+    """Every item as the extra negatives of every step: the loss over the whole catalogue, unsampled.
+
+    Sampling by popularity**alpha without correcting for it biases the sampled softmax-type losses
+    against popular items (a popular item is drawn many times, so it weighs that much more among a
+    row's negatives). Over every item, once each, there is no sampling to correct for; the in-batch
+    targets are then left out as negatives (`in_batch` False), else they would count twice. A step
+    scores B + n_items candidates, so this suits catalogues of a few thousand items, not millions.
+    """
+
+    in_batch = False
+
+    def __init__(self, n_items: int) -> None:
+        if n_items < 1:
+            raise ValueError(f"n_items must be positive, got {n_items}")
+        self.n_negatives = n_items
+        self._all = torch.arange(n_items, dtype=torch.int64)  # [n_items], the same every step
+
+    def draw(self) -> torch.Tensor:
+        """int64 [n_items]: every item index."""
+        return self._all

@@ -45,8 +45,12 @@ LOSS_NAMES = ("top1", "bpr", "cross-entropy", "bpr-max", "top1-max")
 _MASKED_LOGIT = -1.0e30
 
 
-def negative_mask(targets: torch.Tensor, candidates: torch.Tensor) -> torch.Tensor:
+def negative_mask(targets: torch.Tensor, candidates: torch.Tensor, in_batch: bool = True) -> torch.Tensor:
     """targets int64 [B], candidates int64 [C] -> float32 [B, C], 1 where candidate j is not row i's target.
+
+    `in_batch` False: the first B columns (the step's targets) are never negatives, only the
+    sampled ones are. With every item among the sampled columns this makes each row's negatives
+    exactly the other items, once each: the full-catalogue loss, with no item counted twice.
 
     A float 0/1 mask rather than a bool one: on CPU, torch's bool-producing comparisons and
     bool reductions run several times slower than float arithmetic over a [512, 2560] matrix.
@@ -54,7 +58,10 @@ def negative_mask(targets: torch.Tensor, candidates: torch.Tensor) -> torch.Tens
     """
     ids = torch.float32 if int(candidates.max()) < 2**24 else torch.float64
     diff = candidates.to(ids).unsqueeze(0) - targets.to(ids).unsqueeze(1)  # [B, C], whole numbers
-    return diff.abs_().clamp_(max=1.0).to(torch.float32)  # 0 where equal, else 1
+    mask = diff.abs_().clamp_(max=1.0).to(torch.float32)  # 0 where equal, else 1
+    if not in_batch:
+        mask[:, : len(targets)] = 0.0
+    return mask
 
 
 def _positive(scores: torch.Tensor) -> torch.Tensor:

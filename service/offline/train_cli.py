@@ -17,7 +17,18 @@ import torch
 from service.offline.dataset import PreparedData
 from service.offline.gru import GRUConfig
 from service.offline.losses import LOSS_NAMES
-from service.offline.train import BEST, OPTIMIZERS, TrainingError, TrainSettings, train
+from service.offline.train import (
+    ALL_ITEMS,
+    AUTO,
+    AUTO_ALL_UP_TO,
+    AUTO_SAMPLED,
+    BEST,
+    OPTIMIZERS,
+    TrainingError,
+    TrainSettings,
+    resolve_negatives,
+    train,
+)
 
 # Learning rates when --lr is not given (common practice for each optimiser on this model).
 DEFAULT_LR = {"adagrad": 0.05, "adam": 0.001}
@@ -43,6 +54,17 @@ _nonnegative_float = _number(float, lambda v: v >= 0, "a number >= 0")
 _dropout = _number(float, lambda v: 0 <= v < 1, "a dropout rate in [0, 1)")
 
 
+def _negatives(text: str) -> int | str:
+    """'all', 'auto' or a count >= 0."""
+    word = text.strip().lower()
+    if word in (ALL_ITEMS, AUTO):
+        return word
+    try:
+        return _count(text)
+    except argparse.ArgumentTypeError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an integer >= 0, '{ALL_ITEMS}' or '{AUTO}'") from None
+
+
 def _sizes(text: str) -> list[int]:
     """'' or '200,100' -> [] or [200, 100]."""
     parts = [p.strip() for p in text.split(",") if p.strip()]
@@ -56,8 +78,10 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="where checkpoints go (default checkpoints/gru)")
     g = parser.add_argument_group("training")
     g.add_argument("--loss", choices=LOSS_NAMES, default=d.loss, help=f"ranking loss (default {d.loss})")
-    g.add_argument("--negatives", type=_count, default=d.negatives, metavar="M",
-                   help=f"extra sampled negatives per step beside the in-batch ones; 0 = in-batch only (default {d.negatives})")
+    g.add_argument("--negatives", type=_negatives, default=d.negatives, metavar="M",
+                   help="extra sampled negatives per step beside the in-batch ones; 0 = in-batch only; "
+                        f"'{ALL_ITEMS}' = every item, unsampled (small catalogues); '{AUTO}' = '{ALL_ITEMS}' up to "
+                        f"{AUTO_ALL_UP_TO:,} items, else {AUTO_SAMPLED:,} (default {d.negatives})")
     g.add_argument("--sample-alpha", type=_nonnegative_float, default=d.sample_alpha, metavar="A",
                    help=f"negatives drawn by popularity**A: 0 uniform, 1 popularity (default {d.sample_alpha})")
     g.add_argument("--bpreg", type=_nonnegative_float, default=d.bpreg, metavar="L",
@@ -108,7 +132,7 @@ def run(args: argparse.Namespace) -> int:
     )
     settings = TrainSettings(
         loss=args.loss,
-        negatives=args.negatives,
+        negatives=resolve_negatives(args.negatives, data.n_items),
         sample_alpha=args.sample_alpha,
         bpreg=args.bpreg,
         optimizer=args.optimizer,
@@ -121,9 +145,10 @@ def run(args: argparse.Namespace) -> int:
     # Every flag, as JSON-friendly values, with the learning rate actually used.
     hyperparameters = {k: (str(v) if isinstance(v, Path) else v) for k, v in vars(args).items() if k != "command"}
     hyperparameters["lr"] = lr
+    hyperparameters["negatives"] = settings.negatives  # what 'auto' became
     print(
         f"training on {data.train.n_clicks:,} clicks in {data.train.n_sessions:,} sessions, {data.n_items:,} items; "
-        f"{args.loss}, {args.negatives} negatives, batch {args.batch_size}, {args.optimizer} lr {lr}"
+        f"{args.loss}, {settings.negatives} negatives, batch {args.batch_size}, {args.optimizer} lr {lr}"
     )
     result = train(data, config, settings, args.out, hyperparameters=hyperparameters)
     best = result.best_metrics

@@ -9,6 +9,10 @@ one answer; the old model is closed after the longest request budget has passed.
 
 With a shared store (Redis) the choice is kept in the store too, and a background task reads it
 every `model_poll_s`, so every worker and replica follows a switch made through any of them.
+
+`wrap_model` (tests and benchmarks only) wraps each loaded GRU recommender in a class of the
+caller's, to make the model slow or failing without patching anything; `on_replaced` hears of
+every new artifact that starts serving (the model's circuit breaker starts afresh).
 """
 
 from __future__ import annotations
@@ -28,13 +32,15 @@ from service.config import ARTIFACT_PART, RECOMMENDERS, Settings, SettingsError
 from service.errors import ArtifactError, CairnError, StoreError
 from service.runtime.batching import StepBatcher
 from service.runtime.onnx_step import OnnxStep, StepError
-from service.runtime.recommenders import GruRecommender, NeighbourRecommender, PopularityRecommender
+from service.runtime.recommenders import GruRecommender, NeighbourRecommender, PopularityRecommender, Recommender
 from service.store.base import SessionStore
 
 log = logging.getLogger("cairn.service")
 
 RETIRE_AFTER_S = 11.0  # longest request budget (10 s) and a margin: no request still uses the old model
 RETRY_REFUSED_S = 30.0  # a shared choice this process could not load is tried again after this long
+
+ModelWrapper = Callable[[Recommender], Recommender]
 
 
 @dataclass(frozen=True)
@@ -75,7 +81,15 @@ class LoadedModel:
         self.popularity = PopularityRecommender(artifact.popularity)
         self.neighbours = NeighbourRecommender(artifact.neighbour_items, artifact.neighbour_scores, self.popularity)
         self.batcher = StepBatcher(step, max_batch=max_batch)
-        self.gru = GruRecommender(self.batcher)
+        self._gru = GruRecommender(self.batcher)
+        self.gru: Recommender = self._gru  # what the click path calls; `wrap` may put a test double around it
+
+    def wrap(self, wrapper: ModelWrapper) -> None:
+        self.gru = wrapper(self._gru)
+
+    def hidden_from_bytes(self, raw: bytes | None) -> np.ndarray | None:
+        """A stored hidden state, or None when it is missing or of another shape."""
+        return self._gru.hidden_from_bytes(raw)
 
     def start(self) -> None:
         self.batcher.start()
@@ -138,9 +152,18 @@ def artifact_path(settings: Settings, name: str, version: str) -> Path:
 class ActiveModel:
     """The (model, choice) pair a process serves; `switch` changes it, `follow` tracks the shared choice."""
 
-    def __init__(self, settings: Settings, store: SessionStore) -> None:
+    def __init__(
+        self,
+        settings: Settings,
+        store: SessionStore,
+        wrap_model: ModelWrapper | None = None,
+        on_replaced: Callable[[str], None] | None = None,
+    ) -> None:
         self.settings = settings
         self.store = store
+        self._wrap_model = wrap_model
+        self._on_replaced = on_replaced
+        self._follow_failing = False  # the last poll of the shared choice failed (logged once, not every poll)
         self._current: tuple[LoadedModel, ModelChoice] | None = None
         self._lock = asyncio.Lock()
         self._retiring: set[asyncio.Task] = set()
@@ -193,6 +216,8 @@ class ActiveModel:
                 if not path.is_dir():
                     raise ArtifactError(f"no artifact {choice.tag} in {str(self.settings.model_store)!r}")
                 model = await asyncio.to_thread(load_model, path, self.settings.ort_threads, self.settings.max_batch)
+                if self._wrap_model is not None:
+                    model.wrap(self._wrap_model)
                 model.start()
                 if before_swap is not None:
                     try:
@@ -203,6 +228,8 @@ class ActiveModel:
                 self._current = (model, choice)
                 if old is not None:
                     self._retire(old[0])
+                if self._on_replaced is not None:
+                    self._on_replaced(model.tag)
                 # The model's id map and tables are a few hundred thousand long-lived objects; the
                 # cyclic GC would walk them all in every full collection (tens of ms, the latency
                 # tail). Freezing moves them out of its sight; reference counting still frees them.
@@ -237,13 +264,19 @@ class ActiveModel:
             log.error("cannot follow the shared model choice %s: %s", choice.tag, exc)
 
     async def follow(self) -> None:
-        """Poll the shared choice until cancelled; store trouble is logged and retried at the next poll."""
+        """Poll the shared choice until cancelled; store trouble is logged (once per outage) and retried at the next poll."""
         while True:
             await asyncio.sleep(self.settings.model_poll_s)
             try:
                 await self.adopt_shared()
             except StoreError as exc:
-                log.warning("reading the shared model choice failed: %s", exc)
+                if not self._follow_failing:
+                    log.warning("reading the shared model choice failed, retrying every %g s: %s", self.settings.model_poll_s, exc)
+                self._follow_failing = True
+                continue
+            if self._follow_failing:
+                log.info("reading the shared model choice works again")
+                self._follow_failing = False
 
     async def close(self) -> None:
         for task in list(self._retiring):

@@ -1,4 +1,4 @@
-"""Session state and the stores that keep it: in-process memory, Redis. One interface."""
+"""Session state and the stores that keep it: in-process memory, Redis, Redis Cluster. One interface."""
 
 from service.store.base import SessionStore, open_store
 from service.store.memory import MemoryStore

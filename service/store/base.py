@@ -5,6 +5,10 @@ check-and-set: `save` lands only if the stored value still carries the token the
 two concurrent clicks on one visit can never both land on the same old state (the loser re-reads
 and retries). Every write restarts the session's inactivity timeout. The store also keeps the
 active-model choice, so that every worker sharing the store follows one choice.
+
+`shard_of` names the part of the store that holds a session and fails on its own: "" for the
+memory store and a single Redis, the master's host:port in a Redis Cluster. The service keeps one
+circuit breaker per part.
 """
 
 from __future__ import annotations
@@ -15,7 +19,9 @@ from service.config import Settings
 
 
 class SessionStore(Protocol):
-    kind: str  # "memory" or "redis"
+    kind: str  # "memory", "redis" or "redis-cluster"
+
+    def shard_of(self, session_id: str) -> str: ...
 
     async def load(self, session_id: str) -> bytes | None: ...
 
@@ -38,6 +44,17 @@ def open_store(settings: Settings) -> SessionStore:
         from service.store.memory import MemoryStore
 
         return MemoryStore(max_entries=settings.memory_max_sessions, ttl_s=settings.session_ttl_s)
+    if settings.store_kind == "redis-cluster":
+        from service.store.cluster import RedisClusterStore
+
+        return RedisClusterStore(
+            settings.store,
+            ttl_s=settings.session_ttl_s,
+            pool_size=settings.redis_pool_size,
+            timeout_s=settings.redis_timeout_s,
+            connect_timeout_s=settings.redis_connect_timeout_s,
+            prefix=settings.redis_prefix,
+        )
     from service.store.redis import RedisStore
 
     return RedisStore(

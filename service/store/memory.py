@@ -28,6 +28,9 @@ class MemoryStore:
     def __len__(self) -> int:
         return len(self._entries)
 
+    def shard_of(self, session_id: str) -> str:
+        return ""
+
     async def load(self, session_id: str) -> bytes | None:
         entry = self._entries.get(session_id)
         if entry is None:

@@ -1,29 +1,43 @@
 """Session state in Redis: redis-py asyncio (hiredis parser), one bounded blocking pool.
 
 One key per session (`<prefix>s:<session id>`), so a Redis Cluster shards sessions without any
-cross-slot command. A write is a check-and-set in a server-side Lua script that compares the
-stored value's token (sequence number + visit nonce, bytes 1..16 of the value, see
-`service.store.state`) with the one the writer read, and sets the value with PX, which restarts
-the inactivity timeout on every write. Each command runs under the pool's socket timeout; there
-are no automatic retries, since a retried check-and-set whose first reply was lost would report a
-conflict for its own write. Redis errors become `StoreError`, chained with `from`.
+cross-slot command (`service.store.cluster` shares the script and the error handling below). A
+write is a check-and-set in a server-side Lua script that compares the stored value's token
+(sequence number + visit nonce, bytes 1..16 of the value, see `service.store.state`) with the one
+the writer read, and sets the value with PX, which restarts the inactivity timeout on every write.
+The script touches its one key only, so it runs on whichever cluster node holds that key.
+
+It is sent as EVALSHA, and as EVAL when the server answers NOSCRIPT (a restarted Redis has an
+empty script cache; EVAL caches it again). Not SCRIPT LOAD: on a cluster that goes to every master,
+and fails while one is down. Each command runs under the pool's socket timeout; there are no
+automatic retries, since a retried check-and-set whose first reply was lost would report a conflict
+for its own write. Redis errors become `StoreError`, chained with `from`, with any password in the
+URL hidden.
+
+After a connection error the pool's idle connections are dropped too: when Redis restarts, every
+pooled socket is dead, and each would otherwise fail one more request (and hold a breaker open)
+before being replaced.
 """
 
 from __future__ import annotations
 
+import contextlib
+import hashlib
 from typing import Any
 
 import redis.asyncio as aioredis
 from redis.asyncio.retry import Retry
 from redis.backoff import NoBackoff
-from redis.exceptions import RedisError
+from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import NoScriptError, RedisClusterException, RedisError
 
+from service.config import redacted
 from service.errors import StoreError
 from service.store.state import TOKEN_SLICE
 
 # KEYS[1] session key; ARGV[1] expected token ("" = must not exist), ARGV[2] new value, ARGV[3] TTL ms.
 # Lua strings are 1-based and string.sub's end is inclusive: bytes 1..16 of the value are sub(2, 17).
-_CHECK_AND_SET = f"""
+CHECK_AND_SET = f"""
 local cur = redis.call('GET', KEYS[1])
 if cur then
   if string.sub(cur, {TOKEN_SLICE.start + 1}, {TOKEN_SLICE.stop}) ~= ARGV[1] then return 0 end
@@ -33,6 +47,22 @@ end
 redis.call('SET', KEYS[1], ARGV[2], 'PX', ARGV[3])
 return 1
 """
+CHECK_AND_SET_SHA = hashlib.sha1(CHECK_AND_SET.encode()).hexdigest()
+REDIS_ERRORS = (RedisError, RedisClusterException, OSError)  # RedisClusterException is not a RedisError
+
+
+async def check_and_set(client: Any, key: str, expected_token: bytes, value: bytes, ttl_ms: int) -> bool:
+    """Run the check-and-set script on the node that holds `key`."""
+    try:
+        done = await client.evalsha(CHECK_AND_SET_SHA, 1, key, expected_token, value, ttl_ms)
+    except NoScriptError:
+        done = await client.eval(CHECK_AND_SET, 1, key, expected_token, value, ttl_ms)
+    return bool(done)
+
+
+def store_error(what: str, exc: BaseException) -> StoreError:
+    # The message says which command and why; it never carries a session's value or a password.
+    return StoreError(f"redis {what} failed ({type(exc).__name__}: {redacted(str(exc))})")
 
 
 class RedisStore:
@@ -62,21 +92,20 @@ class RedisStore:
                 retry=no_retry,
             )
         except (ValueError, RedisError) as exc:
-            raise StoreError(f"CAIRN_STORE: cannot use {url!r} ({exc})") from exc
+            raise StoreError(f"CAIRN_STORE: cannot use {redacted(url)!r} ({redacted(str(exc))})") from exc
         self._client = aioredis.Redis(connection_pool=self._pool, retry=no_retry)
-        self._check_and_set = self._client.register_script(_CHECK_AND_SET)
 
     def key(self, session_id: str) -> str:
         return self._session_prefix + session_id
+
+    def shard_of(self, session_id: str) -> str:
+        return ""
 
     async def load(self, session_id: str) -> bytes | None:
         return await self._call("GET", self._client.get(self.key(session_id)))
 
     async def save(self, session_id: str, value: bytes, expected_token: bytes) -> bool:
-        done = await self._call(
-            "check-and-set", self._check_and_set(keys=[self.key(session_id)], args=[expected_token, value, self.ttl_ms])
-        )
-        return bool(done)
+        return await self._call("check-and-set", check_and_set(self._client, self.key(session_id), expected_token, value, self.ttl_ms))
 
     async def delete(self, session_id: str) -> None:
         await self._call("DEL", self._client.delete(self.key(session_id)))
@@ -94,13 +123,14 @@ class RedisStore:
         try:
             await self._client.aclose()
             await self._pool.aclose()
-        except (RedisError, OSError) as exc:
-            raise StoreError(f"redis close failed ({type(exc).__name__}: {exc})") from exc
+        except REDIS_ERRORS as exc:
+            raise store_error("close", exc) from exc
 
-    @staticmethod
-    async def _call(what: str, pending: Any) -> Any:
+    async def _call(self, what: str, pending: Any) -> Any:
         try:
             return await pending
-        except (RedisError, OSError) as exc:
-            # The message says which command and why; it never carries a session's value.
-            raise StoreError(f"redis {what} failed ({type(exc).__name__}: {exc})") from exc
+        except REDIS_ERRORS as exc:
+            if isinstance(exc, (RedisConnectionError, OSError)):
+                with contextlib.suppress(*REDIS_ERRORS):
+                    await self._pool.disconnect(inuse_connections=False)
+            raise store_error(what, exc) from exc

@@ -232,6 +232,21 @@ def test_cluster_profile_adds_a_redis_cluster_and_its_own_replicas(compose: dict
         assert ip.startswith(prefix) and cmd[cmd.index("--cluster-announce-ip") + 1] == ip
         assert f"{ip}:{port}" in init  # the init job joins every node
         assert n in services["redis-cluster-init"]["depends_on"]
+        # The surviving masters keep their slots when one is down (redis.conf, cluster-require-full-coverage).
+        assert cmd[cmd.index("--cluster-require-full-coverage") + 1] == "no"
+    # The cluster replicas name every node with the redis-cluster:// scheme, as the service accepts it.
+    from service.config import Settings, cluster_nodes
+
+    addresses = sorted(
+        (services[n]["networks"]["cluster"]["ipv4_address"], int(services[n]["command"][services[n]["command"].index("--port") + 1]))
+        for n in nodes
+    )
+    for name in ("api-cluster-1", "api-cluster-2"):
+        env = services[name]["environment"]
+        assert env["CAIRN_STORE"].startswith("redis-cluster://")
+        assert sorted(cluster_nodes(env["CAIRN_STORE"])[0]) == addresses
+        settings = Settings(**{k.removeprefix("CAIRN_").lower(): v for k, v in env.items()})
+        assert settings.store_kind == "redis-cluster" and settings.workers == 2
 
 
 def test_compose_names_paths_that_exist(compose: dict[str, Any]) -> None:

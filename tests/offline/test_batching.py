@@ -7,7 +7,7 @@ import pytest
 import torch
 from scipy.stats import chisquare
 
-from service.offline.batching import NegativeSampler, SessionParallelBatches, sampling_weights
+from service.offline.batching import EveryItem, NegativeSampler, SessionParallelBatches, sampling_weights
 from service.offline.dataset import SessionSplit
 
 # Six sessions in start-time order; the third has one click, so no target, and is skipped.
@@ -87,3 +87,12 @@ def test_sampling_is_reproducible_per_seed_and_sized_per_step() -> None:
 def test_no_extra_negatives_gives_an_empty_draw() -> None:
     sampler = NegativeSampler(np.ones(5), n_negatives=0, seed=0)
     assert sampler.draw().shape == (0,)
+
+
+def test_every_item_draws_the_whole_catalogue_once_and_drops_in_batch_negatives() -> None:
+    every = EveryItem(6)
+    assert every.n_negatives == 6 and not every.in_batch
+    assert every.draw().tolist() == [0, 1, 2, 3, 4, 5] and every.draw().dtype == torch.int64
+    assert NegativeSampler(np.ones(5), n_negatives=2, seed=0).in_batch
+    with pytest.raises(ValueError, match="n_items must be positive, got 0"):
+        EveryItem(0)

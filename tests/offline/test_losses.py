@@ -75,6 +75,24 @@ def test_mask_of_a_large_catalogue_compares_exactly() -> None:
     assert mask.tolist() == [[0.0, 1.0]]
 
 
+def test_mask_without_in_batch_negatives_keeps_only_the_sampled_columns() -> None:
+    # Same example, in-batch columns 0 and 1 off: row 0 keeps items 7 and 9, row 1 only item 9.
+    mask = negative_mask(TARGETS, CANDIDATES, in_batch=False)
+    assert mask.tolist() == [[0.0, 0.0, 1.0, 1.0], [0.0, 0.0, 0.0, 1.0]]
+
+
+def test_cross_entropy_over_every_item_equals_pytorch_full_softmax() -> None:
+    # Targets first, then every item once, in-batch columns off: each row's loss must be the
+    # ordinary cross-entropy over the whole catalogue (torch.nn.functional.cross_entropy).
+    torch.manual_seed(1)
+    n_items, targets = 6, torch.tensor([2, 4, 2])
+    candidates = torch.cat([targets, torch.arange(n_items)])  # [3 + 6]
+    item_scores = torch.randn(3, n_items, dtype=torch.float64)  # [B, n_items]
+    x = item_scores[:, candidates]  # [B, 9], column i of row i holds row i's target score
+    loss = get_loss("cross-entropy")(x, negative_mask(targets, candidates, in_batch=False))
+    assert loss.item() == pytest.approx(F.cross_entropy(item_scores, targets).item(), rel=1e-12)
+
+
 @pytest.mark.parametrize("name", ["bpr", "top1", "bpr-max", "top1-max"])
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
 def test_value_equals_the_published_formula(name: str, dtype: torch.dtype) -> None:

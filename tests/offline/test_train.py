@@ -15,7 +15,7 @@ from service.offline.dataset import PreparedData, SessionSplit
 from service.offline.gru import GRUConfig, NextClickGRU, load_checkpoint
 from service.offline.gru_scorer import load_torch_scorer
 from service.offline.losses import LOSS_NAMES
-from service.offline.train import validate
+from service.offline.train import AUTO, AUTO_ALL_UP_TO, AUTO_SAMPLED, resolve_negatives, validate
 
 # Ten fixed click paths A -> B -> C over 30 items: after A the next click is always B, after B always C.
 PATHS = [[3 * k, 3 * k + 1, 3 * k + 2] for k in range(10)]
@@ -71,6 +71,22 @@ def test_every_loss_and_optimiser_learns_the_paths(data_dir: Path, tmp_path: Pat
     # Ranking the 30 items at random gives MRR@20 = (1/30) sum_{k<=20} 1/k, about 0.12; the
     # paths are deterministic, so a model that learned them ranks the next click first or second.
     assert load_checkpoint(tmp_path / "best.pt")[1]["valid"]["mrr@20"] > 0.9
+
+
+def test_every_item_as_negatives_learns_the_paths_and_is_recorded(data_dir: Path, tmp_path: Path) -> None:
+    assert train(data_dir, tmp_path, "--epochs", "2", "--patience", "0", "--loss", "cross-entropy", "--negatives", "all") == 0
+    _, extra = load_checkpoint(tmp_path / "best.pt")
+    assert extra["hyperparameters"]["negatives"] == "all"
+    assert extra["valid"]["mrr@20"] > 0.9  # see the paths test above for why 0.9
+    assert ranks_next_click_first(tmp_path / "best.pt")
+
+
+def test_auto_negatives_score_every_item_of_a_small_catalogue(data_dir: Path, tmp_path: Path) -> None:
+    assert train(data_dir, tmp_path, "--epochs", "1", "--negatives", "auto") == 0  # the last --negatives wins
+    assert load_checkpoint(tmp_path / "best.pt")[1]["hyperparameters"]["negatives"] == "all"  # 30 items
+    assert resolve_negatives(AUTO, AUTO_ALL_UP_TO) == "all"
+    assert resolve_negatives(AUTO, AUTO_ALL_UP_TO + 1) == AUTO_SAMPLED
+    assert resolve_negatives(64, 30) == 64 and resolve_negatives("all", 10**6) == "all"
 
 
 def test_same_seed_same_weights_other_seed_other_weights(data_dir: Path, tmp_path: Path) -> None:
@@ -142,7 +158,7 @@ def test_missing_data_and_bad_values_are_named(
     (tmp_path / "a-file").write_text("")
     assert train(data_dir, tmp_path / "a-file", "--epochs", "1") == 2
     assert "cannot write checkpoints into" in capsys.readouterr().err
-    for flag, value in (("--lr", "0"), ("--negatives", "-1"), ("--dropout-hidden", "1.5"), ("--ff-sizes", "8,x")):
+    for flag, value in (("--lr", "0"), ("--negatives", "-1"), ("--negatives", "most"), ("--dropout-hidden", "1.5"), ("--ff-sizes", "8,x")):
         with pytest.raises(SystemExit) as stop:
             main(["train", "--data", str(tmp_path), flag, value])
         assert stop.value.code == 2

@@ -101,3 +101,56 @@ def test_cairn_serve_refuses_bad_settings_with_one_line(tmp_path, model_store):
         assert r.returncode == 2 and "checksum" in r.stderr and r.stderr.count("\n") == 1, r.stderr
         r = run_serve(["--model-store", str(model_store), "--model-version", "v1", "--port", str(port)], {}, tmp_path)
         assert r.returncode == 2 and f"--port {port}" in r.stderr and r.stderr.count("\n") == 1, r.stderr
+
+
+def test_budget_and_guard_defaults():
+    s = load_settings()
+    assert s.default_budget_ms == 50 and s.guards is True and s.latency_quantile == 0.95
+    assert (s.model_breaker_min_calls, s.model_breaker_failure_ratio, s.model_breaker_cool_down_s, s.model_breaker_trial_calls) == (20, 0.5, 5.0, 3)
+    assert (s.store_breaker_min_calls, s.store_breaker_failure_ratio, s.store_breaker_cool_down_s, s.store_breaker_trial_calls) == (20, 0.5, 1.0, 3)
+
+
+def test_guard_settings_from_the_environment(monkeypatch):
+    monkeypatch.setenv("CAIRN_GUARDS", "false")
+    monkeypatch.setenv("CAIRN_DEFAULT_BUDGET_MS", "80")
+    monkeypatch.setenv("CAIRN_MODEL_BREAKER_MIN_CALLS", "7")
+    monkeypatch.setenv("CAIRN_STORE_BREAKER_COOL_DOWN_S", "0.25")
+    s = load_settings()
+    assert (s.guards, s.default_budget_ms, s.model_breaker_min_calls, s.store_breaker_cool_down_s) == (False, 80, 7, 0.25)
+
+
+@pytest.mark.parametrize(
+    "env, named",
+    [
+        ({"CAIRN_MODEL_BREAKER_FAILURE_RATIO": "1.5"}, "CAIRN_MODEL_BREAKER_FAILURE_RATIO='1.5'"),
+        ({"CAIRN_STORE_BREAKER_MIN_CALLS": "0"}, "CAIRN_STORE_BREAKER_MIN_CALLS='0'"),
+        ({"CAIRN_LATENCY_QUANTILE": "0"}, "CAIRN_LATENCY_QUANTILE='0'"),
+        ({"CAIRN_STORE": "redis-cluster://a:1,b"}, "cluster node 'b': use host:port"),
+        ({"CAIRN_STORE": "redis-cluster://a:1/2"}, "only database 0"),
+        ({"CAIRN_STORE": "redis+cluster://a:1/0"}, "CAIRN_STORE='redis+cluster://a:1/0'"),
+        ({"CAIRN_TLS_CERTFILE": "/x/cert.pem"}, "CAIRN_TLS_CERTFILE and CAIRN_TLS_KEYFILE go together"),
+    ],
+)
+def test_bad_guard_store_and_tls_values_are_named(monkeypatch, env, named):
+    for k, v in env.items():
+        monkeypatch.setenv(k, v)
+    with pytest.raises(SettingsError) as info:
+        load_settings()
+    assert named in str(info.value) and "\n" not in str(info.value), str(info.value)
+
+
+def test_cluster_urls():
+    from service.config import cluster_nodes
+
+    s = load_settings({"store": "redis-cluster://10.0.0.1:7001,10.0.0.2:7002"})
+    assert s.store_kind == "redis-cluster"
+    assert cluster_nodes(s.store) == ([("10.0.0.1", 7001), ("10.0.0.2", 7002)], None, None, False)
+    # Credentials percent-decoded as in redis:// URLs (RFC 3986, 2.1); rediss-cluster:// means TLS.
+    assert cluster_nodes("rediss-cluster://cairn:p%40ss@h:6379") == ([("h", 6379)], "cairn", "p@ss", True)
+
+
+def test_a_password_in_the_store_url_is_never_shown(monkeypatch):
+    monkeypatch.setenv("CAIRN_STORE", "rediss-cluster://cairn:hunter2-secret@h:notaport")
+    with pytest.raises(SettingsError) as info:
+        load_settings()
+    assert "hunter2-secret" not in str(info.value) and "cairn:***@h:notaport" in str(info.value)

@@ -1,7 +1,8 @@
-"""The click path below HTTP: races between workers, the deadline, a failing model, a failing store.
+"""The click path below HTTP: races between workers, the budget and the deadline, a failing model,
+a failing store.
 
-Behaviours are injected as small classes (a store that counts lost races, a step that fails), not
-patched in.
+Behaviours are injected as small classes (a store that counts lost races, a step that fails, a
+recommender that is slow), not patched in.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ import pytest
 
 from service.artifacts import load_artifact
 from service.errors import StoreError
+from service.resilience.guards import Guards
 from service.runtime.active import ActiveModel, LoadedModel, ModelChoice
 from service.runtime.onnx_step import StepError
 from service.runtime.visits import Timing, Visits
@@ -43,10 +45,37 @@ class CountingStore:
 class DownStore:
     kind = "redis"
 
+    def shard_of(self, session_id):
+        return ""
+
     async def load(self, session_id):
         raise StoreError("redis GET failed (ConnectionError: refused)")
 
     save = delete = load
+
+
+class SlowGru:
+    """The GRU recommender with every step taking `delay_s` longer (an overloaded or stuck model)."""
+
+    name = "gru"
+
+    def __init__(self, inner, delay_s: float) -> None:
+        self.inner, self.delay_s = inner, delay_s
+
+    def start(self):
+        return self.inner.start()
+
+    async def advance(self, state, item):
+        await asyncio.sleep(self.delay_s)
+        return await self.inner.advance(state, item)
+
+    async def step(self, state, item, count, seen=frozenset()):
+        await asyncio.sleep(self.delay_s)
+        return await self.inner.step(state, item, count, seen)
+
+    async def rank(self, state, count, seen=frozenset()):
+        await asyncio.sleep(self.delay_s)
+        return await self.inner.rank(state, count, seen)
 
 
 class FailingStep:
@@ -91,14 +120,15 @@ def test_two_workers_racing_on_one_visit_lose_no_click(settings):
     assert lost > 0  # the race happened and was resolved by retrying, not avoided by luck
 
 
-def test_past_deadline_answers_from_neighbours_and_the_next_click_replays(settings, offline):
+def test_spent_budget_skips_the_model_and_the_next_click_replays(settings, offline):
     async def go():
         store = open_store(settings)
         active = ActiveModel(settings, store)
         await active.open(ModelChoice("shop", "v1", "gru"))
-        visits = Visits(store, active, 20, 16)
+        visits = Visits(store, active, 20, 16, Guards(settings))
         try:
             await visits.click("d", CLICKS[0], None, 5, True, 10.0, Timing())
+            # Started 2 s ago with a 1 s budget: nothing is left, so the model is not even started.
             late = await visits.click("d", CLICKS[1], None, 5, True, 1.0, Timing(started=time.perf_counter() - 2.0))
             stored = decode(await store.load("d"))
             after = await visits.click("d", CLICKS[2], None, 5, True, 10.0, Timing())
@@ -109,11 +139,34 @@ def test_past_deadline_answers_from_neighbours_and_the_next_click_replays(settin
 
     late, stored, after = asyncio.run(go())
     a = offline["v1"].artifact
-    assert late.served_by == "neighbours" and late.fallback_reason == "deadline" and late.sequence == 2
+    assert late.served_by == "neighbours" and late.fallback_reason == "budget" and late.sequence == 2
     row = [a.item_ids[i] for i in a.neighbour_items[a.item_index[CLICKS[1]]] if a.item_ids[i] not in CLICKS[:2]]
     assert late.item_ids == row[:5]
-    assert stored.model_tag is None and stored.hidden is None  # marked for rebuilding
+    assert stored.model_tag is None and stored.hidden is None and stored.items == tuple(CLICKS[:2])  # kept, marked for rebuilding
     assert after.served_by == "gru" and after.item_ids == offline["v1"].top(CLICKS, count=5)[0]
+
+
+def test_model_past_the_deadline_is_abandoned(settings_for, offline):
+    settings = settings_for()
+
+    async def go():
+        store = open_store(settings)
+        active = ActiveModel(settings, store, wrap_model=lambda inner: SlowGru(inner, 0.2))
+        await active.open(ModelChoice("shop", "v1", "gru"))
+        visits = Visits(store, active, 20, 16, Guards(settings))
+        try:
+            t0 = time.perf_counter()
+            late = await visits.click("slow", CLICKS[0], None, 5, True, 0.03, Timing())
+            took = time.perf_counter() - t0
+        finally:
+            await active.close()
+        return late, took
+
+    late, took = asyncio.run(go())
+    a = offline["v1"].artifact
+    assert late.fallback_reason == "deadline" and late.served_by == "neighbours" and late.sequence == 1
+    assert late.item_ids == [a.item_ids[i] for i in a.neighbour_items[a.item_index[CLICKS[0]]] if a.item_ids[i] != CLICKS[0]][:5]
+    assert 0.025 <= took <= 0.04  # abandoned at the deadline (set a millisecond early for the timer), not after 200 ms
 
 
 def test_failing_model_answers_from_neighbours(model_store):
@@ -144,12 +197,12 @@ def test_store_down_answers_without_the_visit(settings_for, offline):
     async def go():
         active = ActiveModel(settings, DownStore())
         await active.open(ModelChoice("shop", "v1", "gru"))
-        visits = Visits(DownStore(), active, 20, 16)
+        visits = Visits(DownStore(), active, 20, 16, Guards(settings))
         try:
             clicked = await visits.click("x", CLICKS[0], "e", 5, True, 10.0, Timing())
             current = await visits.current("x", 5, True, 10.0, Timing())
             with pytest.raises(StoreError):
-                await visits.forget("x", Timing())
+                await visits.forget("x", 10.0, Timing())
         finally:
             await active.close()
         return clicked, current
@@ -161,3 +214,25 @@ def test_store_down_answers_without_the_visit(settings_for, offline):
         a.item_ids[i] for i in a.neighbour_items[a.item_index[CLICKS[0]]] if a.item_ids[i] != CLICKS[0]
     ][:5]
     assert current.served_by == "popularity" and current.item_ids == [a.item_ids[i] for i in np.argsort(-a.popularity, kind="stable")[:5]]
+
+
+def test_guards_off_runs_the_bare_path(settings_for, offline):
+    # CAIRN_GUARDS=false (the benchmark's baseline): no budget check, no timeout, no breaker.
+    settings = settings_for(guards=False)
+
+    async def go():
+        store = open_store(settings)
+        active = ActiveModel(settings, store, wrap_model=lambda inner: SlowGru(inner, 0.05))
+        await active.open(ModelChoice("shop", "v1", "gru"))
+        guards = Guards(settings)
+        visits = Visits(store, active, 20, 16, guards)
+        try:
+            answer = await visits.click("bare", CLICKS[0], None, 5, True, 0.01, Timing())  # 10 ms budget, 50 ms step
+        finally:
+            await active.close()
+        return answer, guards
+
+    answer, guards = asyncio.run(go())
+    assert answer.served_by == "gru" and answer.fallback_reason is None
+    assert answer.item_ids == offline["v1"].top(CLICKS[:1], count=5)[0]
+    assert guards.model.window() == (0, 0)  # nothing was counted

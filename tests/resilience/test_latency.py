@@ -1,0 +1,64 @@
+"""The running quantile the budget check uses, against NumPy's nearest-rank quantile.
+
+Reference: Hyndman and Fan, "Sample Quantiles in Statistical Packages" (The American Statistician,
+1996), definition 1 (the inverse of the empirical distribution function), which NumPy implements as
+numpy.quantile(..., method="inverted_cdf").
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from service.resilience.latency import LatencyWindow
+
+
+@pytest.mark.parametrize("quantile", [0.5, 0.9, 0.95, 0.99])
+@pytest.mark.parametrize("n", [1, 2, 7, 20, 100, 256])
+def test_quantile_equals_numpy_inverted_cdf(quantile, n):
+    rng = np.random.default_rng(n)
+    values = rng.lognormal(-7, 1, size=n)  # seconds, skewed like latencies
+    window = LatencyWindow(size=256, quantile=quantile, max_age_s=60)
+    for v in values:
+        window.observe(float(v), now=10.0)
+    assert window.compute(10.0) == pytest.approx(np.quantile(values, quantile, method="inverted_cdf"), rel=0, abs=0)
+
+
+def test_only_the_last_size_samples_count():
+    window = LatencyWindow(size=50, quantile=0.95, max_age_s=60)
+    for v in range(1000):
+        window.observe(float(v), now=1.0)
+    assert window.compute(1.0) == np.quantile(np.arange(950, 1000), 0.95, method="inverted_cdf")
+
+
+def test_old_samples_age_out_and_an_empty_window_estimates_zero():
+    window = LatencyWindow(size=64, quantile=0.95, max_age_s=5.0)
+    for _ in range(10):
+        window.observe(0.3, now=100.0)  # a slow spell
+    assert window.estimate(100.0) == 0.3
+    for _ in range(10):
+        window.observe(0.001, now=103.0)
+    assert window.compute(104.0) == 0.3  # 95% of 20 samples: the slow ones still count
+    assert window.compute(105.5) == 0.001  # the slow spell is older than 5 s
+    assert window.compute(109.0) == 0.0  # nothing recent: nothing known, nothing refused
+
+
+def test_the_estimate_is_cached_between_refreshes_but_follows_a_slowdown_at_once():
+    window = LatencyWindow(size=64, quantile=0.5, max_age_s=60, refresh_every=4, refresh_s=10.0)
+    for _ in range(5):
+        window.observe(5.0, now=0.0)
+    assert window.estimate(0.0) == 5.0
+    for _ in range(3):
+        window.observe(1.0, now=0.0)
+    assert window.estimate(0.0) == 5.0  # three faster samples: not recomputed yet (median of 8 is still 5)
+    for _ in range(3):
+        window.observe(1.0, now=0.0)
+    assert window.estimate(0.0) == 1.0  # after the fourth: recomputed, 6 of 11 samples are 1
+    window.observe(9.0, now=0.0)
+    window.observe(9.0, now=0.0)
+    assert window.estimate(0.0) == 5.0  # slower than the estimate: recomputed at once (median of 1x6, 5x5, 9x2)
+    window.observe(0.5, now=0.0)
+    assert window.estimate(0.0) == 5.0  # faster: cached
+    assert window.estimate(11.0) == 1.0  # ten seconds on: recomputed (the median of 14 samples is now 1)
+    window.clear()
+    assert window.estimate(11.0) == 0.0
