@@ -55,6 +55,9 @@ class Settings(BaseSettings):
     session_ttl_s: float = Field(1800.0, ge=0.05, le=30 * 86400)  # inactivity timeout, 30 min (common practice)
     memory_max_sessions: int = Field(100_000, ge=1)  # memory store: least recently used beyond this are dropped
     event_memory: int = Field(16, ge=0, le=255)  # recent event_ids kept per session for de-duplication
+    # Redis stores: sessions whose last written state a worker keeps, so their next click here skips
+    # the read (service/store/recent.py; the check-and-set still guards every write). 0: off.
+    state_cache_sessions: int = Field(20_000, ge=0, le=10_000_000)
 
     # Answers.
     default_count: int = Field(10, ge=1, le=100)  # items per answer when a request does not say

@@ -31,6 +31,7 @@ from service.resilience.guards import Guards
 from service.runtime.active import ActiveModel, ModelChoice, ModelWrapper, resolve_choice
 from service.runtime.visits import Visits
 from service.store.base import SessionStore, open_store
+from service.store.recent import RecentWrites
 
 log = logging.getLogger("cairn.service")
 
@@ -52,6 +53,10 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
         guards = Guards(settings, on_change=metrics.breaker_changed)
         active = ActiveModel(settings, session_store, wrap_model=wrap_model, on_replaced=guards.model_replaced)
         follower: asyncio.Task | None = None
+        # The memory store is its own cache; a shared store's reads are worth saving.
+        recent = None
+        if session_store.kind != "memory" and settings.state_cache_sessions > 0:
+            recent = RecentWrites(settings.state_cache_sessions, settings.session_ttl_s)
         try:
             configured = await asyncio.to_thread(resolve_choice, settings)
             shared = await _shared_choice(session_store)
@@ -66,7 +71,7 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
                 settings=settings,
                 store=session_store,
                 active=active,
-                visits=Visits(session_store, active, settings.history_length, settings.event_memory, guards),
+                visits=Visits(session_store, active, settings.history_length, settings.event_memory, guards, recent),
                 metrics=metrics,
                 guards=guards,
             )
@@ -119,6 +124,10 @@ def _collect(service: Service) -> None:
     m.active_model.set((choice.name, choice.version, choice.recommender), 1.0)
     m.gru_batches.set((), float(model.batcher.batches))
     m.gru_batched_clicks.set((), float(model.batcher.clicks))
+    recent = service.visits.recent
+    if recent is not None:
+        m.state_cache.set(("hit",), float(recent.hits))
+        m.state_cache.set(("miss",), float(recent.misses))
     guards = service.guards
     for breaker in guards.breakers():
         m.breaker_state.set((breaker.name,), float(breaker.state))  # reading the state moves an open breaker past its cool-down

@@ -191,6 +191,9 @@ class ServiceMetrics:
         self.gru_batched_clicks: Gauge = add(
             Gauge("cairn_gru_batched_clicks", "Clicks scored by those calls; divided by cairn_gru_batches, the mean batch size.")
         )
+        self.state_cache: Gauge = add(
+            Gauge("cairn_state_cache_lookups", "Clicks whose session state was found in this worker's recent writes (hit) or read from the store (miss).", ("result",))
+        )
         self.breaker_state: Gauge = add(
             Gauge("cairn_breaker_state", "Circuit breaker state: 0 closed, 1 half-open, 2 open.", ("breaker",))
         )

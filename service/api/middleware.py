@@ -3,7 +3,8 @@
 - refuses a body over 16 KB with 413 before anything parses it (by Content-Length, and by counting
   when the length is not announced);
 - adds `Server-Timing` to every response (W3C Server Timing, https://www.w3.org/TR/server-timing/:
-  `name;dur=milliseconds`, entries separated by commas);
+  `name;dur=milliseconds`, entries separated by commas): store calls, the model as the request saw
+  it, of that the ONNX Runtime call that scored the click (`step`), and the total;
 - records the request's metrics once, after it is answered;
 - is the last resort: an exception from inside becomes a plain 500 without internals, and the log
   gets its type and stack, never its message (which could quote session contents).
@@ -29,7 +30,10 @@ _BODY_METHODS = frozenset({"POST", "PUT", "PATCH"})
 
 
 def server_timing(timing: Timing, total_s: float) -> bytes:
-    return f"store;dur={timing.store_s * 1e3:.2f}, model;dur={timing.model_s * 1e3:.2f}, total;dur={total_s * 1e3:.2f}".encode()
+    return (
+        f"store;dur={timing.store_s * 1e3:.2f}, model;dur={timing.model_s * 1e3:.2f}, "
+        f"step;dur={timing.step_s * 1e3:.2f}, total;dur={total_s * 1e3:.2f}"
+    ).encode()
 
 
 def error_body(status: int, error: str, message: str, field: str | None = None) -> bytes:

@@ -29,6 +29,7 @@ _NO_SEEN: frozenset[int] = frozenset()
 class Ranking:
     items: list[int]  # best first, k <= count
     scores: list[float]
+    step_s: float = 0.0  # GRU: seconds ONNX Runtime spent on the call that scored it (Server-Timing `step`)
 
 
 class Recommender(Protocol):
@@ -43,10 +44,10 @@ class Recommender(Protocol):
     async def rank(self, state: Any, count: int, seen: frozenset[int] = _NO_SEEN) -> Ranking: ...
 
 
-def without_seen(items: list[int], scores: list[float], seen: frozenset[int] | set[int], count: int) -> Ranking:
+def without_seen(items: list[int], scores: list[float], seen: frozenset[int] | set[int], count: int, step_s: float = 0.0) -> Ranking:
     """The first `count` candidates that are not in `seen`, order kept."""
     if not seen:
-        return Ranking(items[:count], scores[:count])
+        return Ranking(items[:count], scores[:count], step_s)
     kept_items: list[int] = []
     kept_scores: list[float] = []
     for item, score in zip(items, scores):
@@ -55,7 +56,7 @@ def without_seen(items: list[int], scores: list[float], seen: frozenset[int] | s
             kept_scores.append(score)
             if len(kept_items) == count:
                 break
-    return Ranking(kept_items, kept_scores)
+    return Ranking(kept_items, kept_scores, step_s)
 
 
 class PopularityRecommender:
@@ -155,8 +156,8 @@ class GruRecommender:
 
     async def step(self, state: GruState, item: int, count: int, seen: frozenset[int] = _NO_SEEN) -> tuple[GruState, Ranking]:
         top_n = min(self.n_items, count + len(seen))
-        next_hidden, items, scores = await self.batcher.run(item, state.hidden, top_n)  # [L, H], [top_n], [top_n]
-        return GruState(next_hidden, state.hidden, item), without_seen(items.tolist(), scores.tolist(), seen, count)
+        next_hidden, items, scores, step_s = await self.batcher.run_timed(item, state.hidden, top_n)  # [L, H], [top_n], [top_n]
+        return GruState(next_hidden, state.hidden, item), without_seen(items.tolist(), scores.tolist(), seen, count, step_s)
 
     async def rank(self, state: GruState, count: int, seen: frozenset[int] = _NO_SEEN) -> Ranking:
         # The list after the last click is that click's step again, from the state before it.

@@ -40,6 +40,7 @@ from service.resilience.guards import Guards
 from service.runtime.active import ActiveModel, LoadedModel, ModelChoice
 from service.runtime.recommenders import GruState, Ranking
 from service.store.base import SessionStore
+from service.store.recent import RecentWrites
 from service.store.state import SessionState, decode, encode, token_of
 
 log = logging.getLogger("cairn.service")
@@ -58,7 +59,8 @@ class Timing:
 
     started: float = field(default_factory=time.perf_counter)
     store_s: float = 0.0
-    model_s: float = 0.0
+    model_s: float = 0.0  # the model as the request saw it: queue, thread hand-over, replay, scoring
+    step_s: float = 0.0  # of that, ONNX Runtime's call that scored this click
 
 
 @dataclass
@@ -125,13 +127,20 @@ class _KeyedLocks:
 
 class Visits:
     def __init__(
-        self, store: SessionStore, active: ActiveModel, history_length: int, event_memory: int, guards: Guards | None = None
+        self,
+        store: SessionStore,
+        active: ActiveModel,
+        history_length: int,
+        event_memory: int,
+        guards: Guards | None = None,
+        recent: RecentWrites | None = None,
     ) -> None:
         self.store = store
         self.active = active
         self.history_length = history_length
         self.event_memory = event_memory
         self.guards = guards
+        self.recent = recent  # this process's last writes: a click may skip the store's read
         self._guard_model = guards is not None and guards.enabled
         # The in-process store cannot stall or fail on its own: it runs unguarded.
         self._guard_store = self._guard_model and store.kind != "memory"
@@ -150,8 +159,12 @@ class Visits:
         deadline = timing.started + budget_s
         try:
             async with self._locks.hold(session_id, deadline if self._guard_model else None):
-                for _ in range(MAX_ATTEMPTS):
-                    raw = await self._load(session_id, deadline, timing)
+                recent = self.recent
+                for attempt in range(MAX_ATTEMPTS):
+                    # Only the first round may trust the recent write: a lost check-and-set means it is stale.
+                    raw = recent.get(session_id) if recent is not None and attempt == 0 else None
+                    if raw is None:
+                        raw = await self._load(session_id, deadline, timing)
                     state = self._decode(raw)
                     model, choice = self.active.current
                     if event_id is not None and state is not None and event_id in state.event_ids:
@@ -159,7 +172,11 @@ class Visits:
                         answer.duplicate = True
                         return answer
                     new_state, answer = await self._apply(model, choice, state, item_id, event_id, count, exclude_seen, deadline, timing)
-                    if await self._save(session_id, new_state, token_of(raw), deadline, timing):
+                    value = encode(new_state)
+                    if recent is None:
+                        if await self._save(session_id, value, token_of(raw), deadline, timing):
+                            return answer
+                    elif await self._save_remembered(recent, session_id, value, token_of(raw), deadline, timing):
                         return answer
                 raise StoreError(f"{MAX_ATTEMPTS} concurrent writes to one session in a row; click not recorded")
         except StoreError as exc:
@@ -182,6 +199,8 @@ class Visits:
 
     async def forget(self, session_id: str, budget_s: float, timing: Timing) -> None:
         """Delete the visit; StoreError when the store cannot (the caller answers 503)."""
+        if self.recent is not None:
+            self.recent.forget(session_id)
         await self._store_call(self.store.delete, (session_id,), session_id, timing.started + budget_s, timing)
 
     # -- the click path -------------------------------------------------------------------------
@@ -222,6 +241,7 @@ class Visits:
                         if gru_state is None:
                             gru_state = await self._replay(model, history)
                         gru_state, ranking = await model.gru.step(gru_state, index, count, seen)
+                    timing.step_s = ranking.step_s
                     self._model_done(ticket, t0, steps)
                     served_by = "gru"
                     hidden, previous, tag = gru_state.hidden.tobytes(), gru_state.previous.tobytes(), model.tag
@@ -288,6 +308,7 @@ class Visits:
                 async with self._model_timeout(model_deadline, t0):
                     gru_state = await self._replay(model, state.items) if replay else GruState(stored.hidden, stored.previous, last)
                     ranking = await model.gru.rank(gru_state, count, seen)
+                timing.step_s = ranking.step_s
                 self._model_done(ticket, t0, steps)
                 return self._answer(model, ranking, "gru", None, state.sequence)
             except asyncio.CancelledError:
@@ -346,8 +367,24 @@ class Visits:
     async def _load(self, session_id: str, deadline: float, timing: Timing) -> bytes | None:
         return await self._store_call(self.store.load, (session_id,), session_id, deadline, timing)
 
-    async def _save(self, session_id: str, state: SessionState, expected: bytes, deadline: float, timing: Timing) -> bool:
-        return await self._store_call(self.store.save, (session_id, encode(state), expected), session_id, deadline, timing)
+    async def _save(self, session_id: str, value: bytes, expected: bytes, deadline: float, timing: Timing) -> bool:
+        return await self._store_call(self.store.save, (session_id, value, expected), session_id, deadline, timing)
+
+    async def _save_remembered(
+        self, recent: RecentWrites, session_id: str, value: bytes, expected: bytes, deadline: float, timing: Timing
+    ) -> bool:
+        """`_save`, keeping the value as this process's recent write when it landed; forgetting it on
+        any other outcome (lost race, store error, cancelled: what the store holds is not known)."""
+        written_at = recent.clock()
+        landed = False
+        try:
+            landed = await self._save(session_id, value, expected, deadline, timing)
+        finally:
+            if landed:
+                recent.put(session_id, value, written_at)
+            else:
+                recent.forget(session_id)
+        return landed
 
     async def _store_call(
         self, method: Callable[..., Awaitable[Any]], args: tuple, session_id: str, deadline: float, timing: Timing

@@ -130,7 +130,7 @@ def test_tiny_run_reports_every_variant_and_position(tmp_path: Path, capsys: pyt
         assert v["slope_ms_per_click"] == pytest.approx(ols, abs=1e-4), name
     assert report["variants"]["gru-step"]["positions"]["10"]["ratio_to_gru_step"] == 1.0
     for name in side_by_side.SERVICE:
-        assert set(report["variants"][name]["server_timing_median_ms"]["50"]) == {"store", "model", "total"}
+        assert set(report["variants"][name]["server_timing_median_ms"]["50"]) == {"store", "model", "step", "total"}
     # The same weights answer the same lists through every GRU variant; the service never fell back.
     assert report["answers_agree_with_cairn_memory"] == {v: 1.0 for v in side_by_side.GRU_ANSWERS}
     assert not any(report["answers_from_another_recommender"].values())

@@ -210,7 +210,9 @@ def test_compose_has_redis_two_replicas_and_a_balancer(compose: dict[str, Any]) 
     for name in ("api-1", "api-2"):
         fields = {k.removeprefix("CAIRN_").lower(): v for k, v in services[name]["environment"].items()}
         settings = Settings(**fields)
-        assert settings.workers == 2 and settings.store_kind == "redis"
+        # One worker each: nginx hashes a visit onto one replica, so its clicks reach one worker and
+        # that worker's recent-writes cache saves the Redis read.
+        assert settings.workers == 1 and settings.store_kind == "redis" and settings.state_cache_sessions > 0
     assert set(services["lb"]["depends_on"]) == {"api-1", "api-2"}
 
 
@@ -246,7 +248,7 @@ def test_cluster_profile_adds_a_redis_cluster_and_its_own_replicas(compose: dict
         assert env["CAIRN_STORE"].startswith("redis-cluster://")
         assert sorted(cluster_nodes(env["CAIRN_STORE"])[0]) == addresses
         settings = Settings(**{k.removeprefix("CAIRN_").lower(): v for k, v in env.items()})
-        assert settings.store_kind == "redis-cluster" and settings.workers == 2
+        assert settings.store_kind == "redis-cluster" and settings.workers == 1
 
 
 def test_compose_names_paths_that_exist(compose: dict[str, Any]) -> None:
@@ -277,6 +279,12 @@ def test_nginx_balances_over_exactly_the_profile_replicas(compose: dict[str, Any
     image_port = re.search(r"CAIRN_PORT=(\d+)", (DOCKER / "Dockerfile").read_text(encoding="utf-8")).group(1)
     assert {port for _, port in servers} == {image_port}
     assert f"proxy_pass http://{upstream.group(1)};" in conf
+    # Each visit onto one replica: a consistent hash of the session id taken from the path. The map's
+    # pattern is PCRE (nginx docs: map, regular expressions); this one reads the same in Python's re.
+    assert re.search(r"^\s*hash\s+\$cairn_visit\s+consistent;", upstream.group(2), flags=re.M)
+    [(pattern, value)] = re.findall(r"map\s+\$uri\s+\$cairn_visit\s*\{\s*~(\S+)\s+\$(\w+);", conf)
+    for path in ("/v1/sessions/visit-1/clicks", "/v1/sessions/visit-1/recommendations", "/v1/sessions/visit-1"):
+        assert re.match(pattern.replace("(?<", "(?P<"), path).group(value) == "visit-1", path
     listen = re.search(r"^\s*listen\s+(\d+);", conf, flags=re.M).group(1)
     [published] = svc["ports"]
     assert published.endswith(f":{listen}")

@@ -95,6 +95,7 @@ def test_a_stalled_store_call_is_abandoned_within_the_budget(start_server, share
     server = start_server(
         shared_redis.url, wrap_store=wrap, default_budget_ms=40,
         store_breaker_min_calls=4, store_breaker_failure_ratio=0.25, store_breaker_cool_down_s=0.3,
+        state_cache_sessions=0,  # every click reads the store (no recent write to start from): each meets the stall
     )  # fmt: skip
     sessions = [sid("stall") for _ in range(6)]
     with server.client() as c:

@@ -179,10 +179,11 @@ def test_every_response_carries_server_timing(server, sid):
         ]
     for r in replies:
         timing = parse_server_timing(r.headers["server-timing"])
-        assert set(timing) == {"store", "model", "total"}, r.headers["server-timing"]
-        assert 0 <= timing["store"] <= timing["total"] and 0 <= timing["model"] <= timing["total"]
+        assert set(timing) == {"store", "model", "step", "total"}, r.headers["server-timing"]
+        assert 0 <= timing["store"] <= timing["total"] and 0 <= timing["step"] <= timing["model"] <= timing["total"]
     click_timing = parse_server_timing(replies[0].headers["server-timing"])
-    assert click_timing["model"] > 0 and click_timing["store"] > 0
+    assert replies[0].json()["served_by"] == "gru"
+    assert click_timing["model"] > 0 and click_timing["store"] > 0 and click_timing["step"] > 0
 
 
 def test_openapi_page_is_served(server):

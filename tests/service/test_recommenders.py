@@ -4,6 +4,8 @@ neighbours, and OnnxStep called one click at a time for the batched GRU runner."
 from __future__ import annotations
 
 import asyncio
+import threading
+import time
 
 import numpy as np
 import pytest
@@ -121,3 +123,72 @@ def test_closed_batcher_refuses_work(graph):
             await batcher.run(0, np.zeros((step.layers, step.hidden_size), np.float32), 1)
 
     asyncio.run(go())
+
+
+class RecordingStep:
+    """The real step, recording which thread ran each call, optionally `delay_s` slower (time.sleep:
+    a call that holds its thread, as a stalled ONNX Runtime call would)."""
+
+    def __init__(self, real) -> None:
+        self.real = real
+        self.layers, self.hidden_size, self.n_items = real.layers, real.hidden_size, real.n_items
+        self.delay_s = 0.0
+        self.threads: list[str] = []
+
+    def run(self, items, hidden, top_n):
+        self.threads.append(threading.current_thread().name)
+        if self.delay_s:
+            time.sleep(self.delay_s)
+        return self.real.run(items, hidden, top_n)
+
+
+def test_lone_clicks_run_on_the_loop_until_one_is_slow_and_batches_on_the_thread(graph):
+    artifact, real = graph
+    step = RecordingStep(real)
+    zero = np.zeros((step.layers, step.hidden_size), np.float32)
+
+    async def go():
+        batcher = StepBatcher(step, inline_max_s=0.002)
+        batcher.start()
+        try:
+            lone = [await batcher.run_timed(5, zero, 3)]  # 1: fast, on the loop
+            step.delay_s = 0.005
+            lone.append(await batcher.run_timed(6, zero, 3))  # 2: on the loop, too slow: the next goes to the thread
+            step.delay_s = 0.0
+            lone.append(await batcher.run_timed(7, zero, 3))  # 3: on the thread, fast again
+            lone.append(await batcher.run_timed(8, zero, 3))  # 4: back on the loop
+            together = await asyncio.gather(*(batcher.run(i, zero, 3) for i in range(10, 14)))  # 5: one call of 4
+        finally:
+            await batcher.close()
+        return lone, together, batcher.inline_calls, batcher.batches
+
+    lone, together, inline_calls, batches = asyncio.run(go())
+    loop_thread = threading.main_thread().name
+    assert step.threads[:4] == [loop_thread, loop_thread, step.threads[2], loop_thread]
+    assert step.threads[2].startswith("cairn-ort") and step.threads[4].startswith("cairn-ort")
+    assert (inline_calls, batches, len(step.threads)) == (3, 5, 5)
+    assert lone[1][3] >= 0.005 > lone[0][3]  # the reported step time is the call's own
+    for (nh, top, _, _), item in zip(lone, (5, 6, 7, 8)):
+        ref_h, ref_top, _ = real.run(np.array([item], dtype=np.int64), zero[:, None, :].copy(), 3)
+        assert np.allclose(nh, ref_h[:, 0, :], atol=1e-6) and top.tolist() == ref_top[0].tolist()
+    for (nh, top, _), item in zip(together, range(10, 14)):
+        ref_h, ref_top, _ = real.run(np.array([item], dtype=np.int64), zero[:, None, :].copy(), 3)
+        assert np.allclose(nh, ref_h[:, 0, :], atol=1e-6) and top.tolist() == ref_top[0].tolist()
+
+
+def test_inline_steps_can_be_turned_off(graph):
+    _, real = graph
+    step = RecordingStep(real)
+
+    async def go():
+        batcher = StepBatcher(step, inline_max_s=0.0)
+        batcher.start()
+        try:
+            for i in range(3):
+                await batcher.run(i, np.zeros((step.layers, step.hidden_size), np.float32), 2)
+        finally:
+            await batcher.close()
+        return batcher.inline_calls
+
+    assert asyncio.run(go()) == 0
+    assert all(name.startswith("cairn-ort") for name in step.threads)
