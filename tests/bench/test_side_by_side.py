@@ -6,10 +6,6 @@ from __future__ import annotations
 
 import contextlib
 import json
-import os
-import socket
-import threading
-import time
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -17,26 +13,16 @@ import httpx
 import numpy as np
 import pytest
 import torch
-import uvicorn
 
 from service.bench import side_by_side
 from service.bench.naive_serving import HISTORY_LENGTH, VARIANTS, create_app
 from service.offline.export import write_random_artifact
 from service.offline.gru import load_checkpoint
+from tests._servers import serve_app
 
 N_ITEMS = 60
 HIDDEN = 8
 SEED = 5
-
-
-@pytest.fixture(autouse=True)
-def _no_cairn_environment() -> Iterator[None]:
-    """The servers the benchmark starts read CAIRN_ variables: none from the shell."""
-    saved = {k: v for k, v in os.environ.items() if k.startswith("CAIRN_")}
-    for key in saved:
-        del os.environ[key]
-    yield
-    os.environ.update(saved)
 
 
 @pytest.fixture(scope="module")
@@ -51,25 +37,8 @@ def artifact(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
 @contextlib.contextmanager
 def _serve(app: object) -> Iterator[httpx.Client]:
     """The app on a real uvicorn (uvloop, httptools) in a thread, on a pre-bound loopback socket."""
-    sock = socket.socket()
-    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-    sock.bind(("127.0.0.1", 0))
-    config = uvicorn.Config(app, loop="uvloop", http="httptools", lifespan="on", log_level="warning", log_config=None)
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        if not thread.is_alive() or time.monotonic() > deadline:
-            raise RuntimeError("the test server did not start")
-        time.sleep(0.01)
-    try:
-        with httpx.Client(base_url=f"http://127.0.0.1:{sock.getsockname()[1]}", timeout=10) as client:
-            yield client
-    finally:
-        server.should_exit = True
-        thread.join(timeout=15)
-        sock.close()
+    with serve_app(app) as url, httpx.Client(base_url=url, timeout=10) as client:
+        yield client
 
 
 def _reference_lists(checkpoint: Path, clicks: list[int], count: int) -> list[list[str]]:

@@ -8,11 +8,9 @@ Slow (one pip install from the package index, tens of seconds); kept to one inst
 from __future__ import annotations
 
 import json
-import os
 import shutil
 import subprocess
 import sys
-import time
 import tomllib
 import urllib.error
 import urllib.request
@@ -20,7 +18,7 @@ from pathlib import Path
 
 from packaging.requirements import Requirement
 
-from service.load.ports import free_loopback_port
+from tests._servers import environment_without_cairn, free_port, running_process
 
 ROOT = Path(__file__).resolve().parents[2]
 REQUIREMENTS = ROOT / "docker" / "requirements-serve.txt"
@@ -72,27 +70,19 @@ def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Pa
 
     store = tmp_path / "model_store"
     write_random_artifact(store, "shop", "v1", n_items=50, hidden_size=8, neighbours=5, seed=0)
-    port = free_loopback_port()
-    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
-    env.update(CAIRN_MODEL_STORE=str(store), CAIRN_MODEL="gru", CAIRN_STORE="memory")
-    log = open(tmp_path / "serve.log", "wb")
-    server = subprocess.Popen(
-        [str(venv / "bin" / "cairn"), "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "1"],
-        stdout=log, stderr=subprocess.STDOUT, env=env, cwd=tmp_path, start_new_session=True,
-    )  # fmt: skip
+    port = free_port()
     base = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + 60
-        while True:
-            assert server.poll() is None, (tmp_path / "serve.log").read_text()
-            try:
-                with urllib.request.urlopen(f"{base}/healthz", timeout=2) as resp:
-                    if resp.status == 200:
-                        break
-            except (urllib.error.URLError, OSError):
-                pass
-            assert time.monotonic() < deadline, (tmp_path / "serve.log").read_text()
-            time.sleep(0.2)
+
+    def healthy() -> bool:
+        with urllib.request.urlopen(f"{base}/healthz", timeout=2) as resp:
+            return resp.status == 200
+
+    with running_process(
+        [str(venv / "bin" / "cairn"), "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "1"],
+        log_path=tmp_path / "serve.log", ready=healthy, what="cairn serve in the fresh environment", ignore=(urllib.error.URLError, OSError),
+        poll_s=0.2, env=environment_without_cairn(CAIRN_MODEL_STORE=str(store), CAIRN_MODEL="gru", CAIRN_STORE="memory"),
+        cwd=tmp_path, start_new_session=True,
+    ):  # fmt: skip
         body = json.dumps({"item_id": "sku-000007", "count": 3, "exclude_seen": False}).encode()
         request = urllib.request.Request(
             f"{base}/v1/sessions/fresh-venv-1/clicks", data=body, method="POST", headers={"Content-Type": "application/json"}
@@ -103,11 +93,3 @@ def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Pa
         assert answer["session_id"] == "fresh-venv-1"
         assert answer["served_by"] == "gru" and answer["fallback_reason"] is None
         assert len(answer["items"]) == 3
-    finally:
-        server.terminate()
-        try:
-            server.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            server.kill()
-            server.wait(timeout=5)
-        log.close()

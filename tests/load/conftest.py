@@ -1,13 +1,12 @@
 """Fixtures of the load-tool tests: a small random artifact and held-out visits over its items.
 
 The load tests start the real service (`cairn serve` as a subprocess on a free loopback port)
-and real Locust processes; they run a few seconds of load each.
+and real Locust processes; they run a few seconds of load each. The service starts from no CAIRN_
+variables of the shell (tests/conftest.py clears them).
 """
 
 from __future__ import annotations
 
-import os
-from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -18,16 +17,6 @@ from service.offline.dataset import PreparedData, SessionSplit
 
 N_ITEMS = 60
 NEIGHBOURS = 20  # > any count the tests ask for, so a neighbours answer is one table row's head
-
-
-@pytest.fixture(scope="session", autouse=True)
-def _clean_environment() -> Iterator[None]:
-    """The service started by a load test inherits this environment: start it from no CAIRN_ variables."""
-    saved = {k: v for k, v in os.environ.items() if k.startswith("CAIRN_")}
-    for key in saved:
-        del os.environ[key]
-    yield
-    os.environ.update(saved)
 
 
 @pytest.fixture(scope="session")

@@ -3,52 +3,32 @@ may kill and restart, a three-master Redis Cluster, servers in a thread with inj
 
 Everything is real: redis-server processes on free loopback ports (never the system Redis on 6379),
 uvicorn serving real HTTP, `cairn serve --workers 2` as a subprocess. Faults in the model are a
-small class passed to the app factory (`ModelFault.wrap`), never a patch.
+small class passed to the app factory (`ModelFault.wrap`), never a patch. The redis-server
+processes and servers themselves are tests/_servers.py's; `sid`, `token` and the clean environment
+come from tests/conftest.py.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
-import itertools
-import os
-import random
-import shutil
-import signal
-import socket
-import subprocess
 import threading
 import time
 from collections.abc import Iterator
-from dataclasses import dataclass
 from pathlib import Path
 from types import SimpleNamespace
 
 import httpx
 import numpy as np
 import pytest
-import uvicorn
 
 from service.artifacts import load_artifact
-from service.config import ENV_PREFIX, Settings
+from service.config import Settings
 from service.runtime.onnx_step import OnnxStep, StepError
+from tests._servers import RedisProcess, RunningServer, free_port, serve_in_thread, shop_settings
 
 N_ITEMS = 400
 HIDDEN = 24
-TOKEN = "resilience-admin-token-0123456789"
-_ids = itertools.count()
-
-
-@pytest.fixture(scope="session", autouse=True)
-def _clean_environment() -> Iterator[None]:
-    """Settings read CAIRN_ variables: the tests start from none, whatever the shell has."""
-    saved = {k: v for k, v in os.environ.items() if k.startswith(ENV_PREFIX)}
-    for key in saved:
-        del os.environ[key]
-    yield
-    for key in [k for k in os.environ if k.startswith(ENV_PREFIX)]:
-        del os.environ[key]
-    os.environ.update(saved)
 
 
 # -- artifacts --------------------------------------------------------------------------------------
@@ -167,67 +147,6 @@ class FaultyGru:
 # -- redis-server processes -------------------------------------------------------------------------
 
 
-def free_port(cluster_bus: bool = False) -> int:
-    """A free loopback port (not 6379); with `cluster_bus`, port + 10000 is free too (Redis Cluster's bus)."""
-    for _ in range(200):
-        port = random.randint(20000, 55000) if cluster_bus else 0
-        try:
-            with socket.socket() as a:
-                a.bind(("127.0.0.1", port))
-                port = a.getsockname()[1]
-                if cluster_bus:
-                    with socket.socket() as b:
-                        b.bind(("127.0.0.1", port + 10000))
-        except OSError:
-            continue
-        if port != 6379:
-            return port
-    raise RuntimeError("no free loopback port")
-
-
-def redis_answers(port: int, timeout: float = 0.2) -> bool:
-    with contextlib.suppress(OSError), socket.create_connection(("127.0.0.1", port), timeout=timeout) as s:
-        s.sendall(b"PING\r\n")
-        return s.recv(64).startswith(b"+PONG")
-    return False
-
-
-class RedisProcess:
-    """One redis-server on a fixed loopback port, without persistence; `kill` and `start` again at will."""
-
-    def __init__(self, port: int, *extra: str) -> None:
-        self.port = port
-        self.extra = extra
-        self.proc: subprocess.Popen | None = None
-        self.binary = shutil.which("redis-server")
-        if self.binary is None:
-            pytest.fail("redis-server is not installed: the fault tests need it (`make redis-server` installs it)")
-
-    @property
-    def url(self) -> str:
-        return f"redis://127.0.0.1:{self.port}/0"
-
-    def start(self) -> RedisProcess:
-        self.proc = subprocess.Popen(
-            [self.binary, "--port", str(self.port), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no", *self.extra],
-            stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
-        )  # fmt: skip
-        deadline = time.monotonic() + 10
-        while not redis_answers(self.port):
-            if self.proc.poll() is not None or time.monotonic() > deadline:
-                self.kill()
-                pytest.fail(f"redis-server did not start on port {self.port}")
-            time.sleep(0.02)
-        return self
-
-    def kill(self) -> None:
-        """SIGKILL: the process dies at once, as in a crash; its sockets are closed by the kernel."""
-        if self.proc is not None and self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGKILL)
-            self.proc.wait(timeout=5)
-        self.proc = None
-
-
 @pytest.fixture(scope="session")
 def shared_redis() -> Iterator[RedisProcess]:
     """One redis-server for the tests that do not kill theirs; each server uses its own key prefix."""
@@ -248,53 +167,7 @@ def own_redis() -> Iterator[RedisProcess]:
 
 
 def make_settings(model_store: Path, store: str = "memory", **overrides: object) -> Settings:
-    base: dict[str, object] = {
-        "model_store": model_store,
-        "model_name": "shop",
-        "model_version": "v1",
-        "store": store,
-        "redis_prefix": f"r{os.getpid()}-{next(_ids)}:",
-        "admin_token": TOKEN,
-        "log_level": "warning",
-    }
-    base.update(overrides)
-    return Settings(**base)
-
-
-@dataclass
-class RunningServer:
-    url: str
-    settings: Settings
-
-    def client(self, **kwargs: object) -> httpx.Client:
-        return httpx.Client(base_url=self.url, timeout=10, **kwargs)
-
-
-@contextlib.contextmanager
-def serve_in_thread(settings: Settings, **app_kwargs: object) -> Iterator[RunningServer]:
-    """One uvicorn (uvloop, httptools) in a thread on a pre-bound loopback socket, stopped on exit."""
-    from service.api.app import create_app
-
-    app = create_app(settings, **app_kwargs)
-    sock = socket.socket()
-    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-    sock.bind(("127.0.0.1", 0))
-    port = sock.getsockname()[1]
-    config = uvicorn.Config(app, loop="uvloop", http="httptools", lifespan="on", log_level="warning", access_log=False, log_config=None)
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        if not thread.is_alive() or time.monotonic() > deadline:
-            raise RuntimeError("the test server did not start")
-        time.sleep(0.01)
-    try:
-        yield RunningServer(f"http://127.0.0.1:{port}", settings)
-    finally:
-        server.should_exit = True
-        thread.join(timeout=15)
-        sock.close()
+    return shop_settings(model_store, store, tag="r", **{"log_level": "warning", **overrides})
 
 
 @pytest.fixture()
@@ -314,16 +187,6 @@ def start_server(model_store: Path) -> Iterator:
 
     with stack:
         yield start
-
-
-@pytest.fixture(scope="session")
-def sid():
-    """A new session id on each call."""
-
-    def new(tag: str = "s") -> str:
-        return f"{tag}-{os.getpid()}-{next(_ids)}"
-
-    return new
 
 
 def metric(text: str, name: str, **labels: str) -> float:
@@ -386,11 +249,6 @@ class Load:
 
     def between(self, start: float, end: float) -> list[tuple]:
         return [r for r in self.replies if start <= r[0] < end]
-
-
-@pytest.fixture(scope="session")
-def token() -> str:
-    return TOKEN
 
 
 def auth(token: str) -> dict[str, str]:

@@ -8,9 +8,6 @@ import asyncio
 import os
 import random
 import re
-import subprocess
-import sys
-import time
 from collections import Counter, defaultdict
 
 import httpx
@@ -18,47 +15,30 @@ import pytest
 import redis as redis_sync
 
 from service.store.state import decode
+from tests._servers import cairn_serve, free_port
 
 SESSIONS, CLICKS_EACH, RESENT = 20, 10, 40
 
 
 @pytest.fixture()
-def two_workers(model_store, shared_redis, tmp_path, token, kit):
-    port = kit.free_port()
+def two_workers(model_store, shared_redis, tmp_path, token):
+    port = free_port()
     prefix = f"x{os.getpid()}:"
-    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
-    env.update(
+    url = f"http://127.0.0.1:{port}"
+    pids: set[str] = set()
+
+    def both_up() -> bool:  # both workers up: each answers /metrics with its own pid
+        with httpx.Client(base_url=url, timeout=2, limits=httpx.Limits(max_keepalive_connections=0)) as c:
+            for _ in range(20):
+                pids.add(re.search(r'cairn_worker_info\{pid="(\d+)"\}', c.get("/metrics").text).group(1))
+        return len(pids) >= 2
+
+    with cairn_serve(
+        ["--workers", "2", "--port", str(port)], tmp_path, both_up, "cairn serve --workers 2", ignore=(httpx.TransportError,),
         CAIRN_STORE=shared_redis.url, CAIRN_MODEL_STORE=str(model_store), CAIRN_MODEL_NAME="shop", CAIRN_MODEL_VERSION="v1",
         CAIRN_ADMIN_TOKEN=token, CAIRN_REDIS_PREFIX=prefix, CAIRN_LOG_LEVEL="warning",
-    )  # fmt: skip
-    log = open(tmp_path / "serve.log", "w+")
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve", "--workers", "2", "--port", str(port)],
-        env=env, cwd=tmp_path, stdout=log, stderr=subprocess.STDOUT,
-    )  # fmt: skip
-    url = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + 60
-        pids: set[str] = set()
-        while len(pids) < 2:  # both workers up: each answers /metrics with its own pid
-            try:
-                with httpx.Client(base_url=url, timeout=2, limits=httpx.Limits(max_keepalive_connections=0)) as c:
-                    for _ in range(20):
-                        pids.add(re.search(r'cairn_worker_info\{pid="(\d+)"\}', c.get("/metrics").text).group(1))
-            except httpx.TransportError:
-                pass
-            if proc.poll() is not None or time.monotonic() > deadline:
-                log.seek(0)
-                pytest.fail(f"cairn serve --workers 2 did not come up:\n{log.read()}")
-            time.sleep(0.1)
+    ):  # fmt: skip
         yield url, prefix
-    finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-        log.close()
 
 
 def clicks_by_worker(url: str) -> dict[str, int]:

@@ -3,47 +3,27 @@
 Servers run in a thread of the test process (one uvicorn, real sockets, real HTTP) or, for the
 multi-worker test, as a `cairn serve` subprocess. redis-server is started here on a free loopback
 port without persistence and stopped at teardown; the system Redis on 6379 is never touched.
+The servers themselves are tests/_servers.py's; `sid`, `token` and the clean environment come from
+tests/conftest.py.
 """
 
 from __future__ import annotations
 
 import contextlib
-import itertools
 import os
-import shutil
-import socket
-import subprocess
-import threading
-import time
 from collections.abc import Iterator
-from dataclasses import dataclass
 from pathlib import Path
 
-import httpx
 import numpy as np
 import pytest
-import uvicorn
 
 from service.artifacts import load_artifact
-from service.config import ENV_PREFIX, Settings
+from service.config import Settings
 from service.runtime.onnx_step import OnnxStep
+from tests._servers import RedisProcess, RunningServer, free_port, serve_in_thread, shop_settings
 
 N_ITEMS = 500
 HIDDEN = 32
-TOKEN = "test-admin-token-0123456789"
-_prefixes = itertools.count()
-
-
-@pytest.fixture(scope="session", autouse=True)
-def _clean_environment() -> Iterator[None]:
-    """Settings read CAIRN_ variables: the tests start from none, whatever the shell has."""
-    saved = {k: v for k, v in os.environ.items() if k.startswith(ENV_PREFIX)}
-    for key in saved:
-        del os.environ[key]
-    yield
-    for key in [k for k in os.environ if k.startswith(ENV_PREFIX)]:
-        del os.environ[key]
-    os.environ.update(saved)
 
 
 @pytest.fixture(scope="session")
@@ -87,98 +67,17 @@ def offline(model_store: Path) -> dict[str, Offline]:
     return {v: Offline(model_store / "shop" / v) for v in ("v1", "v2")}
 
 
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 @pytest.fixture(scope="session")
 def redis_url() -> Iterator[str]:
     """A redis-server of our own on a free loopback port, no persistence; stopped at teardown."""
-    binary = shutil.which("redis-server")
-    if binary is None:
-        pytest.fail("redis-server is not installed: the service tests need it (`make redis-server` installs it)")
-    port = free_port()
-    assert port != 6379
-    proc = subprocess.Popen(
-        [binary, "--port", str(port), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no"],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.STDOUT,
-    )
-    deadline = time.monotonic() + 10
-    while True:
-        with contextlib.suppress(OSError), socket.create_connection(("127.0.0.1", port), timeout=0.2) as s:
-            s.sendall(b"PING\r\n")
-            if s.recv(16).startswith(b"+PONG"):
-                break
-        if proc.poll() is not None or time.monotonic() > deadline:
-            proc.kill()
-            pytest.fail(f"redis-server did not start on port {port}")
-        time.sleep(0.05)
-    yield f"redis://127.0.0.1:{port}/0"
-    proc.terminate()
-    try:
-        proc.wait(timeout=5)
-    except subprocess.TimeoutExpired:
-        proc.kill()
-
-
-def unique_prefix() -> str:
-    """Each server gets its own key prefix in the shared redis-server, so tests never see each other's keys."""
-    return f"t{os.getpid()}-{next(_prefixes)}:"
+    redis = RedisProcess(free_port()).start()
+    yield redis.url
+    redis.stop()
 
 
 def make_settings(model_store: Path, store: str = "memory", **overrides: object) -> Settings:
-    base: dict[str, object] = {
-        "model_store": model_store,
-        "model_name": "shop",
-        "model_version": "v1",
-        "store": store,
-        "redis_prefix": unique_prefix(),
-        "admin_token": TOKEN,
-    }
-    base.update(overrides)
-    return Settings(**base)
-
-
-@dataclass
-class RunningServer:
-    url: str
-    settings: Settings
-    app: object
-
-    def client(self, **kwargs: object) -> httpx.Client:
-        return httpx.Client(base_url=self.url, timeout=10, **kwargs)
-
-
-@contextlib.contextmanager
-def serve_in_thread(settings: Settings) -> Iterator[RunningServer]:
-    """One uvicorn (uvloop, httptools) in a thread on a pre-bound loopback socket, stopped on exit."""
-    from service.api.app import create_app
-
-    app = create_app(settings)
-    sock = socket.socket()
-    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-    sock.bind(("127.0.0.1", 0))
-    port = sock.getsockname()[1]
-    config = uvicorn.Config(
-        app, loop="uvloop", http="httptools", lifespan="on", log_level=settings.log_level, access_log=settings.access_log, log_config=None
-    )
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        if not thread.is_alive() or time.monotonic() > deadline:
-            raise RuntimeError("the test server did not start")
-        time.sleep(0.01)
-    try:
-        yield RunningServer(f"http://127.0.0.1:{port}", settings, app)
-    finally:
-        server.should_exit = True
-        thread.join(timeout=15)
-        sock.close()
+    """Each server gets its own key prefix in the shared redis-server, so tests never see each other's keys."""
+    return shop_settings(model_store, store, tag="t", **overrides)
 
 
 @pytest.fixture(scope="module", params=["memory", "redis"])
@@ -200,24 +99,6 @@ def fresh_server(model_store: Path, request: pytest.FixtureRequest) -> Iterator:
 
     with stack:
         yield start
-
-
-_session_ids = itertools.count()
-
-
-@pytest.fixture(scope="session")
-def sid():
-    """A new session id on each call: tests that share a server never share a visit."""
-
-    def new(tag: str = "s") -> str:
-        return f"{tag}-{os.getpid()}-{next(_session_ids)}"
-
-    return new
-
-
-@pytest.fixture(scope="session")
-def token() -> str:
-    return TOKEN
 
 
 @pytest.fixture(scope="session")

@@ -7,14 +7,10 @@ user, and refuses plain connections and the default user.
 from __future__ import annotations
 
 import asyncio
-import contextlib
-import os
 import shutil
-import socket
 import ssl
 import subprocess
 import sys
-import time
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -24,14 +20,9 @@ import pytest
 from service.errors import StoreError
 from service.store.redis import RedisStore
 from service.store.state import NEW_TOKEN, SessionState, encode
+from tests._servers import RedisProcess, cairn_serve, environment_without_cairn, free_port
 
 PASSWORD = "s3cret-pass-for-tests"
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 @pytest.fixture(scope="module")
@@ -52,39 +43,28 @@ def certificate(tmp_path_factory) -> tuple[Path, Path]:
 def test_cairn_serve_over_https(certificate, model_store, tmp_path):
     cert, key = certificate
     port = free_port()
-    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
-    env.update(CAIRN_MODEL_STORE=str(model_store), CAIRN_MODEL_NAME="shop", CAIRN_MODEL_VERSION="v1", CAIRN_LOG_LEVEL="warning")
-    log = open(tmp_path / "serve.log", "w+")
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve", "--port", str(port), "--tls-certfile", str(cert), "--tls-keyfile", str(key)],
-        env=env, cwd=tmp_path, stdout=log, stderr=subprocess.STDOUT,
-    )  # fmt: skip
-    try:
-        deadline = time.monotonic() + 60
-        with httpx.Client(base_url=f"https://127.0.0.1:{port}", verify=ssl.create_default_context(cafile=str(cert)), timeout=5) as c:
-            while True:
-                try:
-                    r = c.get("/healthz")
-                    break
-                except httpx.ConnectError:
-                    if proc.poll() is not None or time.monotonic() > deadline:
-                        log.seek(0)
-                        pytest.fail(f"cairn serve with TLS did not come up:\n{log.read()}")
-                    time.sleep(0.1)
+    with httpx.Client(base_url=f"https://127.0.0.1:{port}", verify=ssl.create_default_context(cafile=str(cert)), timeout=5) as c:
+
+        def listening() -> bool:
+            c.get("/healthz")  # httpx.ConnectError until the server listens
+            return True
+
+        with cairn_serve(
+            ["--port", str(port), "--tls-certfile", str(cert), "--tls-keyfile", str(key)], tmp_path,
+            listening, "cairn serve with TLS", ignore=(httpx.ConnectError,),
+            CAIRN_MODEL_STORE=str(model_store), CAIRN_MODEL_NAME="shop", CAIRN_MODEL_VERSION="v1", CAIRN_LOG_LEVEL="warning",
+        ):  # fmt: skip
+            r = c.get("/healthz")
             assert r.status_code == 200 and r.url.scheme == "https"
             answer = c.post("/v1/sessions/tls-1/clicks", json={"item_id": "sku-000001"})
             assert answer.status_code == 200 and answer.json()["sequence"] == 1
-        with pytest.raises(httpx.TransportError), httpx.Client(timeout=5) as plain:  # plain HTTP gets no answer
-            plain.get(f"http://127.0.0.1:{port}/healthz")
-    finally:
-        proc.terminate()
-        proc.wait(timeout=15)
-        log.close()
+            with pytest.raises(httpx.TransportError), httpx.Client(timeout=5) as plain:  # plain HTTP gets no answer
+                plain.get(f"http://127.0.0.1:{port}/healthz")
 
 
 def test_cairn_serve_refuses_a_missing_or_broken_certificate(certificate, model_store, tmp_path):
     cert, key = certificate
-    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
+    env = environment_without_cairn()
     base = [sys.executable, "-m", "service.cli", "serve", "--model-store", str(model_store), "--port", str(free_port())]
     r = subprocess.run([*base, "--tls-certfile", str(tmp_path / "none.pem"), "--tls-keyfile", str(key)], env=env, capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and "--tls-certfile" in r.stderr and "no such file" in r.stderr and r.stderr.count("\n") == 1, r.stderr
@@ -96,24 +76,14 @@ def test_cairn_serve_refuses_a_missing_or_broken_certificate(certificate, model_
 def redis_tls(certificate) -> Iterator[int]:
     """redis-server with TLS only (no plain port), an ACL user `cairn` and the default user disabled."""
     cert, key = certificate
-    port = free_port()
-    proc = subprocess.Popen(
-        ["redis-server", "--port", "0", "--tls-port", str(port), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no",
-         "--tls-cert-file", str(cert), "--tls-key-file", str(key), "--tls-ca-cert-file", str(cert), "--tls-auth-clients", "no",
-         "--user", "default", "off", "--user", "cairn", "on", f">{PASSWORD}", "~*", "+@all"],
-        stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT,
-    )  # fmt: skip
-    deadline = time.monotonic() + 10
-    while True:
-        with contextlib.suppress(OSError), socket.create_connection(("127.0.0.1", port), timeout=0.2):
-            break
-        if proc.poll() is not None or time.monotonic() > deadline:
-            proc.kill()
-            pytest.fail("redis-server with TLS did not start (is it built with TLS?)")
-        time.sleep(0.05)
-    yield port
-    proc.kill()
-    proc.wait(timeout=5)
+    redis = RedisProcess(
+        free_port(),
+        "--tls-cert-file", str(cert), "--tls-key-file", str(key), "--tls-ca-cert-file", str(cert), "--tls-auth-clients", "no",
+        "--user", "default", "off", "--user", "cairn", "on", f">{PASSWORD}", "~*", "+@all",
+        tls=True,
+    ).start()  # fmt: skip
+    yield redis.port
+    redis.kill()
 
 
 def store_for(url: str) -> RedisStore:

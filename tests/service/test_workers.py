@@ -5,14 +5,13 @@ from __future__ import annotations
 
 import os
 import re
-import socket
-import subprocess
-import sys
 import time
 from collections import Counter
 
 import httpx
 import pytest
+
+from tests._servers import cairn_serve, free_port
 
 CLICKS = [f"sku-{i:06d}" for i in (5, 50, 150, 250, 350, 450, 45, 145, 245, 345, 445, 40)]
 
@@ -42,11 +41,14 @@ def clicks_served(metrics_text: str) -> int:
 
 @pytest.fixture()
 def two_workers(model_store, redis_url, tmp_path, token):
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        port = probe.getsockname()[1]
-    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
-    env.update(
+    port = free_port()
+    url = f"http://127.0.0.1:{port}"
+    with cairn_serve(
+        ["--workers", "2", "--port", str(port)],
+        tmp_path,
+        lambda: len(worker_of_each_scrape(url, tries=40)) == 2,
+        "cairn serve --workers 2",
+        ignore=(httpx.TransportError,),
         CAIRN_STORE=redis_url,
         CAIRN_MODEL_STORE=str(model_store),
         CAIRN_MODEL_NAME="shop",
@@ -54,33 +56,8 @@ def two_workers(model_store, redis_url, tmp_path, token):
         CAIRN_ADMIN_TOKEN=token,
         CAIRN_REDIS_PREFIX=f"w{os.getpid()}:",
         CAIRN_LOG_LEVEL="warning",
-    )
-    log = open(tmp_path / "serve.log", "w+")
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve", "--workers", "2", "--port", str(port)],
-        env=env, cwd=tmp_path, stdout=log, stderr=subprocess.STDOUT,
-    )
-    url = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                if len(worker_of_each_scrape(url, tries=40)) == 2:
-                    break
-            except httpx.TransportError:
-                pass
-            if proc.poll() is not None or time.monotonic() > deadline:
-                log.seek(0)
-                pytest.fail(f"cairn serve --workers 2 did not come up:\n{log.read()}")
-            time.sleep(0.1)
+    ):
         yield url
-    finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-        log.close()
 
 
 def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, sid, token):
