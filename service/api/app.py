@@ -22,6 +22,7 @@ from fastapi import FastAPI
 from service import __version__
 from service.api.deps import Service
 from service.api.errors import install_handlers
+from service.api.fast_click import ClickFastPath
 from service.api.metrics import ServiceMetrics
 from service.api.middleware import EdgeMiddleware
 from service.api.routes import router
@@ -94,6 +95,8 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
             await session_store.close()
 
     app = FastAPI(title="cairn", version=__version__, description=DESCRIPTION, lifespan=lifespan)
+    # The last added runs first: the edge (body limit, timing, metrics), then the click fast path.
+    app.add_middleware(ClickFastPath)
     app.add_middleware(EdgeMiddleware, metrics=metrics, store_kind=settings.store_kind)
     install_handlers(app)
     app.include_router(router)

@@ -23,7 +23,7 @@ from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from pydantic import ValidationError
 
 from service.api.auth import token_matches
-from service.api.deps import ServiceDep
+from service.api.deps import Service, ServiceDep
 from service.api.errors import ApiError
 from service.api.metrics import CONTENT_TYPE
 from service.api.schemas import (
@@ -67,21 +67,42 @@ def _timing(request: Request) -> Timing:
 
 
 def _answer(request: Request, session_id: str, answer: Answer) -> Response:
-    timing = _timing(request)
-    request.state.served_by = answer.served_by  # the edge middleware records these once
-    request.state.fallback_reason = answer.fallback_reason
+    # A visit's list is personal: no shared cache on the way may keep it (RFC 9111, section 5.2.2.5).
+    return Response(answer_json(request.scope, session_id, answer), media_type="application/json", headers=_NO_STORE)
+
+
+def answer_json(scope: dict[str, Any], session_id: str, answer: Answer) -> bytes:
+    """The JSON of an answer with recommendations; notes what answered in the request's state,
+    which the edge middleware records once."""
+    state = scope["state"]
+    state["served_by"] = answer.served_by
+    state["fallback_reason"] = answer.fallback_reason
     body = {
         "session_id": session_id,
         "items": [{"item_id": i, "score": s} for i, s in zip(answer.item_ids, answer.scores)],
         "served_by": answer.served_by,
         "model_version": answer.model_version,
         "fallback_reason": answer.fallback_reason,
-        "took_ms": round((time.perf_counter() - timing.started) * 1e3, 3),
+        "took_ms": round((time.perf_counter() - state["timing"].started) * 1e3, 3),
         "sequence": answer.sequence,
         "duplicate": answer.duplicate,
     }
-    # A visit's list is personal: no shared cache on the way may keep it (RFC 9111, section 5.2.2.5).
-    return Response(json.dumps(body, separators=(",", ":")), media_type="application/json", headers=_NO_STORE)
+    return json.dumps(body, separators=(",", ":")).encode()
+
+
+async def record_click(service: Service, session_id: str, click: ClickRequest, timing: Timing) -> Answer:
+    """A validated click, recorded: what `POST /v1/sessions/{session_id}/clicks` does (also from
+    the click fast path, service/api/fast_click.py)."""
+    settings = service.settings
+    return await service.visits.click(
+        session_id,
+        click.item_id,
+        click.event_id,
+        click.count or settings.default_count,
+        click.exclude_seen,
+        (click.budget_ms or settings.default_budget_ms) / 1e3,
+        timing,
+    )
 
 
 @router.post(
@@ -92,17 +113,9 @@ def _answer(request: Request, session_id: str, answer: Answer) -> Response:
     tags=["sessions"],
 )
 async def post_click(session_id: SessionId, click: ClickRequest, request: Request, service: ServiceDep) -> Response:
-    settings = service.settings
-    answer = await service.visits.click(
-        session_id,
-        click.item_id,
-        click.event_id,
-        click.count or settings.default_count,
-        click.exclude_seen,
-        (click.budget_ms or settings.default_budget_ms) / 1e3,
-        _timing(request),
-    )
-    return _answer(request, session_id, answer)
+    # Well-formed clicks are answered by service/api/fast_click.py before they get here; what this
+    # route does beyond validation must stay in record_click and answer_json, which both share.
+    return _answer(request, session_id, await record_click(service, session_id, click, _timing(request)))
 
 
 @router.get(
