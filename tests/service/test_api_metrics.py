@@ -123,6 +123,12 @@ def test_metrics_parse_and_hold_the_documented_families(server, sid):
     # Every breaker has a state sample (0 closed); the model's latency estimate is a step's p95 in seconds.
     assert value_of(after, "cairn_breaker_state", breaker="model") == 0 and value_of(after, "cairn_breaker_state", breaker="store") == 0
     assert 0 < value_of(after, "cairn_latency_estimate_seconds", part="model") < 1
+    if server.settings.store_kind == "redis":
+        # The visit's first click read Redis; the next two started from this worker's own last write.
+        assert types["cairn_state_cache_lookups"] == "gauge"
+        assert grew("cairn_state_cache_lookups", result="miss") == 1 and grew("cairn_state_cache_lookups", result="hit") == 2
+    else:
+        assert not [n for n, _, _ in after if n == "cairn_state_cache_lookups"]  # the memory store is its own cache
 
 
 def test_parser_refuses_what_the_format_forbids():
