@@ -154,7 +154,11 @@ def run_load_test(setup: LoadTestSetup) -> dict[str, Any]:
             "clicks": visits.n_clicks,
             "taken": sum(w["taken"] for w in run.workers),
         },
-        "budget": {"p99_ms": setup.budget.p99_ms, "max_error_rate": setup.budget.max_error_rate},
+        "budget": {
+            "p99_ms": setup.budget.p99_ms,
+            "max_error_rate": setup.budget.max_error_rate,
+            "max_fallback_rate": setup.budget.max_fallback_rate,
+        },
         "verdict": {"met": not reasons, "reasons": reasons},
         "overall": {**overall.to_json(), "index": None, "failures": budget_failures(overall, setup.budget)},
         "steps": step_rows,

@@ -56,6 +56,13 @@ def add_load_arguments(parser: argparse.ArgumentParser, ramp_required: bool = Fa
     b = parser.add_argument_group("page budget")
     b.add_argument("--p99-budget-ms", type=float, default=50.0, help="p99 latency the page allows, ms (default 50)")
     b.add_argument("--max-error-rate", type=float, default=0.001, help="share of failed clicks allowed (default 0.001)")
+    b.add_argument(
+        "--max-fallback-rate",
+        type=float,
+        default=0.01,
+        help="share of answers allowed to fall back because of load or failure: budget, deadline, model_unavailable, "
+        "model_error, store_unavailable (default 0.01)",
+    )
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
@@ -121,7 +128,7 @@ def build_setup(args: argparse.Namespace) -> LoadTestSetup:
         think_scale=args.think_scale,
         max_think_s=args.max_think,
         replay=args.replay,
-        budget=Budget(p99_ms=args.p99_budget_ms, max_error_rate=args.max_error_rate),
+        budget=Budget(p99_ms=args.p99_budget_ms, max_error_rate=args.max_error_rate, max_fallback_rate=args.max_fallback_rate),
     )
 
 

@@ -7,7 +7,7 @@ Report fields (JSON; the Markdown shows the same numbers):
     settings         users, load_workers, mode (think-time | rate | ramp), step_rates, step_duration_s,
                      duration_s, count, budget_ms, exclude_seen, think_scale, max_think_s, replay
     visits           data, split, available, clicks, taken
-    budget           p99_ms, max_error_rate
+    budget           p99_ms, max_error_rate, max_fallback_rate
     verdict          met (bool), reasons (list)
     overall, steps[] index, target_rps, window_s, requests, rps, latency_ms {p50, p95, p99, max,
                      mean}, error_rate, errors {kind: n}, served_by {name: share},
@@ -63,7 +63,7 @@ def render_markdown(r: dict[str, Any]) -> str:
         lines.append(f"Service: {t['url']}.")
     lines += [
         f"Started {r['started_at']}, ran {r['wall_s']:.1f} s. Budget: p99 <= {b['p99_ms']:g} ms, "
-        f"error rate <= {b['max_error_rate']:.2%}.",
+        f"error rate <= {b['max_error_rate']:.2%}, fallbacks under load <= {b.get('max_fallback_rate', 1.0):.2%}.",
         f"Load: {s['users']} visitors on {s['load_workers']} Locust worker(s), mode {s['mode']}, "
         f"{s['duration_s']:g} s in {len(s['step_rates'])} step(s) of {s['step_duration_s']:g} s; "
         f"count {s['count']}, budget_ms {s['budget_ms']}, exclude_seen {str(s['exclude_seen']).lower()}, "

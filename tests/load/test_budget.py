@@ -31,6 +31,20 @@ def test_each_way_to_miss_the_budget_is_named() -> None:
     assert budget_failures(replace(STEP, rps=85.0, target_rps=None), BUDGET) == []  # no target: no rate to reach
 
 
+def test_fallbacks_the_service_causes_count_against_the_budget_those_of_the_visit_do_not() -> None:
+    strict = Budget(p99_ms=10.0, max_error_rate=0.01, max_fallback_rate=0.05)
+    shed = replace(
+        STEP, served_by={"neighbours": 0.9, "gru": 0.1}, fallback_reason={"budget": 0.86, "deadline": 0.04, "none": 0.1}
+    )
+    assert budget_failures(shed, strict) == ["fallbacks under load 90.00% (budget 86.0%, deadline 4.0%) > allowed 5.00%"]
+    assert budget_failures(shed, BUDGET) == []  # the default allows any share: judge latency and errors only
+    visit_driven = replace(STEP, fallback_reason={"unknown_item": 0.3, "no_history": 0.1, "none": 0.6})
+    assert budget_failures(visit_driven, strict) == []
+    assert budget_failures(replace(STEP, fallback_reason={"store_unavailable": 0.05, "none": 0.95}), strict) == []  # "at most"
+    with pytest.raises(LoadTestError, match="--max-fallback-rate"):
+        Budget(p99_ms=10.0, max_error_rate=0.01, max_fallback_rate=1.5)
+
+
 def test_generator_notes_tell_cpu_from_too_few_visitors() -> None:
     assert generator_notes(STEP, users=4) == []
     busy = replace(STEP, generator_cpu_percent=97.0)
