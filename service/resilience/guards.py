@@ -43,8 +43,8 @@ class Guards:
             clock,
             on_change,
         )
-        self.model_latency = LatencyWindow(s.latency_window, s.latency_quantile, s.latency_max_age_s, probe_s=s.latency_probe_s)
-        self.store_latency = LatencyWindow(s.latency_window, s.latency_quantile, s.latency_max_age_s, probe_s=s.latency_probe_s)
+        self.model_latency = LatencyWindow(s.latency_window, s.latency_quantile, s.latency_max_age_s)
+        self.store_latency = LatencyWindow(s.latency_window, s.latency_quantile, s.latency_max_age_s)
         self._store: dict[str, CircuitBreaker] = {"": self._store_breaker(STORE)}
 
     def store_breaker(self, shard: str) -> CircuitBreaker:

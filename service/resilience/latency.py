@@ -11,11 +11,7 @@ shows within a refresh.
 
 Old samples age out, so an estimate taken while a model was slow does not keep the model shut out
 after it recovered and nothing measures it any more. An empty window estimates 0: nothing
-known, nothing refused. Sooner than that, `probe` lets one call through once no sample has come in
-for `probe_s`, and the sample it brings starts the window afresh (the older ones describe a time
-that has passed): when an overload is over, the model is back within about `probe_s`, not after
-the window has emptied. If the probe was fast by luck, the next slow sample raises the estimate
-again at once.
+known, nothing refused.
 """
 
 from __future__ import annotations
@@ -24,24 +20,11 @@ import math
 
 
 class LatencyWindow:
-    def __init__(
-        self,
-        size: int = 256,
-        quantile: float = 0.95,
-        max_age_s: float = 30.0,
-        refresh_every: int = 16,
-        refresh_s: float = 0.5,
-        probe_s: float = 1.0,
-    ) -> None:
-        if size < 1 or not 0 < quantile <= 1 or max_age_s <= 0 or refresh_every < 1 or refresh_s <= 0 or probe_s <= 0:
-            raise ValueError(
-                f"size >= 1, 0 < quantile <= 1, max_age_s > 0, probe_s > 0 are needed, got {size}, {quantile}, {max_age_s}, {probe_s}"
-            )
+    def __init__(self, size: int = 256, quantile: float = 0.95, max_age_s: float = 30.0, refresh_every: int = 16, refresh_s: float = 0.5) -> None:
+        if size < 1 or not 0 < quantile <= 1 or max_age_s <= 0 or refresh_every < 1 or refresh_s <= 0:
+            raise ValueError(f"size >= 1, 0 < quantile <= 1, max_age_s > 0 are needed, got {size}, {quantile}, {max_age_s}")
         self.size, self.quantile, self.max_age_s = size, quantile, max_age_s
-        self.refresh_every, self.refresh_s, self.probe_s = refresh_every, refresh_s, probe_s
-        self._last_sample = -math.inf
-        self._last_probe = -math.inf
-        self._probing = False  # a probe was let through: its sample starts the window afresh
+        self.refresh_every, self.refresh_s = refresh_every, refresh_s
         self._values = [0.0] * size
         self._times = [-math.inf] * size
         self._next = 0
@@ -50,25 +33,13 @@ class LatencyWindow:
         self._computed_at = -math.inf
 
     def observe(self, seconds: float, now: float) -> None:
-        if self._probing:
-            self.clear()
         i = self._next
         self._values[i] = seconds
         self._times[i] = now
-        self._last_sample = now
         self._next = (i + 1) % self.size
         self._fresh += 1
         if seconds > self._estimate:
             self._fresh = self.refresh_every  # slower than estimated: recompute at the next read
-
-    def probe(self, now: float) -> bool:
-        """True, at most once per `probe_s`, while no sample has come in for `probe_s`: the caller may
-        let one call through that its estimate would refuse, so that the estimate is measured again."""
-        if now - self._last_sample < self.probe_s or now - self._last_probe < self.probe_s:
-            return False
-        self._last_probe = now
-        self._probing = True
-        return True
 
     def estimate(self, now: float) -> float:
         """The quantile of the recent samples, in seconds; 0.0 when there are none."""
@@ -93,5 +64,3 @@ class LatencyWindow:
         self._fresh = 0
         self._estimate = 0.0
         self._computed_at = -math.inf
-        self._last_sample = -math.inf
-        self._probing = False

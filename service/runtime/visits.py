@@ -337,11 +337,8 @@ class Visits:
         if saves and self._guard_store:
             model_deadline -= guards.store_latency.estimate(now)
         if now + guards.model_latency.estimate(now) * steps > model_deadline:
-            # Refused on an estimate that nothing has measured for a while (every call since was
-            # refused): one call runs anyway, within the deadline, to see whether it still holds.
-            if not (now < model_deadline and guards.model_latency.probe(now)):
-                guards.model.release(ticket)
-                return None, "budget", 0.0
+            guards.model.release(ticket)
+            return None, "budget", 0.0
         return ticket, None, model_deadline
 
     def _model_timeout(self, deadline: float, now: float) -> Any:

@@ -62,19 +62,3 @@ def test_the_estimate_is_cached_between_refreshes_but_follows_a_slowdown_at_once
     assert window.estimate(11.0) == 1.0  # ten seconds on: recomputed (the median of 14 samples is now 1)
     window.clear()
     assert window.estimate(11.0) == 0.0
-
-
-def test_a_probe_is_granted_once_per_interval_without_samples_and_its_sample_restarts_the_window():
-    window = LatencyWindow(size=64, quantile=0.95, max_age_s=30.0, probe_s=1.0)
-    for _ in range(20):
-        window.observe(0.03, now=100.0)  # slow samples: the estimate refuses short budgets
-    assert window.estimate(100.0) == 0.03
-    assert not window.probe(100.5)  # a sample came in less than a second ago
-    assert window.probe(101.0)  # a second without samples: one call may run
-    assert not window.probe(101.5)  # and only one per interval, whatever it brings
-    window.observe(0.001, now=101.6)  # the probe's sample
-    assert window.estimate(101.6) == 0.001  # the twenty slow ones describe a time that has passed
-    window.observe(0.002, now=101.7)  # later samples add to the window as usual
-    assert window.estimate(101.7) == 0.002
-    assert not window.probe(102.6)  # samples flow again: no probe
-    assert window.probe(102.8)  # until they stop for an interval
