@@ -35,34 +35,11 @@ import time
 from pathlib import Path
 
 from service.bench.service import Connection, click_stream, free_port, pct, start, stop, wait_http
+from service.resilience.faults import DelayedGru
 
 TARGET_SLACK_MS = 5.0
 TARGET_OVERHEAD = 1.05
 COUNT = 10
-
-
-class DelayedGru:
-    """The GRU recommender with every call `delay_s` slower: an overloaded or stuck model."""
-
-    name = "gru"
-
-    def __init__(self, inner, delay_s: float) -> None:
-        self.inner, self.delay_s = inner, delay_s
-
-    def start(self):
-        return self.inner.start()
-
-    async def advance(self, state, item):
-        await asyncio.sleep(self.delay_s)
-        return await self.inner.advance(state, item)
-
-    async def step(self, state, item, count, seen=frozenset()):
-        await asyncio.sleep(self.delay_s)
-        return await self.inner.step(state, item, count, seen)
-
-    async def rank(self, state, count, seen=frozenset()):
-        await asyncio.sleep(self.delay_s)
-        return await self.inner.rank(state, count, seen)
 
 
 def serve(port: int, delay_ms: float) -> None:  # pragma: no cover - runs in its own process

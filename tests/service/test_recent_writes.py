@@ -14,6 +14,7 @@ from service.runtime.visits import Timing, Visits
 from service.store.base import open_store
 from service.store.recent import RecentWrites
 from service.store.state import decode
+from tests._stores import CountingStore
 
 
 class FakeClock:
@@ -22,28 +23,6 @@ class FakeClock:
 
     def __call__(self) -> float:
         return self.now
-
-
-class ReadCountingStore:
-    """Wraps a store and counts reads and lost check-and-set writes."""
-
-    def __init__(self, inner) -> None:
-        self.inner = inner
-        self.kind = inner.kind
-        self.reads = 0
-        self.lost = 0
-
-    async def load(self, session_id):
-        self.reads += 1
-        return await self.inner.load(session_id)
-
-    async def save(self, session_id, value, expected_token):
-        done = await self.inner.save(session_id, value, expected_token)
-        self.lost += not done
-        return done
-
-    def __getattr__(self, name):
-        return getattr(self.inner, name)
 
 
 # -- the cache's own rules ------------------------------------------------------------------------
@@ -79,7 +58,7 @@ def test_the_least_recently_written_entry_leaves_first_and_forget_drops_one():
 
 
 def _workers(settings, n: int):
-    store = ReadCountingStore(open_store(settings))
+    store = CountingStore(open_store(settings))
     active = ActiveModel(settings, store)
     visits = [Visits(store, active, 20, 16, recent=RecentWrites(1000, settings.session_ttl_s)) for _ in range(n)]
     return store, active, visits

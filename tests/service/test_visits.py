@@ -15,31 +15,16 @@ import pytest
 
 from service.artifacts import load_artifact
 from service.errors import StoreError
+from service.resilience.faults import DelayedGru as SlowGru
 from service.resilience.guards import Guards
 from service.runtime.active import ActiveModel, LoadedModel, ModelChoice
 from service.runtime.onnx_step import StepError
 from service.runtime.visits import Timing, Visits
 from service.store.base import open_store
 from service.store.state import decode
+from tests._stores import CountingStore
 
 CLICKS = ["sku-000011", "sku-000222", "sku-000333"]
-
-
-class CountingStore:
-    """Wraps a store and counts check-and-set writes that lost a race."""
-
-    def __init__(self, inner) -> None:
-        self.inner = inner
-        self.kind = inner.kind
-        self.lost = 0
-
-    async def save(self, session_id, value, expected_token):
-        done = await self.inner.save(session_id, value, expected_token)
-        self.lost += not done
-        return done
-
-    def __getattr__(self, name):
-        return getattr(self.inner, name)
 
 
 class DownStore:
@@ -52,30 +37,6 @@ class DownStore:
         raise StoreError("redis GET failed (ConnectionError: refused)")
 
     save = delete = load
-
-
-class SlowGru:
-    """The GRU recommender with every step taking `delay_s` longer (an overloaded or stuck model)."""
-
-    name = "gru"
-
-    def __init__(self, inner, delay_s: float) -> None:
-        self.inner, self.delay_s = inner, delay_s
-
-    def start(self):
-        return self.inner.start()
-
-    async def advance(self, state, item):
-        await asyncio.sleep(self.delay_s)
-        return await self.inner.advance(state, item)
-
-    async def step(self, state, item, count, seen=frozenset()):
-        await asyncio.sleep(self.delay_s)
-        return await self.inner.step(state, item, count, seen)
-
-    async def rank(self, state, count, seen=frozenset()):
-        await asyncio.sleep(self.delay_s)
-        return await self.inner.rank(state, count, seen)
 
 
 class FailingStep:
