@@ -21,6 +21,7 @@ from service.errors import CairnError
 ENV_PREFIX = "CAIRN_"
 RECOMMENDERS = ("gru", "neighbours", "popularity")
 ARTIFACT_PART = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")  # as service.artifacts accepts
+DEFAULT_STATE_CACHE_SESSIONS = 20_000  # a state is about 1 KB: some 20 MB a worker
 _MIN_TOKEN = 16  # shorter admin tokens are guessable placeholders (common practice)
 
 
@@ -57,7 +58,17 @@ class Settings(BaseSettings):
     event_memory: int = Field(16, ge=0, le=255)  # recent event_ids kept per session for de-duplication
     # Redis stores: sessions whose last written state a worker keeps, so their next click here skips
     # the read (service/store/recent.py; the check-and-set still guards every write). 0: off.
-    state_cache_sessions: int = Field(20_000, ge=0, le=10_000_000)
+    # Unset: on with --workers 1, off with more: the kernel hands connections to the workers at
+    # random, so a visit's clicks spread over them, and an entry another worker has since outdated
+    # costs a wasted scoring step.
+    state_cache_sessions: int | None = Field(None, ge=0, le=10_000_000)
+
+    @property
+    def state_cache_entries(self) -> int:
+        """What `state_cache_sessions` comes to for this process."""
+        if self.state_cache_sessions is not None:
+            return self.state_cache_sessions
+        return DEFAULT_STATE_CACHE_SESSIONS if self.workers == 1 else 0
 
     # Answers.
     default_count: int = Field(10, ge=1, le=100)  # items per answer when a request does not say

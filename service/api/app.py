@@ -56,8 +56,8 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
         follower: asyncio.Task | None = None
         # The memory store is its own cache; a shared store's reads are worth saving.
         recent = None
-        if session_store.kind != "memory" and settings.state_cache_sessions > 0:
-            recent = RecentWrites(settings.state_cache_sessions, settings.session_ttl_s)
+        if session_store.kind != "memory" and settings.state_cache_entries > 0:
+            recent = RecentWrites(settings.state_cache_entries, settings.session_ttl_s)
         try:
             configured = await asyncio.to_thread(resolve_choice, settings)
             shared = await _shared_choice(session_store)

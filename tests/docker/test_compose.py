@@ -212,7 +212,7 @@ def test_compose_has_redis_two_replicas_and_a_balancer(compose: dict[str, Any]) 
         settings = Settings(**fields)
         # One worker each: nginx hashes a visit onto one replica, so its clicks reach one worker and
         # that worker's recent-writes cache saves the Redis read.
-        assert settings.workers == 1 and settings.store_kind == "redis" and settings.state_cache_sessions > 0
+        assert settings.workers == 1 and settings.store_kind == "redis" and settings.state_cache_entries > 0
     assert set(services["lb"]["depends_on"]) == {"api-1", "api-2"}
 
 

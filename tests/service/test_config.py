@@ -154,3 +154,13 @@ def test_a_password_in_the_store_url_is_never_shown(monkeypatch):
     with pytest.raises(SettingsError) as info:
         load_settings()
     assert "hunter2-secret" not in str(info.value) and "cairn:***@h:notaport" in str(info.value)
+
+
+def test_the_recent_writes_cache_is_on_with_one_worker_and_off_with_more_unless_set():
+    from service.config import DEFAULT_STATE_CACHE_SESSIONS, Settings
+
+    redis = "redis://127.0.0.1:1/0"  # never connected: settings only
+    assert Settings(store=redis).state_cache_entries == DEFAULT_STATE_CACHE_SESSIONS
+    assert Settings(store=redis, workers=4).state_cache_entries == 0  # kernel-balanced workers: stale entries would cost steps
+    assert Settings(store=redis, workers=4, state_cache_sessions=500).state_cache_entries == 500  # set: taken as it is
+    assert Settings(store=redis, state_cache_sessions=0).state_cache_entries == 0
