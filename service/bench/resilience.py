@@ -26,7 +26,6 @@ import asyncio
 import gc
 import json
 import os
-import platform
 import shutil
 import statistics
 import sys
@@ -34,7 +33,21 @@ import tempfile
 import time
 from pathlib import Path
 
-from service.bench.service import Connection, click_stream, free_port, pct, start, stop, wait_http
+from service.bench.service import (
+    Connection,
+    bench_cores,
+    click_stream,
+    environment_info,
+    free_port,
+    pct,
+    service_environment,
+    start,
+    start_redis,
+    stop,
+    stop_all,
+    wait_http,
+    write_report,
+)
 from service.resilience.faults import DelayedGru
 
 TARGET_SLACK_MS = 5.0
@@ -183,9 +196,8 @@ def main(argv: list[str] | None = None) -> int:
 
     from service.offline.export import write_random_artifact
 
-    cores = sorted(os.sched_getaffinity(0))
-    if len(cores) < 2 or shutil.which("taskset") is None or shutil.which("redis-server") is None:
-        print("needs two cores, taskset and redis-server", file=sys.stderr)
+    cores = bench_cores()
+    if cores is None:
         return 2
     server_core, load_core = cores[0], cores[1]
     load_before = os.getloadavg()
@@ -193,11 +205,10 @@ def main(argv: list[str] | None = None) -> int:
     store = work / "model_store"
     write_random_artifact(store, "bench", "v1", n_items=args.items, hidden_size=args.hidden)
     items = click_stream(args.items, seed=0)
-    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
-    env.update(CAIRN_MODEL_STORE=str(store), CAIRN_LOG_LEVEL="warning", CAIRN_ORT_THREADS="1", CAIRN_DEFAULT_BUDGET_MS=str(args.budget_ms))
+    env = service_environment(store, CAIRN_DEFAULT_BUDGET_MS=str(args.budget_ms))
     redis_port = free_port()
     redis_url = f"redis://127.0.0.1:{redis_port}/0"
-    procs = [start(["redis-server", "--port", str(redis_port), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no"], load_core)]
+    procs = [start_redis(redis_port, load_core)]
     os.sched_setaffinity(0, {load_core})
     # The generator has torch and the click list in memory: freeze them out of the cyclic GC, whose
     # full passes over them would stall the generator for tens of milliseconds mid-run.
@@ -248,26 +259,16 @@ def main(argv: list[str] | None = None) -> int:
             stop(procs.pop())
             stop(procs.pop())
     finally:
-        for proc in procs:
-            if proc.poll() is None:
-                stop(proc)
+        stop_all(procs)
         shutil.rmtree(work, ignore_errors=True)
 
     report = {
         "benchmark": "resilience",
-        "environment": {
-            "python": platform.python_version(),
-            "machine": platform.machine(),
-            "cores_available": len(cores),
-            "server_core": server_core,
-            "load_generator_core": load_core,
-            "load_average_before": [round(x, 2) for x in load_before],
-        },
+        "environment": environment_info(cores, server_core, load_core, load_before),
         "config": {"n_items": args.items, "hidden_size": args.hidden, "count": COUNT, "workers": 1, "store": "redis"},
         **results,
     }
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+    write_report(args.out, report)
 
     s = results["slow_model"]
     print(

@@ -159,6 +159,49 @@ def stop(proc: subprocess.Popen) -> None:
         proc.kill()
 
 
+def stop_all(procs: list[subprocess.Popen]) -> None:
+    for proc in procs:
+        if proc.poll() is None:
+            stop(proc)
+
+
+def bench_cores() -> list[int] | None:
+    """The cores this process may use, or None (saying why) without two of them, taskset and redis-server."""
+    cores = sorted(os.sched_getaffinity(0))
+    if len(cores) < 2 or shutil.which("taskset") is None or shutil.which("redis-server") is None:
+        print("needs two cores, taskset and redis-server", file=sys.stderr)
+        return None
+    return cores
+
+
+def start_redis(port: int, core: int) -> subprocess.Popen:
+    """A redis-server of the benchmark's own on a loopback port, without persistence."""
+    return start(["redis-server", "--port", str(port), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no"], core)
+
+
+def service_environment(model_store: Path, **settings: str) -> dict[str, str]:
+    """This process's environment without CAIRN_ variables, plus the service's settings for a benchmark."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
+    env.update(CAIRN_MODEL_STORE=str(model_store), CAIRN_LOG_LEVEL="warning", CAIRN_ORT_THREADS="1", **settings)
+    return env
+
+
+def environment_info(cores: list[int], server_core: int, load_core: int, load_before: tuple[float, ...]) -> dict:
+    return {
+        "python": platform.python_version(),
+        "machine": platform.machine(),
+        "cores_available": len(cores),
+        "server_core": server_core,
+        "load_generator_core": load_core,
+        "load_average_before": [round(x, 2) for x in load_before],
+    }
+
+
+def write_report(path: Path, report: dict) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+
+
 # -- measurements ----------------------------------------------------------------------------------
 
 
@@ -316,9 +359,8 @@ def main(argv: list[str] | None = None) -> int:
 
     from service.offline.export import write_random_artifact
 
-    cores = sorted(os.sched_getaffinity(0))
-    if len(cores) < 2 or shutil.which("taskset") is None or shutil.which("redis-server") is None:
-        print("needs two cores, taskset and redis-server", file=sys.stderr)
+    cores = bench_cores()
+    if cores is None:
         return 2
     server_core, load_core = cores[0], cores[1]
     load_before = os.getloadavg()
@@ -326,11 +368,10 @@ def main(argv: list[str] | None = None) -> int:
     store = work / "model_store"
     artifact = write_random_artifact(store, "bench", "v1", n_items=args.items, hidden_size=args.hidden)
     items = click_stream(args.items, seed=0)
-    env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
-    env.update(CAIRN_MODEL_STORE=str(store), CAIRN_LOG_LEVEL="warning", CAIRN_ORT_THREADS="1")
+    env = service_environment(store)
     redis_port = free_port()
     redis_url = f"redis://127.0.0.1:{redis_port}/0"
-    redis_proc = start(["redis-server", "--port", str(redis_port), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no"], load_core)
+    redis_proc = start_redis(redis_port, load_core)
     procs = [redis_proc]
     results: dict = {}
     try:
@@ -397,26 +438,16 @@ def main(argv: list[str] | None = None) -> int:
             }
             stop(proc)
     finally:
-        for proc in procs:
-            if proc.poll() is None:
-                stop(proc)
+        stop_all(procs)
         shutil.rmtree(work, ignore_errors=True)
 
     report = {
         "benchmark": "service",
-        "environment": {
-            "python": platform.python_version(),
-            "machine": platform.machine(),
-            "cores_available": len(cores),
-            "server_core": server_core,
-            "load_generator_core": load_core,
-            "load_average_before": [round(x, 2) for x in load_before],
-        },
+        "environment": environment_info(cores, server_core, load_core, load_before),
         "config": {"n_items": args.items, "hidden_size": args.hidden, "count": COUNT, "ort_threads": 1, "workers": 1},
         **results,
     }
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+    write_report(args.out, report)
 
     f = results["floors_median_ms"]
     print(
