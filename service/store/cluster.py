@@ -26,10 +26,10 @@ from redis.exceptions import RedisClusterException, RedisError
 
 from service.config import cluster_nodes, redacted
 from service.errors import StoreError
-from service.store.redis import REDIS_ERRORS, check_and_set, store_error
+from service.store.redis import REDIS_ERRORS, RedisCommands, store_error
 
 
-class RedisClusterStore:
+class RedisClusterStore(RedisCommands):
     kind = "redis-cluster"
 
     def __init__(self, url: str, ttl_s: float, pool_size: int, timeout_s: float, connect_timeout_s: float, prefix: str = "cairn:") -> None:
@@ -52,9 +52,6 @@ class RedisClusterStore:
         except (ValueError, RedisError, RedisClusterException) as exc:
             raise StoreError(f"CAIRN_STORE: cannot use {redacted(url)!r} ({redacted(str(exc))})") from exc
 
-    def key(self, session_id: str) -> str:
-        return self._session_prefix + session_id
-
     def shard_of(self, session_id: str) -> str:
         """host:port of the master that holds the session, "" before the slot map is known."""
         try:
@@ -63,32 +60,13 @@ class RedisClusterStore:
             return ""
         return "" if node is None else node.name
 
-    async def load(self, session_id: str) -> bytes | None:
-        return await self._call("GET", self._client.get(self.key(session_id)))
-
-    async def save(self, session_id: str, value: bytes, expected_token: bytes) -> bool:
-        return await self._call("check-and-set", check_and_set(self._client, self.key(session_id), expected_token, value, self.ttl_ms))
-
-    async def delete(self, session_id: str) -> None:
-        await self._call("DEL", self._client.delete(self.key(session_id)))
-
-    async def load_active_model(self) -> bytes | None:
-        return await self._call("GET", self._client.get(self._active_key))
-
-    async def save_active_model(self, value: bytes) -> None:
-        await self._call("SET", self._client.set(self._active_key, value))
-
-    async def ping(self) -> None:
-        await self._call("PING", self._client.ping())  # every node: one down is a degraded store
-
     async def close(self) -> None:
         try:
             await self._client.aclose()
         except REDIS_ERRORS as exc:
             raise store_error("close", exc) from exc
 
-    @staticmethod
-    async def _call(what: str, pending: Any) -> Any:
+    async def _call(self, what: str, pending: Any) -> Any:
         try:
             return await pending
         except REDIS_ERRORS as exc:

@@ -65,7 +65,42 @@ def store_error(what: str, exc: BaseException) -> StoreError:
     return StoreError(f"redis {what} failed ({type(exc).__name__}: {redacted(str(exc))})")
 
 
-class RedisStore:
+class RedisCommands:
+    """The store's commands on one redis-py asyncio client, a single Redis's or a cluster's: the
+    subclass opens `_client`, sets the key prefixes and `ttl_ms`, and turns errors into
+    `StoreError` in `_call`."""
+
+    _client: Any
+    _session_prefix: str
+    _active_key: str
+    ttl_ms: int
+
+    def key(self, session_id: str) -> str:
+        return self._session_prefix + session_id
+
+    async def load(self, session_id: str) -> bytes | None:
+        return await self._call("GET", self._client.get(self.key(session_id)))
+
+    async def save(self, session_id: str, value: bytes, expected_token: bytes) -> bool:
+        return await self._call("check-and-set", check_and_set(self._client, self.key(session_id), expected_token, value, self.ttl_ms))
+
+    async def delete(self, session_id: str) -> None:
+        await self._call("DEL", self._client.delete(self.key(session_id)))
+
+    async def load_active_model(self) -> bytes | None:
+        return await self._call("GET", self._client.get(self._active_key))
+
+    async def save_active_model(self, value: bytes) -> None:
+        await self._call("SET", self._client.set(self._active_key, value))
+
+    async def ping(self) -> None:
+        await self._call("PING", self._client.ping())  # a cluster pings every node: one down is a degraded store
+
+    async def _call(self, what: str, pending: Any) -> Any:
+        raise NotImplementedError
+
+
+class RedisStore(RedisCommands):
     kind = "redis"
 
     def __init__(
@@ -95,29 +130,8 @@ class RedisStore:
             raise StoreError(f"CAIRN_STORE: cannot use {redacted(url)!r} ({redacted(str(exc))})") from exc
         self._client = aioredis.Redis(connection_pool=self._pool, retry=no_retry)
 
-    def key(self, session_id: str) -> str:
-        return self._session_prefix + session_id
-
     def shard_of(self, session_id: str) -> str:
         return ""
-
-    async def load(self, session_id: str) -> bytes | None:
-        return await self._call("GET", self._client.get(self.key(session_id)))
-
-    async def save(self, session_id: str, value: bytes, expected_token: bytes) -> bool:
-        return await self._call("check-and-set", check_and_set(self._client, self.key(session_id), expected_token, value, self.ttl_ms))
-
-    async def delete(self, session_id: str) -> None:
-        await self._call("DEL", self._client.delete(self.key(session_id)))
-
-    async def load_active_model(self) -> bytes | None:
-        return await self._call("GET", self._client.get(self._active_key))
-
-    async def save_active_model(self, value: bytes) -> None:
-        await self._call("SET", self._client.set(self._active_key, value))
-
-    async def ping(self) -> None:
-        await self._call("PING", self._client.ping())
 
     async def close(self) -> None:
         try:
