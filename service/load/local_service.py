@@ -8,7 +8,6 @@ test measures the same start-up path as production. It is ready when GET /readyz
 from __future__ import annotations
 
 import os
-import signal
 import subprocess
 import sys
 import time
@@ -19,6 +18,7 @@ from pathlib import Path
 
 from service.load.errors import LoadTestError
 from service.load.ports import free_loopback_port
+from service.load.processes import log_tail, stop_group
 
 MODELS = ("gru", "neighbours", "popularity")
 READY_POLL_S = 0.2
@@ -124,20 +124,7 @@ class LocalService:
         p, self._proc = self._proc, None
         if p is None or p.poll() is not None:
             return
-        try:
-            os.killpg(p.pid, signal.SIGTERM)
-            p.wait(timeout=15)
-        except ProcessLookupError:
-            return
-        except subprocess.TimeoutExpired:
-            try:
-                os.killpg(p.pid, signal.SIGKILL)
-            except ProcessLookupError:
-                return
-            p.wait(timeout=5)
+        stop_group(p, grace_s=15)
 
     def log_tail(self, lines: int = 20) -> str:
-        try:
-            return "\n".join(self.log_path.read_text(encoding="utf-8", errors="replace").splitlines()[-lines:])
-        except OSError:
-            return f"({self.log_path} unreadable)"
+        return log_tail(self.log_path, lines)

@@ -11,8 +11,6 @@ from __future__ import annotations
 import csv
 import json
 import math
-import os
-import signal
 import subprocess
 import sys
 import time
@@ -22,6 +20,7 @@ from pathlib import Path
 from service.load.errors import LoadTestError
 from service.load.plan import LoadPlan
 from service.load.ports import free_loopback_port
+from service.load.processes import log_tail, stop_group
 from service.load.stats import StepStats, merge_steps
 
 LOCUSTFILE = Path(__file__).resolve().parents[2] / "loadtest" / "locustfile.py"
@@ -129,25 +128,11 @@ def _spawn(cmd: list[str], log: Path, cwd: Path) -> subprocess.Popen:
 
 
 def _stop(p: subprocess.Popen) -> None:
-    try:
-        os.killpg(p.pid, signal.SIGTERM)
-        p.wait(timeout=5)
-    except ProcessLookupError:
-        return
-    except subprocess.TimeoutExpired:
-        try:
-            os.killpg(p.pid, signal.SIGKILL)
-        except ProcessLookupError:
-            return
-        p.wait(timeout=5)
+    stop_group(p, grace_s=5)
 
 
 def _tail(workdir: Path, name: str, lines: int = 15) -> str:
-    log = workdir / ("locust-master.log" if name == "master" else f"locust-{name.replace(' ', '-')}.log")
-    try:
-        return "\n".join(log.read_text(encoding="utf-8", errors="replace").splitlines()[-lines:])
-    except OSError:
-        return f"({log} unreadable)"
+    return log_tail(workdir / ("locust-master.log" if name == "master" else f"locust-{name.replace(' ', '-')}.log"), lines)
 
 
 def _locust_totals(path: Path) -> tuple[int | None, int | None]:
