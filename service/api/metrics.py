@@ -14,6 +14,7 @@ from __future__ import annotations
 import bisect
 import math
 import os
+from abc import ABC, abstractmethod
 from collections.abc import Callable, Iterable
 
 from service.resilience.breaker import BreakerState
@@ -48,7 +49,9 @@ def _labels(names: tuple[str, ...], values: tuple[str, ...], extra: str = "") ->
     return "{" + ",".join(parts) + "}" if parts else ""
 
 
-class _Family:
+class _Family(ABC):
+    """One metric family: its header, and the samples each kind writes."""
+
     kind = ""
 
     def __init__(self, name: str, help_text: str, labelnames: tuple[str, ...] = ()) -> None:
@@ -59,8 +62,8 @@ class _Family:
     def header(self) -> list[str]:
         return [f"# HELP {self.name} {_escape_help(self.help)}", f"# TYPE {self.name} {self.kind}"]
 
-    def lines(self) -> Iterable[str]:
-        raise NotImplementedError
+    @abstractmethod
+    def lines(self) -> Iterable[str]: ...
 
 
 class Counter(_Family):

@@ -235,23 +235,16 @@ class Visits:
             steps = 1 if gru_state is not None else 1 + len(model.known_indices(history))
             ticket, reason, model_deadline = self._admit(steps, True, deadline)
             if reason is None:
-                t0 = time.perf_counter()
-                try:
-                    async with self._model_timeout(model_deadline, t0):
-                        if gru_state is None:
-                            gru_state = await self._replay(model, history)
-                        gru_state, ranking = await model.gru.step(gru_state, index, count, seen)
-                    timing.step_s = ranking.step_s
-                    self._model_done(ticket, t0, steps)
+
+                async def advance() -> tuple[GruState, Ranking]:
+                    start = gru_state if gru_state is not None else await self._replay(model, history)
+                    return await model.gru.step(start, index, count, seen)
+
+                ran, reason = await self._run_model(advance, ticket, model_deadline, steps, timing)
+                if ran is not None:
+                    new_gru, ranking = ran
                     served_by = "gru"
-                    hidden, previous, tag = gru_state.hidden.tobytes(), gru_state.previous.tobytes(), model.tag
-                except asyncio.CancelledError:
-                    self._model_abandoned(ticket)
-                    raise
-                except Exception as exc:  # noqa: BLE001 - whatever the model does wrong, the visitor gets the fallback
-                    reason = self._model_failed(ticket, exc)
-                finally:
-                    timing.model_s += time.perf_counter() - t0
+                    hidden, previous, tag = new_gru.hidden.tobytes(), new_gru.previous.tobytes(), model.tag
             if reason is not None:
                 ranking, served_by = self._fallback(model, index, count, seen)
                 hidden = previous = tag = None  # the next request rebuilds the state by replay
@@ -303,21 +296,14 @@ class Visits:
         steps = 1 + (len(model.known_indices(state.items)) if replay else 0)
         ticket, reason, model_deadline = self._admit(steps, False, deadline)
         if reason is None:
-            t0 = time.perf_counter()
-            try:
-                async with self._model_timeout(model_deadline, t0):
-                    gru_state = await self._replay(model, state.items) if replay else GruState(stored.hidden, stored.previous, last)
-                    ranking = await model.gru.rank(gru_state, count, seen)
-                timing.step_s = ranking.step_s
-                self._model_done(ticket, t0, steps)
-                return self._answer(model, ranking, "gru", None, state.sequence)
-            except asyncio.CancelledError:
-                self._model_abandoned(ticket)
-                raise
-            except Exception as exc:  # noqa: BLE001 - whatever the model does wrong, the visitor gets the fallback
-                reason = self._model_failed(ticket, exc)
-            finally:
-                timing.model_s += time.perf_counter() - t0
+
+            async def rerank() -> tuple[None, Ranking]:
+                gru_state = await self._replay(model, state.items) if replay else GruState(stored.hidden, stored.previous, last)
+                return None, await model.gru.rank(gru_state, count, seen)
+
+            ran, reason = await self._run_model(rerank, ticket, model_deadline, steps, timing)
+            if ran is not None:
+                return self._answer(model, ran[1], "gru", None, state.sequence)
         ranking, served_by = self._fallback(model, last, count, seen)
         return self._answer(model, ranking, served_by, reason, state.sequence)
 
@@ -340,6 +326,31 @@ class Visits:
             guards.model.release(ticket)
             return None, "budget", 0.0
         return ticket, None, model_deadline
+
+    async def _run_model(
+        self,
+        call: Callable[[], Awaitable[tuple[Any, Ranking]]],
+        ticket: int | None,
+        model_deadline: float,
+        steps: int,
+        timing: Timing,
+    ) -> tuple[tuple[Any, Ranking] | None, str | None]:
+        """`call` (the admitted model work of a request) under its deadline and breaker: (its result,
+        None), or (None, the fallback reason) when it failed or ran past the deadline."""
+        t0 = time.perf_counter()
+        try:
+            async with self._model_timeout(model_deadline, t0):
+                result = await call()
+            timing.step_s = result[1].step_s
+            self._model_done(ticket, t0, steps)
+            return result, None
+        except asyncio.CancelledError:
+            self._model_abandoned(ticket)
+            raise
+        except Exception as exc:  # noqa: BLE001 - whatever the model does wrong, the visitor gets the fallback
+            return None, self._model_failed(ticket, exc)
+        finally:
+            timing.model_s += time.perf_counter() - t0
 
     def _model_timeout(self, deadline: float, now: float) -> Any:
         if not self._guard_model:

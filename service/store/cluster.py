@@ -17,8 +17,6 @@ conflict for its own write); MOVED and ASK redirections are followed by the clie
 
 from __future__ import annotations
 
-from typing import Any
-
 from redis.asyncio.cluster import ClusterNode, RedisCluster
 from redis.asyncio.retry import Retry
 from redis.backoff import NoBackoff
@@ -26,7 +24,7 @@ from redis.exceptions import RedisClusterException, RedisError
 
 from service.config import cluster_nodes, redacted
 from service.errors import StoreError
-from service.store.redis import REDIS_ERRORS, RedisCommands, store_error
+from service.store.redis import REDIS_ERRORS, RedisCommands
 
 
 class RedisClusterStore(RedisCommands):
@@ -59,15 +57,3 @@ class RedisClusterStore(RedisCommands):
         except REDIS_ERRORS:
             return ""
         return "" if node is None else node.name
-
-    async def close(self) -> None:
-        try:
-            await self._client.aclose()
-        except REDIS_ERRORS as exc:
-            raise store_error("close", exc) from exc
-
-    async def _call(self, what: str, pending: Any) -> Any:
-        try:
-            return await pending
-        except REDIS_ERRORS as exc:
-            raise store_error(what, exc) from exc

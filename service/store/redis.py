@@ -67,8 +67,8 @@ def store_error(what: str, exc: BaseException) -> StoreError:
 
 class RedisCommands:
     """The store's commands on one redis-py asyncio client, a single Redis's or a cluster's: the
-    subclass opens `_client`, sets the key prefixes and `ttl_ms`, and turns errors into
-    `StoreError` in `_call`."""
+    subclass opens `_client` and sets the key prefixes and `ttl_ms`. Redis errors become
+    `StoreError`; after a connection error `_connection_lost` runs first."""
 
     _client: Any
     _session_prefix: str
@@ -96,8 +96,23 @@ class RedisCommands:
     async def ping(self) -> None:
         await self._call("PING", self._client.ping())  # a cluster pings every node: one down is a degraded store
 
+    async def close(self) -> None:
+        try:
+            await self._client.aclose()
+        except REDIS_ERRORS as exc:
+            raise store_error("close", exc) from exc
+
     async def _call(self, what: str, pending: Any) -> Any:
-        raise NotImplementedError
+        try:
+            return await pending
+        except REDIS_ERRORS as exc:
+            if isinstance(exc, (RedisConnectionError, OSError)):
+                with contextlib.suppress(*REDIS_ERRORS):
+                    await self._connection_lost()
+            raise store_error(what, exc) from exc
+
+    async def _connection_lost(self) -> None:
+        """Nothing by default: the cluster client replaces a failed node's connections itself."""
 
 
 class RedisStore(RedisCommands):
@@ -134,17 +149,12 @@ class RedisStore(RedisCommands):
         return ""
 
     async def close(self) -> None:
+        await super().close()
         try:
-            await self._client.aclose()
             await self._pool.aclose()
         except REDIS_ERRORS as exc:
             raise store_error("close", exc) from exc
 
-    async def _call(self, what: str, pending: Any) -> Any:
-        try:
-            return await pending
-        except REDIS_ERRORS as exc:
-            if isinstance(exc, (RedisConnectionError, OSError)):
-                with contextlib.suppress(*REDIS_ERRORS):
-                    await self._pool.disconnect(inuse_connections=False)
-            raise store_error(what, exc) from exc
+    async def _connection_lost(self) -> None:
+        # Every pooled socket of a restarted Redis is dead: drop the idle ones now.
+        await self._pool.disconnect(inuse_connections=False)
