@@ -23,8 +23,9 @@ redis-server:
 	  (apt-get update -qq && apt-get install -y -qq redis-server) || \
 	  (sudo apt-get update -qq && sudo apt-get install -y -qq redis-server); }
 
+# A crash in native code (at exit, say) prints every thread's Python stack instead of a bare signal.
 test: $(STAMP) redis-server
-	$(BIN)/python -m pytest
+	PYTHONFAULTHANDLER=1 $(BIN)/python -m pytest
 
 # The demo shop: scale 3 (about 780,000 training clicks) is what the GRU needs to get near the
 # oracle; the scenario itself is fixed. Each loss trains with early stopping on validation MRR@20.

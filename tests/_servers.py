@@ -144,7 +144,11 @@ def serve_app(app: object, log_level: str = "warning", access_log: bool = True) 
     sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
     sock.bind(("127.0.0.1", 0))
     port = sock.getsockname()[1]
-    config = uvicorn.Config(app, loop="uvloop", http="httptools", lifespan="on", log_level=log_level, access_log=access_log, log_config=None)
+    # Shutdown waits for open connections at most 5 s, as `cairn serve` does.
+    config = uvicorn.Config(
+        app, loop="uvloop", http="httptools", lifespan="on", log_level=log_level, access_log=access_log, log_config=None,
+        timeout_graceful_shutdown=5,
+    )  # fmt: skip
     server = uvicorn.Server(config)
     thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
     thread.start()
@@ -157,8 +161,15 @@ def serve_app(app: object, log_level: str = "warning", access_log: bool = True) 
         yield f"http://127.0.0.1:{port}"
     finally:
         server.should_exit = True
-        thread.join(timeout=15)
+        thread.join(timeout=10)
+        if thread.is_alive():  # a connection that never closed: stop without waiting for it
+            server.force_exit = True
+            thread.join(timeout=5)
         sock.close()
+        if thread.is_alive():
+            # A uvicorn thread still running when the interpreter exits crashes it in native code
+            # (a uvloop timer takes the GIL of a finalised interpreter): fail here, naming it.
+            raise RuntimeError(f"the test server on port {port} did not stop ({len(server.server_state.connections)} connections open)")
 
 
 @dataclass

@@ -30,6 +30,7 @@ from service.config import Settings, load_settings
 from service.errors import CairnError, StoreError
 from service.resilience.guards import Guards
 from service.runtime.active import ActiveModel, ModelChoice, ModelWrapper, resolve_choice
+from service.runtime.tasks import stop_task
 from service.runtime.visits import Visits
 from service.store.base import SessionStore, open_store
 from service.store.recent import RecentWrites
@@ -88,9 +89,7 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
             yield
         finally:
             if follower is not None:
-                follower.cancel()
-                with contextlib.suppress(asyncio.CancelledError):
-                    await follower
+                await stop_task(follower)  # a single cancel can be lost inside a Redis call
             await active.close()
             await session_store.close()
 

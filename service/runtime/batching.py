@@ -27,6 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.runtime.onnx_step import OnnxStep, StepError
+from service.runtime.tasks import stop_task
 
 INLINE_MAX_S = 0.002
 
@@ -79,16 +80,13 @@ class StepBatcher:
 
     async def close(self) -> None:
         if self._task is not None:
-            self._task.cancel()
-            try:
-                await self._task
-            except asyncio.CancelledError:
-                pass
+            await stop_task(self._task)
         while not self._queue.empty():
             pending = self._queue.get_nowait()
             if not pending.future.done():
                 pending.future.set_exception(StepError("the step runner was closed"))
-        self._executor.shutdown(wait=False, cancel_futures=True)
+        # A step still running on the worker thread finishes first: the owner may free the step next.
+        await asyncio.to_thread(self._executor.shutdown, wait=True, cancel_futures=True)
 
     async def _drain(self) -> None:
         loop = asyncio.get_running_loop()
@@ -110,6 +108,11 @@ class StepBatcher:
                     next_hidden, top_items, top_scores, step_s = await loop.run_in_executor(
                         self._executor, self._timed_step, items, hidden, top_n
                     )  # [L, B, H], [B, top_n], [B, top_n], seconds
+            except asyncio.CancelledError:  # closed mid-step: its callers get an answer, not a wait
+                for p in batch:
+                    if not p.future.done():
+                        p.future.set_exception(StepError("the step runner was closed"))
+                raise
             except Exception as exc:  # noqa: BLE001 - every caller of the batch gets the failure
                 for p in batch:
                     if not p.future.done():

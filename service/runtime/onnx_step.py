@@ -31,6 +31,16 @@ class StepError(CairnError):
     """ONNX Runtime could not run a step (wrong dtype or shape, item index out of range)."""
 
 
+class _ClosedSession:
+    """Stands in for the ONNX Runtime session after `OnnxStep.close`: a late call gets a StepError."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+
+    def run(self, *_: object) -> list[np.ndarray]:
+        raise StepError(f"{self.path}: the step graph was closed")
+
+
 class OnnxStep:
     """`step.onnx` of an artifact, opened once; `run` and `run_scores` advance a batch by one click."""
 
@@ -73,6 +83,11 @@ class OnnxStep:
         ):
             raise ArtifactError(f"{self.path}: step graph without fixed sizes (hidden {hidden_shape}, scores {scores_shape})")
         return hidden_shape[0], hidden_shape[2], scores_shape[1]
+
+    def close(self) -> None:
+        """Frees the ONNX Runtime session now rather than whenever the last reference goes (at worst
+        in interpreter teardown, where native destructors run in no set order). No call may be running."""
+        self._session = _ClosedSession(self.path)
 
     def zero_hidden(self, batch_size: int) -> np.ndarray:
         """The state of sessions that have not clicked yet: float32 [L, B, H] of zeros."""

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import math
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -91,12 +92,16 @@ def test_tiny_run_reports_every_variant_and_position(tmp_path: Path, capsys: pyt
             assert p["samples"] == 2 and p["median_ms"] > 0, (name, k)
             floor = report["variants"]["gru-step"]["positions"][k]["median_ms"]
             assert p["ratio_to_gru_step"] == pytest.approx(p["median_ms"] / floor, rel=1e-2)
-        assert v["growth"] > 0 and v["fitted_growth"] > 0
+        # Two rounds are all noise: the fitted line may even slope below zero, so only its form is checked here.
+        assert v["growth"] > 0 and math.isfinite(v["fitted_growth"])
         # Ordinary least-squares slope in closed form, sum((x - mean x)(y - mean y)) / sum((x - mean x)^2)
         # (NIST/SEMATECH e-Handbook of Statistical Methods, 4.1.4.1; from memory).
         x, y = np.arange(1, 51), np.asarray(v["median_ms_by_position"])
         ols = float(((x - x.mean()) * (y - y.mean())).sum() / ((x - x.mean()) ** 2).sum())
         assert v["slope_ms_per_click"] == pytest.approx(ols, abs=1e-4), name
+        intercept = float(y.mean() - ols * x.mean())
+        if abs(intercept + ols) > 0.05 * y.mean():  # the fitted cost at k=1 is not about zero
+            assert v["fitted_growth"] == pytest.approx((intercept + 50 * ols) / (intercept + ols), rel=2e-2, abs=2e-3), name
     assert report["variants"]["gru-step"]["positions"]["10"]["ratio_to_gru_step"] == 1.0
     for name in side_by_side.SERVICE:
         assert set(report["variants"][name]["server_timing_median_ms"]["50"]) == {"store", "model", "step", "total"}

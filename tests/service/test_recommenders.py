@@ -134,12 +134,15 @@ class RecordingStep:
         self.layers, self.hidden_size, self.n_items = real.layers, real.hidden_size, real.n_items
         self.delay_s = 0.0
         self.threads: list[str] = []
+        self.finished = 0  # calls that returned
 
     def run(self, items, hidden, top_n):
         self.threads.append(threading.current_thread().name)
         if self.delay_s:
             time.sleep(self.delay_s)
-        return self.real.run(items, hidden, top_n)
+        out = self.real.run(items, hidden, top_n)
+        self.finished += 1
+        return out
 
 
 def test_lone_clicks_run_on_the_loop_until_one_is_slow_and_batches_on_the_thread(graph):
@@ -192,3 +195,37 @@ def test_inline_steps_can_be_turned_off(graph):
 
     assert asyncio.run(go()) == 0
     assert all(name.startswith("cairn-ort") for name in step.threads)
+
+
+def test_closing_waits_for_the_running_step_and_a_closed_step_refuses_calls(graph, tmp_path):
+    from service.offline.export import write_random_artifact
+    from service.runtime.onnx_step import StepError
+
+    _, real = graph
+    step = RecordingStep(real)
+    step.delay_s = 0.2
+    zero = np.zeros((step.layers, step.hidden_size), np.float32)
+
+    async def go():
+        batcher = StepBatcher(step, inline_max_s=0.0)
+        batcher.start()
+        running = asyncio.ensure_future(batcher.run(3, zero, 2))
+        while not step.threads:
+            await asyncio.sleep(0.01)  # until the step is sleeping on the worker thread
+        await batcher.close()
+        finished_at_close = step.finished
+        with pytest.raises(StepError, match="not running"):
+            await batcher.run(4, zero, 2)
+        with pytest.raises(StepError, match="was closed"):
+            await running  # the click that was being scored is answered, not left waiting
+        return finished_at_close
+
+    assert asyncio.run(go()) == 1  # close returned only once the step on the thread was done with the session
+
+    own = OnnxStep(write_random_artifact(tmp_path, "c", "v1", n_items=20, hidden_size=4, seed=1) / "step.onnx")
+    own.run(np.array([1]), own.zero_hidden(1), 3)
+    own.close()
+    with pytest.raises(StepError, match="was closed"):
+        own.run(np.array([1]), own.zero_hidden(1), 3)
+    with pytest.raises(StepError, match="was closed"):
+        own.run_scores(np.array([1]), own.zero_hidden(1))

@@ -48,6 +48,9 @@ class FailingStep:
     def run(self, items, hidden, top_n):
         raise StepError("injected failure")
 
+    def close(self) -> None:
+        pass
+
 
 class Holder:
     def __init__(self, model, choice) -> None:
