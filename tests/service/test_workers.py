@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import os
 import re
+import signal
 import time
 from collections import Counter
 
@@ -90,3 +91,35 @@ def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, s
             answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
             assert answer["sequence"] == n and answer["model_version"] == "shop/v2"
             assert [i["item_id"] for i in answer["items"]] == offline["v2"].top(CLICKS[:n], count=6)[0]
+
+
+def test_sigterm_stops_a_worker_cleanly_and_promptly(model_store, redis_url, tmp_path, sid):
+    # With Redis the worker runs a background task that polls the shared model choice through Redis;
+    # shutdown must stop it even mid-call (service/runtime/tasks.py), then exit 0.
+    port = free_port()
+    url = f"http://127.0.0.1:{port}"
+    with cairn_serve(
+        ["--port", str(port)],
+        tmp_path,
+        lambda: httpx.get(f"{url}/readyz", timeout=2).status_code == 200,
+        "cairn serve",
+        ignore=(httpx.TransportError,),
+        CAIRN_STORE=redis_url,
+        CAIRN_MODEL_STORE=str(model_store),
+        CAIRN_MODEL_NAME="shop",
+        CAIRN_MODEL_POLL_S="0.05",  # the smallest allowed: the follower calls Redis often
+        CAIRN_REDIS_PREFIX=f"t{os.getpid()}:",
+        CAIRN_LOG_LEVEL="info",
+    ) as proc:
+        with fresh(url) as c:
+            for item in CLICKS[:3]:
+                assert c.post(f"/v1/sessions/{sid('term')}/clicks", json={"item_id": item}).status_code == 200
+        t0 = time.monotonic()
+        proc.terminate()
+        rc = proc.wait(timeout=15)
+        took = time.monotonic() - t0
+    log = (tmp_path / "serve.log").read_text()
+    # uvicorn re-raises the signal once it has shut down, so the exit status is SIGTERM's own.
+    assert rc in (0, -signal.SIGTERM), log
+    assert took < 5, (took, log)  # no request in flight: nothing to wait for, well inside a 30 s grace period (common practice)
+    assert "Application shutdown complete" in log and "Finished server process" in log and "Traceback" not in log
