@@ -23,7 +23,7 @@ redis-server:
 	  (apt-get update -qq && apt-get install -y -qq redis-server) || \
 	  (sudo apt-get update -qq && sudo apt-get install -y -qq redis-server); }
 
-# A crash in native code (at exit, say) prints every thread's Python stack instead of a bare signal.
+# A crash in native code while tests run prints every thread's Python stack instead of a bare signal.
 test: $(STAMP) redis-server
 	PYTHONFAULTHANDLER=1 $(BIN)/python -m pytest
 
