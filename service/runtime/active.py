@@ -80,7 +80,6 @@ class LoadedModel:
         self.item_ids = artifact.item_ids  # index -> id
         self.popularity = PopularityRecommender(artifact.popularity)
         self.neighbours = NeighbourRecommender(artifact.neighbour_items, artifact.neighbour_scores, self.popularity)
-        self._step = step
         self.batcher = StepBatcher(step, max_batch=max_batch)
         self._gru = GruRecommender(self.batcher)
         self.gru: Recommender = self._gru  # what the click path calls; `wrap` may put a test double around it
@@ -97,7 +96,7 @@ class LoadedModel:
 
     async def close(self) -> None:
         await self.batcher.close()
-        self._step.close()  # this model's ONNX Runtime session is freed on shutdown or retirement
+        self.batcher.step.close()  # this model's ONNX Runtime session is freed on shutdown or retirement
 
     def index_of(self, item_id: str) -> int:
         """Index of an item id in this model's vocabulary, -1 when the model does not know it."""
@@ -289,4 +288,4 @@ class ActiveModel:
         if self._current is not None:
             await self._current[0].close()
             self._current = None
-        gc.unfreeze()  # what `_adopt` froze can be collected again (a test process outlives many apps)
+        gc.unfreeze()  # what `_install` froze can be collected again (a test process outlives many apps)

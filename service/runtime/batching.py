@@ -81,10 +81,10 @@ class StepBatcher:
     async def close(self) -> None:
         if self._task is not None:
             await stop_task(self._task)
+        waiting = []
         while not self._queue.empty():
-            pending = self._queue.get_nowait()
-            if not pending.future.done():
-                pending.future.set_exception(StepError("the step runner was closed"))
+            waiting.append(self._queue.get_nowait())
+        _fail(waiting, StepError("the step runner was closed"))
         # A step still running on the worker thread finishes first: the owner may free the step next.
         await asyncio.to_thread(self._executor.shutdown, wait=True, cancel_futures=True)
 
@@ -109,14 +109,10 @@ class StepBatcher:
                         self._executor, self._timed_step, items, hidden, top_n
                     )  # [L, B, H], [B, top_n], [B, top_n], seconds
             except asyncio.CancelledError:  # closed mid-step: its callers get an answer, not a wait
-                for p in batch:
-                    if not p.future.done():
-                        p.future.set_exception(StepError("the step runner was closed"))
+                _fail(batch, StepError("the step runner was closed"))
                 raise
             except Exception as exc:  # noqa: BLE001 - every caller of the batch gets the failure
-                for p in batch:
-                    if not p.future.done():
-                        p.future.set_exception(exc)
+                _fail(batch, exc)
                 continue
             if lone:
                 self._inline = step_s < self.inline_max_s
@@ -145,3 +141,10 @@ class StepBatcher:
             items[b] = p.item
             hidden[:, b, :] = p.hidden
         return items, hidden
+
+
+def _fail(pending: list[_Pending], exc: BaseException) -> None:
+    """Every caller still waiting in `pending` gets `exc`."""
+    for p in pending:
+        if not p.future.done():
+            p.future.set_exception(exc)
