@@ -124,14 +124,16 @@ def test_a_stopped_master_degrades_only_its_own_sessions(cluster, start_server, 
         victim.kill()
         for round_ in (2, 3):
             for s in sessions:
-                r = c.post(f"/v1/sessions/{s}/clicks", json={"item_id": "sku-000040"})
+                # A generous budget: this test is about which visits degrade, not latency (the first
+                # failure re-reads the slot map, which a loaded machine can make slow).
+                r = c.post(f"/v1/sessions/{s}/clicks", json={"item_id": "sku-000040", "budget_ms": 2000})
                 assert r.status_code == 200, r.text
                 answer = r.json()
                 if s in lost:
                     assert answer["fallback_reason"] == "store_unavailable" and answer["sequence"] == 0
                     assert answer["served_by"] == "neighbours" and kit.ids(answer) == offline["v1"].neighbours("sku-000040")
                 else:
-                    assert answer["fallback_reason"] is None and answer["served_by"] == "gru" and answer["sequence"] == round_
+                    assert answer["fallback_reason"] is None and answer["served_by"] == "gru" and answer["sequence"] == round_, (round_, answer, r.headers.get("server-timing"))
         ready = c.get("/readyz")
         metrics = c.get("/metrics").text
     assert ready.status_code == 503 and ready.json()["degraded"] == ["store"]
@@ -139,3 +141,4 @@ def test_a_stopped_master_degrades_only_its_own_sessions(cluster, start_server, 
     assert kit.metric(metrics, "cairn_breaker_state", breaker=f"store@127.0.0.1:{victim.port}") == 2
     for n in cluster[1:]:
         assert kit.metric(metrics, "cairn_breaker_state", breaker=f"store@127.0.0.1:{n.port}") == 0
+

@@ -70,6 +70,9 @@ def test_redis_killed_mid_load_and_restarted(start_server, own_redis, offline, s
     assert kit.metric(metrics, "cairn_breaker_state", breaker="store") == 0
 
 
+STALL_SLACK_MS = 60  # an eighth of the 500 ms stall: a wait for the stall still fails the test
+
+
 class SlowStore:
     """A real store whose reads take `delay_s` longer (a Redis that stalls), set by the test."""
 
@@ -110,7 +113,10 @@ def test_a_stalled_store_call_is_abandoned_within_the_budget(start_server, share
         for ms, answer in answers:
             assert answer["fallback_reason"] == "store_unavailable" and answer["sequence"] == 0
             assert kit.ids(answer) == offline["v1"].neighbours("sku-000060")
-            assert ms <= 40 + 15 and answer["took_ms"] <= 40 + 5
+            # Abandoned at the 40 ms deadline, far from the 500 ms stall. The bounds leave room for a
+            # loaded 2-core CI machine to run the event loop late (CI once saw 47 ms inside the
+            # service); how close to the budget answers stay is the resilience benchmark's figure.
+            assert ms <= 40 + STALL_SLACK_MS and answer["took_ms"] <= 40 + STALL_SLACK_MS, (ms, answer["took_ms"])
         # 12 calls succeeded (a load and a save per click); the fourth abandoned read makes 4 of 16, a
         # quarter: the breaker opens and the next reads are refused at once.
         assert [ms > 30 for ms, _ in answers] == [True] * 4 + [False] * 2, [round(ms) for ms, _ in answers]

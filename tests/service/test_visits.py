@@ -130,7 +130,9 @@ def test_model_past_the_deadline_is_abandoned(settings_for, offline):
     a = offline["v1"].artifact
     assert late.fallback_reason == "deadline" and late.served_by == "neighbours" and late.sequence == 1
     assert late.item_ids == [a.item_ids[i] for i in a.neighbour_items[a.item_index[CLICKS[0]]] if a.item_ids[i] != CLICKS[0]][:5]
-    assert 0.025 <= took <= 0.04  # abandoned at the deadline (set a millisecond early for the timer), not after 200 ms
+    # Abandoned at the 30 ms deadline (set a millisecond early for the timer), not after the 200 ms step;
+    # the upper bound leaves a loaded CI machine room to run the event loop late.
+    assert 0.025 <= took <= 0.1, took
 
 
 def test_failing_model_answers_from_neighbours(model_store):
