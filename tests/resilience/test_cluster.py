@@ -141,4 +141,3 @@ def test_a_stopped_master_degrades_only_its_own_sessions(cluster, start_server, 
     assert kit.metric(metrics, "cairn_breaker_state", breaker=f"store@127.0.0.1:{victim.port}") == 2
     for n in cluster[1:]:
         assert kit.metric(metrics, "cairn_breaker_state", breaker=f"store@127.0.0.1:{n.port}") == 0
-
