@@ -50,7 +50,7 @@ demo: $(STAMP)
 	# The exported graph through the same evaluation: it must agree with the PyTorch model above.
 	$(BIN)/cairn evaluate --data $(DEMO_DATA)/prepared --recommenders '' --artifact model_store/garden-gru/demo \
 	  --bootstrap 200 --out $(DEMO_REPORTS)/evaluation-onnx.json
-	$(BIN)/python -m service.bench.quality --report $(DEMO_REPORTS)/evaluation.json --out $(DEMO_REPORTS)/quality.json
+	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out $(DEMO_REPORTS)/quality.json
 	@if [ "$(SERVE)" = "1" ]; then \
 	  item=$$($(BIN)/python -c "import json; print(json.load(open('$(DEMO_DATA)/prepared/item_ids.json'))[0])"); \
 	  echo; echo "Starting the service on model_store/garden-gru/demo (memory store). In another terminal:"; \
@@ -61,14 +61,14 @@ demo: $(STAMP)
 	fi
 
 bench: $(STAMP)
-	$(BIN)/python -m service.bench.ingest --out reports/bench/ingest.json
-	$(BIN)/python -m service.bench.training --out reports/bench/training.json
-	$(BIN)/python -m service.bench.step --out reports/bench/step.json
-	$(BIN)/python -m service.bench.service --out reports/bench/service.json
-	$(BIN)/python -m service.bench.side_by_side --out reports/bench/side_by_side.json
-	$(BIN)/python -m service.bench.resilience --out reports/bench/resilience.json
+	$(BIN)/python -m bench.ingest --out reports/bench/ingest.json
+	$(BIN)/python -m bench.training --out reports/bench/training.json
+	$(BIN)/python -m bench.step --out reports/bench/step.json
+	$(BIN)/python -m bench.service --out reports/bench/service.json
+	$(BIN)/python -m bench.side_by_side --out reports/bench/side_by_side.json
+	$(BIN)/python -m bench.resilience --out reports/bench/resilience.json
 	$(MAKE) demo SERVE=0
-	$(BIN)/python -m service.bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
+	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
 
 clean:
 	rm -rf $(VENV) reports data checkpoints

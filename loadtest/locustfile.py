@@ -31,10 +31,10 @@ from locust import FastHttpUser, constant, events, task
 from locust.exception import StopUser
 from locust.runners import MasterRunner
 
-from service.load.pacing import Pacer
-from service.load.plan import LoadPlan
-from service.load.replay import VisitSet
-from service.load.stats import NO_FALLBACK, StepStats
+from loadtest.pacing import Pacer
+from loadtest.plan import LoadPlan
+from loadtest.replay import VisitSet
+from loadtest.stats import NO_FALLBACK, StepStats
 
 CPU_SAMPLE_S = 0.25  # how often a worker samples its own CPU time
 DONE_MESSAGE = "cairn-worker-done"  # worker -> master: all my visitors have left

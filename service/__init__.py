@@ -1,8 +1,5 @@
-"""cairn: next-click recommendations for anonymous visits.
-
-The package has two halves that meet in `model_store/`: `service.offline` (ingest, demo data,
-baselines, GRU training, evaluation, export; may import torch) and the serving path
-(`service.api`, `service.store`, `service.runtime`, `service.artifacts`; numpy and onnxruntime only).
+"""cairn's serving process: the HTTP API, the session stores, the runtime recommenders, the guards,
+and the artifact format it shares with the offline workbench (numpy and ONNX Runtime only).
 """
 
 __version__ = "0.1.0"

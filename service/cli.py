@@ -16,26 +16,41 @@ from service.errors import CairnError
 
 # name -> (module, one-line help)
 COMMANDS: dict[str, tuple[str, str]] = {
-    "demo-data": ("service.offline.scenario_cli", "generate the garden-shop demo click log and its oracle"),
-    "prepare": ("service.offline.clicklog_cli", "turn a raw click log into train/valid/test sessions"),
-    "train": ("service.offline.train_cli", "train the GRU next-click model"),
-    "export": ("service.offline.export_cli", "write a model artifact into the model store"),
-    "evaluate": ("service.offline.evaluate_cli", "compare recommenders on the test sessions"),
-    "artifacts": ("service.artifacts_cli", "list and verify artifacts in the model store"),
+    "demo-data": ("offline.demo.demo_cli", "generate the garden-shop demo click log and its oracle"),
+    "prepare": ("offline.data.prepare_cli", "turn a raw click log into train/valid/test sessions"),
+    "train": ("offline.model.train_cli", "train the GRU next-click model"),
+    "export": ("offline.export.export_cli", "write a model artifact into the model store"),
+    "evaluate": ("offline.evaluate.evaluate_cli", "compare recommenders on the test sessions"),
+    "artifacts": ("service.artifacts.artifacts_cli", "list and verify artifacts in the model store"),
     "serve": ("service.api.serve_cli", "run the HTTP recommendation service"),
-    "loadtest": ("service.load.loadtest_cli", "replay held-out visits against the service and judge the page budget"),
-    "capacity": ("service.load.capacity_cli", "find the highest rate per core that meets the budget"),
+    "loadtest": ("loadtest.loadtest_cli", "replay held-out visits against the service and judge the page budget"),
+    "capacity": ("loadtest.capacity_cli", "find the highest rate per core that meets the budget"),
 }
+
+
+def _command_module(name: str):
+    """The module of subcommand `name`; a clear error where this installation lacks its package (the
+    serving image holds `service/` only: the workbench, load test and benchmarks are not in it)."""
+    module_name = COMMANDS[name][0]
+    try:
+        return importlib.import_module(module_name)
+    except ModuleNotFoundError as exc:
+        if exc.name is not None and exc.name.split(".")[0] == module_name.split(".")[0]:
+            raise CairnError(
+                f"`cairn {name}` is not part of this installation (it needs the {module_name.split('.')[0]!r} package; "
+                "the serving image has `cairn serve` and `cairn artifacts` only)"
+            ) from None
+        raise
 
 
 def build_parser(selected: str | None = None) -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="cairn", description="Next-click recommendations for anonymous visits.")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
-    for name, (module_name, help_text) in COMMANDS.items():
+    for name, (_, help_text) in COMMANDS.items():
         p = sub.add_parser(name, help=help_text, description=help_text)
         if name == selected:
-            importlib.import_module(module_name).configure(p)
+            _command_module(name).configure(p)
     return parser
 
 
@@ -44,9 +59,13 @@ def main(argv: list[str] | None = None) -> int:
     selected = next((a for a in argv if not a.startswith("-")), None)
     if selected not in COMMANDS:
         selected = None
-    parser = build_parser(selected)
+    try:
+        parser = build_parser(selected)
+    except CairnError as exc:
+        print(f"cairn {selected}: error: {exc}", file=sys.stderr)
+        return 2
     args = parser.parse_args(argv)
-    module = importlib.import_module(COMMANDS[args.command][0])
+    module = _command_module(args.command)
     try:
         return int(module.run(args) or 0)
     except CairnError as exc:

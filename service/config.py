@@ -10,23 +10,31 @@ from __future__ import annotations
 import difflib
 import os
 import re
+from enum import StrEnum
 from pathlib import Path
 from typing import Any, Literal
 
 from pydantic import Field, SecretStr, ValidationError, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
-from service.errors import CairnError
+from service.errors import SettingsError
 
 ENV_PREFIX = "CAIRN_"
-RECOMMENDERS = ("gru", "neighbours", "popularity")
-ARTIFACT_PART = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")  # as service.artifacts accepts
+
+
+class RecommenderKind(StrEnum):
+    """Which recommender answers the visits: chosen by CAIRN_MODEL or a switch at run time."""
+
+    GRU = "gru"
+    NEIGHBOURS = "neighbours"
+    POPULARITY = "popularity"
+
+
+RECOMMENDERS = tuple(k.value for k in RecommenderKind)
+ARTIFACT_PART = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")  # as service.artifacts.format accepts
 DEFAULT_STATE_CACHE_SESSIONS = 20_000  # a state is about 1 KB: some 20 MB a worker
 _MIN_TOKEN = 16  # shorter admin tokens are guessable placeholders (common practice)
 
-
-class SettingsError(CairnError):
-    """A setting with a value the service cannot run with."""
 
 
 class Settings(BaseSettings):

@@ -1,15 +1,31 @@
-"""cairn's exceptions, one tree.
+"""cairn's exceptions, one tree. Every error cairn raises on purpose is a `CairnError`: the CLI prints
+it as one line naming the bad value and exits 2; the HTTP layer answers it with a 4xx or 503.
 
 CairnError                 base of everything cairn raises on purpose
+ ├── SettingsError         a setting (CAIRN_* variable or `cairn serve` flag) the service cannot run with
  ├── InputDataError        a click log or prepared data set that cannot be used (names file, column, row)
  ├── ArtifactError         a model artifact that is missing, corrupt or of another format
  ├── StoreError            the session store failed or timed out
- └── StepError             ONNX Runtime failed running a model step (service/runtime/onnx_step.py)
+ ├── StepError             ONNX Runtime failed running a model step
+ ├── ModelNotReadyError    a request arrived before the first artifact was loaded
+ ├── ScenarioError         a demo-scenario parameter that cannot be used (offline/demo)
+ ├── TrainingError         training settings that cannot work together, or a run that diverged (offline/model)
+ ├── EvaluateOptionError   a `cairn evaluate` option with a value that cannot be used (offline/evaluate)
+ ├── LoadTestError         a load test that cannot be set up or run (loadtest)
+ └── BenchError            a benchmark that cannot run as asked (bench)
+
+The classes live here, not beside the code that raises them, so `service` (which never imports the
+offline workbench, the load test or the benchmarks) and the CLI share one tree; a test checks that
+this docstring names every subclass.
 """
 
 
 class CairnError(Exception):
     """Base class: the CLI prints these as one line and exits non-zero, never a traceback."""
+
+
+class SettingsError(CairnError):
+    """A setting with a value the service cannot run with."""
 
 
 class InputDataError(CairnError):
@@ -22,3 +38,32 @@ class ArtifactError(CairnError):
 
 class StoreError(CairnError):
     """The session store failed or timed out."""
+
+
+class StepError(CairnError):
+    """ONNX Runtime could not run a step (wrong dtype or shape, item index out of range)."""
+
+
+class ModelNotReadyError(CairnError):
+    """A request arrived before the service loaded its first artifact."""
+
+
+class ScenarioError(CairnError):
+    """A demo-scenario parameter that cannot be used (names the parameter and its value)."""
+
+
+class TrainingError(CairnError):
+    """Training settings that cannot work together, or a run that diverged."""
+
+
+class EvaluateOptionError(CairnError):
+    """A `cairn evaluate` option with a value that cannot be used."""
+
+
+class LoadTestError(CairnError):
+    """A load test that cannot be set up or run: a bad flag value, a service that does not start,
+    a load generator that fails. Names the bad value or the process and its last log lines."""
+
+
+class BenchError(CairnError):
+    """The benchmark cannot run as asked (a bad option, a missing tool, a server that did not start)."""

@@ -8,7 +8,7 @@ from collections.abc import Iterator
 import pytest
 
 from service.config import ENV_PREFIX
-from tests._servers import TOKEN, new_id
+from tests._support.servers import TOKEN, new_id
 
 
 @pytest.fixture(scope="session", autouse=True)

@@ -21,7 +21,7 @@ from typing import Any
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.api.metrics import ServiceMetrics
-from service.runtime.visits import Timing
+from service.runtime.timing import Timing
 
 log = logging.getLogger("cairn.service")
 

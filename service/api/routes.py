@@ -41,10 +41,11 @@ from service.api.schemas import (
     ModelsAnswer,
     RecommendationAnswer,
 )
-from service.artifacts import list_artifacts
+from service.artifacts.format import list_artifacts
 from service.errors import ArtifactError, CairnError, StoreError
 from service.runtime.active import ModelChoice
-from service.runtime.visits import Answer, Timing
+from service.runtime.timing import Timing
+from service.runtime.visits import Answer
 
 router = APIRouter()
 _NO_STORE = {"cache-control": "no-store"}

@@ -13,7 +13,8 @@ import importlib.util
 import logging
 import socket
 
-from service.config import RECOMMENDERS, Settings, SettingsError, export_environment, load_settings
+from service.config import RECOMMENDERS, Settings, export_environment, load_settings
+from service.errors import SettingsError
 from service.errors import ArtifactError
 
 # flag -> settings field
@@ -59,7 +60,7 @@ def settings_from_args(args: argparse.Namespace) -> Settings:
 
 def preflight(settings: Settings) -> None:
     """Fail now, with one line, on what would otherwise fail inside every worker."""
-    from service.artifacts import verify_artifact
+    from service.artifacts.format import verify_artifact
     from service.runtime.active import artifact_path, resolve_choice
     from service.store.base import open_store
 

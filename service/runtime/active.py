@@ -27,11 +27,11 @@ from pathlib import Path
 
 import numpy as np
 
-from service.artifacts import Artifact, list_artifacts, load_artifact
-from service.config import ARTIFACT_PART, RECOMMENDERS, Settings, SettingsError
-from service.errors import ArtifactError, CairnError, StoreError
+from service.artifacts.format import Artifact, list_artifacts, load_artifact
+from service.config import ARTIFACT_PART, RECOMMENDERS, Settings
+from service.errors import ArtifactError, CairnError, ModelNotReadyError, SettingsError, StepError, StoreError
 from service.runtime.batching import StepBatcher
-from service.runtime.onnx_step import OnnxStep, StepError
+from service.runtime.onnx_step import OnnxStep
 from service.runtime.recommenders import GruRecommender, NeighbourRecommender, PopularityRecommender, Recommender
 from service.store.base import SessionStore
 
@@ -174,7 +174,7 @@ class ActiveModel:
     @property
     def current(self) -> tuple[LoadedModel, ModelChoice]:
         if self._current is None:
-            raise RuntimeError("no model loaded yet")
+            raise ModelNotReadyError("no artifact loaded yet")
         return self._current
 
     @property

@@ -26,7 +26,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.runtime.onnx_step import OnnxStep, StepError
+from service.runtime.onnx_step import OnnxStep
+from service.errors import StepError
 from service.runtime.tasks import stop_task
 
 INLINE_MAX_S = 0.002

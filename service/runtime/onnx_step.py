@@ -15,7 +15,7 @@ import numpy as np
 import onnxruntime as ort
 from onnxruntime.capi import onnxruntime_pybind11_state as _ort_state
 
-from service.errors import ArtifactError, CairnError
+from service.errors import ArtifactError, StepError
 
 # ONNX Runtime raises its own exception classes (all direct subclasses of Exception) and, from
 # its Python wrapper, the built-in ones below for feeds it cannot convert.
@@ -26,9 +26,6 @@ _ORT_ERRORS: tuple[type[BaseException], ...] = tuple(
 _INPUTS = ("items", "hidden", "top_n")
 _OUTPUTS = ("next_hidden", "top_items", "top_scores", "scores")
 
-
-class StepError(CairnError):
-    """ONNX Runtime could not run a step (wrong dtype or shape, item index out of range)."""
 
 
 class _ClosedSession:

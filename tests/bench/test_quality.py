@@ -4,7 +4,7 @@ import json
 
 import pytest
 
-from service.bench.quality import main, summarise
+from bench.quality import main, summarise
 
 
 def _m(v: float) -> dict:

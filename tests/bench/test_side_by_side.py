@@ -15,11 +15,11 @@ import numpy as np
 import pytest
 import torch
 
-from service.bench import side_by_side
-from service.bench.naive_serving import HISTORY_LENGTH, VARIANTS, create_app
-from service.offline.export import write_random_artifact
-from service.offline.gru import load_checkpoint
-from tests._servers import serve_app
+from bench import side_by_side
+from bench.naive_serving import HISTORY_LENGTH, VARIANTS, create_app
+from offline.export.artifact_writer import write_random_artifact
+from offline.model.gru import load_checkpoint
+from tests._support.servers import serve_app
 
 N_ITEMS = 60
 HIDDEN = 8

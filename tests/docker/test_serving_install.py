@@ -1,6 +1,6 @@
 """The serving image's dependency list, checked without a container engine: it matches the
 package's core dependencies, and installed into a fresh virtual environment with the package
-(no extras, the offline code left out as the Dockerfile does) it serves a click with no torch.
+(no extras, only `service/` copied, as the Dockerfile does) it serves a click with no torch.
 
 Slow (one pip install from the package index, tens of seconds); kept to one install.
 """
@@ -18,11 +18,10 @@ from pathlib import Path
 
 from packaging.requirements import Requirement
 
-from tests._servers import environment_without_cairn, free_port, running_process
+from tests._support.servers import environment_without_cairn, free_port, running_process
 
 ROOT = Path(__file__).resolve().parents[2]
 REQUIREMENTS = ROOT / "docker" / "requirements-serve.txt"
-NOT_SERVING = ("offline", "bench", "load")  # what docker/Dockerfile removes before installing
 
 
 def _requirements() -> list[Requirement]:
@@ -44,16 +43,22 @@ def test_serving_pins_satisfy_the_core_dependencies_and_nothing_more() -> None:
     assert not {"torch", "onnx", "polars"} & set(pinned)
 
 
+def test_the_image_copies_service_whole_and_nothing_beside_it() -> None:
+    # service/ is the serving process and nothing else: the image deletes nothing after copying it.
+    dockerfile = (ROOT / "docker" / "Dockerfile").read_text(encoding="utf-8")
+    copies = [ln.split()[1] for ln in dockerfile.splitlines() if ln.startswith("COPY ") and "--from" not in ln]
+    assert "service" in copies and not {"offline", "bench", "loadtest"} & set(copies)
+    assert "rm -rf" not in dockerfile
+
+
 def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Path) -> None:
-    from service.offline.export import write_random_artifact
+    from offline.export.artifact_writer import write_random_artifact
 
     src = tmp_path / "src"
     src.mkdir()
     for name in ("pyproject.toml", "README.md"):
         shutil.copy(ROOT / name, src / name)
     shutil.copytree(ROOT / "service", src / "service", ignore=shutil.ignore_patterns("__pycache__", "*.pyc"))
-    for name in NOT_SERVING:
-        shutil.rmtree(src / "service" / name, ignore_errors=True)
 
     venv = tmp_path / "venv"
     subprocess.run([sys.executable, "-m", "venv", str(venv)], check=True, timeout=120)
@@ -67,6 +72,10 @@ def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Pa
     assert install.returncode == 0, install.stdout[-3000:] + install.stderr[-3000:]
     no_torch = subprocess.run([str(py), "-c", "import torch"], capture_output=True, text=True, timeout=60)
     assert no_torch.returncode != 0 and "No module named 'torch'" in no_torch.stderr
+    # The workbench's commands are not in the serving install: one clear line, not a traceback.
+    workbench = subprocess.run([str(venv / "bin" / "cairn"), "train", "--help"], capture_output=True, text=True, timeout=60)
+    assert workbench.returncode == 2 and "not part of this installation" in workbench.stderr, workbench.stderr
+    assert "Traceback" not in workbench.stderr
 
     store = tmp_path / "model_store"
     write_random_artifact(store, "shop", "v1", n_items=50, hidden_size=8, neighbours=5, seed=0)
@@ -81,7 +90,7 @@ def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Pa
         [str(venv / "bin" / "cairn"), "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "1"],
         log_path=tmp_path / "serve.log", ready=healthy, what="cairn serve in the fresh environment", ignore=(urllib.error.URLError, OSError),
         poll_s=0.2, env=environment_without_cairn(CAIRN_MODEL_STORE=str(store), CAIRN_MODEL="gru", CAIRN_STORE="memory"),
-        cwd=tmp_path, start_new_session=True,
+        cwd=tmp_path, group=True,
     ):  # fmt: skip
         body = json.dumps({"item_id": "sku-000007", "count": 3, "exclude_seen": False}).encode()
         request = urllib.request.Request(

@@ -17,10 +17,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from service.artifacts import load_artifact
+from service.artifacts.format import load_artifact
 from service.config import Settings
 from service.runtime.onnx_step import OnnxStep
-from tests._servers import RedisProcess, RunningServer, free_port, serve_in_thread, shop_settings
+from tests._support.servers import RedisProcess, RunningServer, free_port, serve_in_thread, shop_settings
 
 N_ITEMS = 500
 HIDDEN = 32
@@ -29,7 +29,7 @@ HIDDEN = 32
 @pytest.fixture(scope="session")
 def model_store(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """shop/v1 and shop/v2: same ids, different random weights; v0-broken fails verification."""
-    from service.offline.export import write_random_artifact
+    from offline.export.artifact_writer import write_random_artifact
 
     store = tmp_path_factory.mktemp("model_store")
     write_random_artifact(store, "shop", "v1", n_items=N_ITEMS, hidden_size=HIDDEN, seed=0)

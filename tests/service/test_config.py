@@ -12,7 +12,8 @@ from pathlib import Path
 import pytest
 
 from service.api import serve_cli
-from service.config import Settings, SettingsError, export_environment, load_settings
+from service.config import Settings, export_environment, load_settings
+from service.errors import SettingsError
 
 
 def parse(argv: list[str]) -> argparse.Namespace:

@@ -1,0 +1,115 @@
+"""`cairn export`: write a model artifact into the model store.
+
+    cairn export --checkpoint checkpoints/gru.pt --data data/demo/prepared --name garden [--version V]
+    cairn export --random --items 40000 --name bench       (random weights: benchmarks, service tests)
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+
+from service.errors import InputDataError
+
+DEFAULT_STORE = Path("model_store")
+DEFAULT_KNN_NEIGHBOURS = 100
+DEFAULT_RANDOM_NEIGHBOURS = 20
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a number of at least 1, got {value}")
+    return value
+
+
+def _non_negative_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not value >= 0:
+        raise argparse.ArgumentTypeError(f"expected zero or a positive number, got {text}")
+    return value
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    source = parser.add_mutually_exclusive_group(required=True)
+    source.add_argument("--checkpoint", type=Path, metavar="PATH", help="GRU checkpoint written by `cairn train`")
+    source.add_argument("--random", action="store_true", help="random weights and tables instead of a trained model")
+    parser.add_argument("--data", type=Path, metavar="DIR", help="prepared data set the checkpoint was trained on")
+    parser.add_argument("--store", type=Path, default=DEFAULT_STORE, metavar="DIR", help="model store folder (default: %(default)s)")
+    parser.add_argument("--name", required=True, help="artifact name, e.g. garden-gru")
+    parser.add_argument("--version", help="artifact version (default: UTC time, e.g. 20261202T101500)")
+    parser.add_argument(
+        "--knn-neighbours",
+        type=_positive_int,
+        metavar="K",
+        help=f"width of the item-KNN fallback table (default: {DEFAULT_KNN_NEIGHBOURS}; {DEFAULT_RANDOM_NEIGHBOURS} with --random)",
+    )
+    parser.add_argument(
+        "--knn-regulariser", type=_non_negative_float, default=20.0, metavar="X", help="item-KNN similarity regulariser (default: %(default)s)"
+    )
+    parser.add_argument("--metrics", type=Path, metavar="FILE", help="offline metrics (JSON, e.g. `cairn evaluate` output) to record")
+    parser.add_argument("--overwrite", action="store_true", help="replace an artifact of the same name and version")
+    random = parser.add_argument_group("with --random")
+    random.add_argument("--items", type=_positive_int, metavar="N", help="number of items (default: 40000)")
+    random.add_argument("--hidden-size", type=_positive_int, metavar="H", help="GRU state and embedding size (default: 100)")
+    random.add_argument("--layers", type=_positive_int, metavar="L", help="stacked GRU layers (default: 1)")
+    random.add_argument("--seed", type=int, metavar="S", help="random seed (default: 0)")
+
+
+def run(args: argparse.Namespace) -> int:
+    from offline.export.artifact_writer import default_version, export_artifact, write_random_artifact
+
+    version = args.version or default_version()
+    random_only = {"--items": args.items, "--hidden-size": args.hidden_size, "--layers": args.layers, "--seed": args.seed}
+    if args.random:
+        if args.data is not None or args.metrics is not None:
+            raise InputDataError("--data and --metrics describe a trained model; --random takes neither")
+        path = write_random_artifact(
+            args.store,
+            args.name,
+            version,
+            n_items=args.items or 40_000,
+            hidden_size=args.hidden_size or 100,
+            layers=args.layers or 1,
+            neighbours=args.knn_neighbours or DEFAULT_RANDOM_NEIGHBOURS,
+            seed=args.seed or 0,
+            overwrite=args.overwrite,
+        )
+    else:
+        given = [flag for flag, value in random_only.items() if value is not None]
+        if given:
+            raise InputDataError(f"{', '.join(given)} only go with --random; a checkpoint fixes the model's sizes")
+        if args.data is None:
+            raise InputDataError("--data is required with --checkpoint: the prepared data set the model was trained on")
+        path = export_artifact(
+            args.checkpoint,
+            args.data,
+            args.store,
+            args.name,
+            version,
+            neighbours=args.knn_neighbours or DEFAULT_KNN_NEIGHBOURS,
+            regulariser=args.knn_regulariser,
+            metrics=_read_metrics(args.metrics) if args.metrics is not None else None,
+            overwrite=args.overwrite,
+        )
+    print(f"wrote {path}")
+    return 0
+
+
+def _read_metrics(path: Path) -> dict:
+    try:
+        metrics = json.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InputDataError(f"{path}: no metrics file here") from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InputDataError(f"{path}: not a readable JSON metrics file ({exc})") from exc
+    if not isinstance(metrics, dict):
+        raise InputDataError(f"{path}: metrics must be a JSON object, got {type(metrics).__name__}")
+    return metrics

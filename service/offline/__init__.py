@@ -1,1 +1,0 @@
-"""Offline half: ingest, demo data, baselines, GRU training, evaluation and export."""

@@ -1,0 +1,102 @@
+"""The model behind its circuit breaker and the request's budget.
+
+`admit` lets the model start only if its breaker allows and the running p95 of one step, times the
+steps this request needs (a replay needs one per stored click), plus the store's reserve for the
+save, fits in what is left of the budget; else the fallback reason `model_unavailable` or `budget`.
+`run` runs the admitted work under the model's own deadline: a call that runs past it is abandoned
+(`deadline`) and counts against the breaker, as does one that fails (`model_error`).
+With the guards off nothing is checked or timed.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import time
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass
+from typing import Any
+
+from service.resilience.guards import Guards
+from service.runtime.recommenders import Ranking
+from service.runtime.timing import Timing
+
+log = logging.getLogger("cairn.service")
+
+# uvloop's timers tick in whole milliseconds (libuv keeps loop time in ms), so a timeout can fire up
+# to a millisecond late: the model's is set that much early.
+TIMER_MARGIN_S = 0.001
+
+
+@dataclass(frozen=True)
+class Admission:
+    ticket: int | None  # the breaker's ticket (None with the guards off)
+    deadline: float  # perf_counter time by which the model must be done
+    steps: int
+
+
+class _NoTimeout:
+    """Stands in for asyncio.timeout when the guards are off: nothing scheduled, nothing cancelled."""
+
+    async def __aenter__(self) -> None:
+        return None
+
+    async def __aexit__(self, *exc: object) -> None:
+        return None
+
+
+_NO_TIMEOUT = _NoTimeout()
+
+
+class ModelGate:
+    def __init__(self, guards: Guards | None) -> None:
+        self.guards = guards
+        self.guarded = guards is not None and guards.enabled
+
+    def admit(self, steps: int, deadline: float, save_reserve_s: float) -> Admission | str:
+        """An Admission when the model may run `steps` steps now, else the fallback reason."""
+        if not self.guarded:
+            return Admission(None, deadline, steps)
+        guards = self.guards
+        ticket = guards.model.allow()
+        if ticket is None:
+            return "model_unavailable"
+        now = time.perf_counter()
+        model_deadline = deadline - TIMER_MARGIN_S - save_reserve_s
+        if now + guards.model_latency.estimate(now) * steps > model_deadline:
+            guards.model.release(ticket)
+            return "budget"
+        return Admission(ticket, model_deadline, steps)
+
+    async def run(
+        self, call: Callable[[], Awaitable[tuple[Any, Ranking]]], admission: Admission, timing: Timing
+    ) -> tuple[tuple[Any, Ranking] | None, str | None]:
+        """(the result of `call`, None), or (None, the fallback reason) when it failed or ran past the deadline."""
+        t0 = time.perf_counter()
+        try:
+            async with self._timeout(admission.deadline, t0):
+                result = await call()
+            timing.step_s = result[1].step_s
+            if self.guarded:
+                now = time.perf_counter()
+                self.guards.model.record(admission.ticket, True)
+                self.guards.model_latency.observe((now - t0) / admission.steps, now)
+            return result, None
+        except asyncio.CancelledError:
+            if self.guarded:
+                self.guards.model.release(admission.ticket)
+            raise
+        except Exception as exc:  # noqa: BLE001 - whatever the model does wrong, the visitor gets the fallback
+            if self.guarded:
+                self.guards.model.record(admission.ticket, False)
+            if isinstance(exc, TimeoutError):
+                return None, "deadline"
+            log.error("GRU step failed, answering from the neighbour table: %s", type(exc).__name__)
+            return None, "model_error"
+        finally:
+            timing.model_s += time.perf_counter() - t0
+
+    def _timeout(self, deadline: float, now: float) -> Any:
+        if not self.guarded:
+            return _NO_TIMEOUT
+        return asyncio.timeout(deadline - now if deadline > now else 0.0)

@@ -1,0 +1,125 @@
+"""`cairn serve --workers 2` as a subprocess sharing a real Redis: one visit across both workers,
+and a model switch through one worker that the other follows within a second."""
+
+from __future__ import annotations
+
+import os
+import re
+import signal
+import time
+from collections import Counter
+
+import httpx
+import pytest
+
+from tests._support.servers import cairn_serve, free_port
+
+CLICKS = [f"sku-{i:06d}" for i in (5, 50, 150, 250, 350, 450, 45, 145, 245, 345, 445, 40)]
+
+
+def fresh(url: str) -> httpx.Client:
+    # No keep-alive: every request is a new connection, so the kernel hands it to either worker.
+    return httpx.Client(base_url=url, timeout=10, limits=httpx.Limits(max_keepalive_connections=0))
+
+
+def worker_of_each_scrape(url: str, want: int = 2, tries: int = 200) -> dict[str, str]:
+    """pid -> that worker's /metrics text, scraping until `want` workers answered."""
+    seen: dict[str, str] = {}
+    with fresh(url) as c:
+        for _ in range(tries):
+            text = c.get("/metrics").text
+            pid = re.search(r'cairn_worker_info\{pid="(\d+)"\} 1', text).group(1)
+            seen[pid] = text
+            if len(seen) >= want:
+                break
+    return seen
+
+
+def clicks_served(metrics_text: str) -> int:
+    m = re.search(r'cairn_http_requests_total\{route="/v1/sessions/\{session_id\}/clicks",method="POST",status="200"\} (\d+)', metrics_text)
+    return int(m.group(1)) if m else 0
+
+
+@pytest.fixture()
+def two_workers(model_store, redis_url, tmp_path, token):
+    port = free_port()
+    url = f"http://127.0.0.1:{port}"
+    with cairn_serve(
+        ["--workers", "2", "--port", str(port)],
+        tmp_path,
+        lambda: len(worker_of_each_scrape(url, tries=40)) == 2,
+        "cairn serve --workers 2",
+        ignore=(httpx.TransportError,),
+        CAIRN_STORE=redis_url,
+        CAIRN_MODEL_STORE=str(model_store),
+        CAIRN_MODEL_NAME="shop",
+        CAIRN_MODEL_VERSION="v1",
+        CAIRN_ADMIN_TOKEN=token,
+        CAIRN_REDIS_PREFIX=f"w{os.getpid()}:",
+        CAIRN_LOG_LEVEL="warning",
+    ):
+        yield url
+
+
+def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, sid, token):
+    url = two_workers
+    session = sid("w")
+    before = {pid: clicks_served(text) for pid, text in worker_of_each_scrape(url).items()}
+    with fresh(url) as c:
+        for n, item in enumerate(CLICKS[:8], start=1):
+            answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
+            assert answer["sequence"] == n and answer["served_by"] == "gru"
+            assert [i["item_id"] for i in answer["items"]] == offline["v1"].top(CLICKS[:n], count=6)[0]
+    after = {pid: clicks_served(text) for pid, text in worker_of_each_scrape(url).items()}
+    served = Counter({pid: after[pid] - before.get(pid, 0) for pid in after})
+    assert sum(served.values()) == 8
+    assert len([pid for pid, n in served.items() if n > 0]) == 2, f"one worker served the whole visit: {served}"
+
+    with fresh(url) as c:
+        r = c.put("/v1/models/active", json={"name": "shop", "version": "v2"}, headers={"authorization": f"Bearer {token}"})
+        assert r.status_code == 200, r.text
+        switched_at = time.monotonic()
+        # Both workers serve v2 within a second (they poll the shared choice every 0.5 s).
+        following: dict[str, str] = {}
+        while time.monotonic() - switched_at < 1.0:
+            ready = c.get("/readyz").json()
+            following[str(ready["pid"])] = ready["active"]["version"]
+            if len(following) == 2 and set(following.values()) == {"v2"}:
+                break
+        assert len(following) == 2 and set(following.values()) == {"v2"}, following
+        for n, item in enumerate(CLICKS[8:], start=9):
+            answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
+            assert answer["sequence"] == n and answer["model_version"] == "shop/v2"
+            assert [i["item_id"] for i in answer["items"]] == offline["v2"].top(CLICKS[:n], count=6)[0]
+
+
+def test_sigterm_stops_a_worker_cleanly_and_promptly(model_store, redis_url, tmp_path, sid):
+    # With Redis the worker runs a background task that polls the shared model choice through Redis;
+    # shutdown must stop it even mid-call (service/runtime/tasks.py), then exit 0.
+    port = free_port()
+    url = f"http://127.0.0.1:{port}"
+    with cairn_serve(
+        ["--port", str(port)],
+        tmp_path,
+        lambda: httpx.get(f"{url}/readyz", timeout=2).status_code == 200,
+        "cairn serve",
+        ignore=(httpx.TransportError,),
+        CAIRN_STORE=redis_url,
+        CAIRN_MODEL_STORE=str(model_store),
+        CAIRN_MODEL_NAME="shop",
+        CAIRN_MODEL_POLL_S="0.05",  # the smallest allowed: the follower calls Redis often
+        CAIRN_REDIS_PREFIX=f"t{os.getpid()}:",
+        CAIRN_LOG_LEVEL="info",
+    ) as proc:
+        with fresh(url) as c:
+            for item in CLICKS[:3]:
+                assert c.post(f"/v1/sessions/{sid('term')}/clicks", json={"item_id": item}).status_code == 200
+        t0 = time.monotonic()
+        proc.terminate()
+        rc = proc.wait(timeout=15)
+        took = time.monotonic() - t0
+    log = (tmp_path / "serve.log").read_text()
+    # uvicorn re-raises the signal once it has shut down, so the exit status is SIGTERM's own.
+    assert rc in (0, -signal.SIGTERM), log
+    assert took < 5, (took, log)  # no request in flight: nothing to wait for, well inside a 30 s grace period (common practice)
+    assert "Application shutdown complete" in log and "Finished server process" in log and "Traceback" not in log
