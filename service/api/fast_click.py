@@ -3,11 +3,11 @@
 A click is the request a storefront sends on every page view, and FastAPI's per-request machinery
 (route matching over every route, solving four parameters, building a Request) costs about as much
 as the rest of the click outside the model. This plain ASGI layer sits inside the edge middleware
-(which has already buffered the body and started the request's timing) and takes a
+(which has already buffered the body into the request's state and started its timing) and takes a
 `POST /v1/sessions/{session_id}/clicks` only when everything about it is valid:
 
-- the session id matches the documented rule (`schemas.SESSION_ID_PATTERN`, at most
-  `SESSION_ID_MAX` characters);
+- the session id follows the documented rule (`schemas.is_session_id`, the rule the route's
+  path parameter declares);
 - the body is declared JSON and is a JSON object that `schemas.ClickRequest` accepts, validated
   exactly as FastAPI validates it (parsed with `json.loads`, then the model in Python mode).
 
@@ -19,18 +19,16 @@ OpenAPI page, still come from one place.
 from __future__ import annotations
 
 import json
-import re
 from typing import Any
 
 from pydantic import ValidationError
-from starlette.types import ASGIApp, Message, Receive, Scope, Send
+from starlette.types import ASGIApp, Receive, Scope, Send
 
-from service.api.routes import answer_json, record_click
-from service.api.schemas import SESSION_ID_MAX, SESSION_ID_PATTERN, ClickRequest
+from service.api.routes import answer_json, note_answer, record_click
+from service.api.schemas import ClickRequest, is_session_id
 
 CLICK_ROUTE = "/v1/sessions/{session_id}/clicks"
-_ID = SESSION_ID_PATTERN.removeprefix("^").removesuffix("$")  # one or more of the safe characters
-_CLICK_PATH = re.compile(rf"/v1/sessions/({_ID})/clicks")
+_PREFIX, _SUFFIX = "/v1/sessions/", "/clicks"
 _HEADERS_START = [(b"content-type", b"application/json"), (b"cache-control", b"no-store")]
 
 
@@ -70,35 +68,25 @@ class ClickFastPath:
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] == "http" and scope["method"] == "POST":
-            path = scope["path"]
-            m = _CLICK_PATH.fullmatch(path) if path.endswith("/clicks") else None
-            if m is not None and len(m.group(1)) <= SESSION_ID_MAX and _declares_json(scope):
-                message = await receive()  # the whole body: the edge middleware buffered it
+            path: str = scope["path"]
+            session_id = path[len(_PREFIX) : -len(_SUFFIX)] if path.startswith(_PREFIX) and path.endswith(_SUFFIX) else ""
+            body = scope["state"].get("body")
+            if body is not None and is_session_id(session_id) and _declares_json(scope):
                 service = getattr(scope["app"].state, "service", None)
-                click = _parse(message.get("body", b"")) if message["type"] == "http.request" else None
+                click = _parse(body)
                 if click is not None and service is not None:
-                    await self._answer(scope, send, service, m.group(1), click)
+                    await self._answer(scope, send, service, session_id, click)
                     return
-                receive = _replay(message, receive)
+        # Not taken: FastAPI reads the same buffered body from `receive`, untouched here.
         await self.app(scope, receive, send)
 
     async def _answer(self, scope: Scope, send: Send, service: Any, session_id: str, click: ClickRequest) -> None:
         scope["route"] = _ROUTE
-        answer = await record_click(service, session_id, click, scope["state"]["timing"])
-        body = answer_json(scope, session_id, answer)
+        state = scope["state"]
+        answer = await record_click(service, session_id, click, state["timing"])
+        note_answer(state, answer)
+        body = answer_json(session_id, answer, state["timing"])
         await send(
             {"type": "http.response.start", "status": 200, "headers": [*_HEADERS_START, (b"content-length", b"%d" % len(body))]}
         )
         await send({"type": "http.response.body", "body": body})
-
-
-def _replay(message: Message, receive: Receive) -> Receive:
-    """`receive` with `message` handed out once more first."""
-    pending: list[Message] = [message]
-
-    async def replay() -> Message:
-        if pending:
-            return pending.pop()
-        return await receive()
-
-    return replay

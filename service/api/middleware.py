@@ -116,6 +116,7 @@ class EdgeMiddleware:
             if not message.get("more_body", False):
                 break
         body = b"".join(chunks)
+        scope["state"]["body"] = body  # the click fast path reads it here, without a second receive
         replayed = False
 
         async def replay() -> Message:

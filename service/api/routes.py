@@ -69,22 +69,26 @@ def _timing(request: Request) -> Timing:
 
 def _answer(request: Request, session_id: str, answer: Answer) -> Response:
     # A visit's list is personal: no shared cache on the way may keep it (RFC 9111, section 5.2.2.5).
-    return Response(answer_json(request.scope, session_id, answer), media_type="application/json", headers=_NO_STORE)
+    note_answer(request.scope["state"], answer)
+    body = answer_json(session_id, answer, _timing(request))
+    return Response(body, media_type="application/json", headers=_NO_STORE)
 
 
-def answer_json(scope: dict[str, Any], session_id: str, answer: Answer) -> bytes:
-    """The JSON of an answer with recommendations; notes what answered in the request's state,
-    which the edge middleware records once."""
-    state = scope["state"]
+def note_answer(state: dict[str, Any], answer: Answer) -> None:
+    """Note what answered in the request's state, which the edge middleware records once."""
     state["served_by"] = answer.served_by
     state["fallback_reason"] = answer.fallback_reason
+
+
+def answer_json(session_id: str, answer: Answer, timing: Timing) -> bytes:
+    """The JSON of an answer with recommendations (nothing else is read or written)."""
     body = {
         "session_id": session_id,
         "items": [{"item_id": i, "score": s} for i, s in zip(answer.item_ids, answer.scores)],
         "served_by": answer.served_by,
         "model_version": answer.model_version,
         "fallback_reason": answer.fallback_reason,
-        "took_ms": round((time.perf_counter() - state["timing"].started) * 1e3, 3),
+        "took_ms": round((time.perf_counter() - timing.started) * 1e3, 3),
         "sequence": answer.sequence,
         "duplicate": answer.duplicate,
     }
@@ -115,7 +119,7 @@ async def record_click(service: Service, session_id: str, click: ClickRequest, t
 )
 async def post_click(session_id: SessionId, click: ClickRequest, request: Request, service: ServiceDep) -> Response:
     # Well-formed clicks are answered by service/api/fast_click.py before they get here; what this
-    # route does beyond validation must stay in record_click and answer_json, which both share.
+    # route does beyond validation must stay in record_click note_answer and answer_json, which both share.
     return _answer(request, session_id, await record_click(service, session_id, click, _timing(request)))
 
 

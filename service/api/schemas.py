@@ -6,6 +6,7 @@ Session ids are opaque to the service: 1-128 characters from SESSION_ID_CHARS (l
 
 from __future__ import annotations
 
+import re
 from typing import Annotated, Any
 
 from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictInt, StringConstraints, field_validator
@@ -13,6 +14,14 @@ from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictInt, String
 SESSION_ID_PATTERN = r"^[A-Za-z0-9._:-]+$"
 SESSION_ID_CHARS = "letters, digits and - _ . :"
 SESSION_ID_MAX = 128
+_SESSION_ID = re.compile(SESSION_ID_PATTERN)
+
+
+def is_session_id(value: str) -> bool:
+    """The session-id rule both click entrances apply (the route's path parameter declares the same)."""
+    return 0 < len(value) <= SESSION_ID_MAX and _SESSION_ID.match(value) is not None
+
+
 ITEM_ID_MAX = 256
 EVENT_ID_MAX = 128
 COUNT_MIN, COUNT_MAX = 1, 100
