@@ -57,7 +57,7 @@ demo: $(STAMP)
 	  echo "  curl -s -X POST localhost:8000/v1/sessions/visit-1/clicks -H 'content-type: application/json' -d '{\"item_id\": \"$$item\", \"count\": 5}'"; \
 	  echo "  curl -s localhost:8000/v1/sessions/visit-1/recommendations"; \
 	  echo "OpenAPI page: http://127.0.0.1:8000/docs   Stop with Ctrl-C."; echo; \
-	  $(BIN)/cairn serve --model-store model_store --model-name garden-gru --model-version demo; \
+	  $(BIN)/cairn serve --artifacts model_store --artifact-name garden-gru --artifact-version demo; \
 	fi
 
 bench: $(STAMP)

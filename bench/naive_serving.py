@@ -145,9 +145,9 @@ def create_app(variant: str, artifact_dir: Path, checkpoint: Path | None) -> Fas
             "session_id": session_id,
             "items": [{"item_id": ids[i], "score": s} for i, s in zip(ranking.items, ranking.scores)],
             "served_by": variant,
-            "model_version": tag,
+            "artifact_version": tag,
             "fallback_reason": None,
-            "took_ms": round((time.perf_counter() - started) * 1e3, 3),
+            "elapsed_ms": round((time.perf_counter() - started) * 1e3, 3),
             "sequence": len(visit["items"]),
             "duplicate": False,
         }

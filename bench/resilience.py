@@ -95,7 +95,7 @@ async def open_loop(port: int, items: list[str], rate: float, max_requests: int,
         statuses[status] = statuses.get(status, 0) + 1
         if status == 200:
             answer = json.loads(payload)
-            took.append(answer["took_ms"])
+            took.append(answer["elapsed_ms"])
             reason = answer["fallback_reason"] or "none"
             reasons[reason] = reasons.get(reason, 0) + 1
 
@@ -208,7 +208,7 @@ def main(argv: list[str] | None = None) -> int:
     def server(name: str, store_url: str, guards: bool, delay_ms: float = 0.0) -> int:
         port = free_port()
         cmd = [sys.executable, "-m", "bench.resilience", "--serve", str(port), "--delay-ms", str(delay_ms)]
-        proc = launch(cmd, core=server_core, env={**env, "CAIRN_STORE": store_url, "CAIRN_GUARDS": str(guards).lower(), "CAIRN_REDIS_PREFIX": f"{name}:"})
+        proc = launch(cmd, core=server_core, env={**env, "CAIRN_SESSION_STORE": store_url, "CAIRN_GUARDS": str(guards).lower(), "CAIRN_REDIS_PREFIX": f"{name}:"})
         procs.append(proc)
         wait_http(proc, port, "/healthz")
         return port

@@ -106,9 +106,9 @@ def floor_app():  # pragma: no cover - runs in its own process
         "session_id": "",
         "items": [{"item_id": f"sku-{i:06d}", "score": 0.123456789} for i in range(COUNT)],
         "served_by": "gru",
-        "model_version": "bench/v1",
+        "artifact_version": "bench/v1",
         "fallback_reason": None,
-        "took_ms": 0.1,
+        "elapsed_ms": 0.1,
         "sequence": 1,
         "duplicate": False,
     }
@@ -141,7 +141,7 @@ def bench_cores() -> list[int] | None:
 def service_environment(model_store: Path, **settings: str) -> dict[str, str]:
     """This process's environment without CAIRN_ variables, plus the service's settings for a benchmark."""
     env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
-    env.update(CAIRN_MODEL_STORE=str(model_store), CAIRN_LOG_LEVEL="warning", CAIRN_ORT_THREADS="1", **settings)
+    env.update(CAIRN_ARTIFACTS=str(model_store), CAIRN_LOG_LEVEL="warning", CAIRN_ORT_THREADS="1", **settings)
     return env
 
 
@@ -375,7 +375,7 @@ def main(argv: list[str] | None = None) -> int:
         for kind, store_setting in (("memory", "memory"), ("redis", redis_url)):
             port = free_port()
             proc = launch(
-                [sys.executable, "-m", "service.cli", "serve", "--port", str(port), "--store", store_setting, "--workers", "1"],
+                [sys.executable, "-m", "service.cli", "serve", "--port", str(port), "--session-store", store_setting, "--workers", "1"],
                 core=server_core,
                 env={**env, "CAIRN_REDIS_PREFIX": f"bench-{kind}:"},
             )

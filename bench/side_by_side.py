@@ -67,7 +67,7 @@ REQUEST_TIMEOUT_S = 30.0  # one click; recompute at length 50 takes tens of ms
 STARTUP_TIMEOUT_S = 120.0  # every server starts at once on one core
 _SERVER_TIMING = re.compile(rb"(\w+);dur=([\d.]+)")  # W3C Server Timing entries, as service.py reads them
 IN_PROCESS = ("gru-step", "gru-step-cold", "numpy-floor")
-SERVICE = {  # variant -> (CAIRN_MODEL, store)
+SERVICE = {  # variant -> (CAIRN_RECOMMENDER, store)
     "cairn-memory": ("gru", "memory"),
     "cairn-redis": ("gru", "redis"),
     "neighbours": ("neighbours", "memory"),
@@ -379,15 +379,15 @@ def run(args: argparse.Namespace) -> dict:
         _same_weights_checkpoint(artifact, args.hidden, args.seed, checkpoint)
 
         env = {k: v for k, v in os.environ.items() if not k.startswith("CAIRN_")}
-        env.update(CAIRN_MODEL_STORE=str(store), CAIRN_LOG_LEVEL="warning", CAIRN_ORT_THREADS="1", OMP_NUM_THREADS="1")
+        env.update(CAIRN_ARTIFACTS=str(store), CAIRN_LOG_LEVEL="warning", CAIRN_ORT_THREADS="1", OMP_NUM_THREADS="1")
         redis = RedisProcess(free_port(), core=load_core, log_path=work / "redis.log").start()
         procs.append(redis.proc)
         redis_url = redis.url
 
         for v, (model, kind) in SERVICE.items():
             port = free_port()
-            cmd = [sys.executable, "-m", "service.cli", "serve", "--port", str(port), "--workers", "1", "--model", model]
-            cmd += ["--store", redis_url if kind == "redis" else "memory"]
+            cmd = [sys.executable, "-m", "service.cli", "serve", "--port", str(port), "--workers", "1", "--recommender", model]
+            cmd += ["--session-store", redis_url if kind == "redis" else "memory"]
             log = work / f"{v}.log"
             procs.append(launch(cmd, core=server_core, env={**env, "CAIRN_REDIS_PREFIX": f"sbs-{v}:"}, log_path=log))
             servers[v] = _Server(v, port, procs[-1], log, model)

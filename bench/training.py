@@ -68,7 +68,7 @@ def _start(split: SessionSplit, n_items: int, batch_size: int, threads: int, arg
         threads=threads,
         model=model,
         optimizers=build_optimizers(model, args.optimizer, args.lr),
-        sampler=NegativeSampler(sampling_weights(counts, args.sample_alpha), args.negatives, seed=args.seed),
+        sampler=NegativeSampler(sampling_weights(counts, args.negative_skew), args.negatives, seed=args.seed),
         steps=iter(SessionParallelBatches(split, batch_size)),
     )
 
@@ -94,7 +94,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--items", type=int, default=40_000, help="catalogue size (default 40000)")
     p.add_argument("--sessions", type=int, default=200_000, help="synthetic training sessions (default 200000)")
     p.add_argument("--negatives", type=int, default=2048)
-    p.add_argument("--sample-alpha", type=float, default=0.75)
+    p.add_argument("--negative-skew", type=float, default=0.75)
     p.add_argument("--loss", choices=LOSS_NAMES, default="bpr-max")
     p.add_argument("--optimizer", choices=("adagrad", "adam"), default="adagrad")
     p.add_argument("--lr", type=float, default=0.05)
@@ -111,7 +111,7 @@ def main(argv: list[str] | None = None) -> int:
     loss_fn = get_loss(args.loss)
     print(
         f"training speed: {args.items:,} items, {split.n_sessions:,} sessions / {split.n_clicks:,} clicks, "
-        f"hidden {args.hidden_size}, {args.negatives} negatives (alpha {args.sample_alpha}), {args.loss}, "
+        f"hidden {args.hidden_size}, {args.negatives} negatives (alpha {args.negative_skew}), {args.loss}, "
         f"{args.optimizer}; median of {args.windows} windows x {args.steps} steps, windows interleaved"
     )
     runs = [_start(split, args.items, b, t, args) for t in args.threads for b in args.batch_sizes]

@@ -16,18 +16,18 @@ from bench.harness.service_process import MODELS, ServiceSpec
 from loadtest.plan import REPLAY_MODES
 from loadtest.report import write_report
 
-SERVE_ONLY = ("model", "store", "model_store", "model_name", "model_version", "workers")
+SERVE_ONLY = ("recommender", "session_store", "artifacts", "artifact_name", "artifact_version", "workers")
 
 
 def add_target_arguments(parser: argparse.ArgumentParser) -> None:
     g = parser.add_argument_group("service under load (one of --url, --serve)")
     g.add_argument("--url", help="base URL of a running service, e.g. http://127.0.0.1:8000")
     g.add_argument("--serve", action="store_true", help="start the service here on a free loopback port, stop it at the end")
-    g.add_argument("--model", choices=MODELS, help="with --serve: the recommender to run (CAIRN_MODEL)")
-    g.add_argument("--store", help="with --serve: session store, 'memory' or a redis:// URL (CAIRN_STORE)")
-    g.add_argument("--model-store", type=Path, help="with --serve: folder of model artifacts (CAIRN_MODEL_STORE)")
-    g.add_argument("--model-name", help="with --serve: artifact name (CAIRN_MODEL_NAME)")
-    g.add_argument("--model-version", help="with --serve: artifact version (CAIRN_MODEL_VERSION)")
+    g.add_argument("--recommender", choices=MODELS, help="with --serve: the recommender to run (CAIRN_RECOMMENDER)")
+    g.add_argument("--session-store", help="with --serve: session store, 'memory' or a redis:// URL (CAIRN_SESSION_STORE)")
+    g.add_argument("--artifacts", type=Path, help="with --serve: folder of model artifacts (CAIRN_ARTIFACTS)")
+    g.add_argument("--artifact-name", help="with --serve: artifact name (CAIRN_ARTIFACT_NAME)")
+    g.add_argument("--artifact-version", help="with --serve: artifact version (CAIRN_ARTIFACT_VERSION)")
     g.add_argument("--workers", type=int, help="with --serve: service worker processes (default 1)")
 
 
@@ -106,11 +106,11 @@ def build_setup(args: argparse.Namespace) -> LoadTestSetup:
     service = None
     if args.serve:
         service = ServiceSpec(
-            model=args.model,
-            store=args.store,
-            model_store=args.model_store,
-            model_name=args.model_name,
-            model_version=args.model_version,
+            recommender=args.recommender,
+            session_store=args.session_store,
+            artifacts=args.artifacts,
+            artifact_name=args.artifact_name,
+            artifact_version=args.artifact_version,
             workers=1 if args.workers is None else args.workers,
         )
     return LoadTestSetup(

@@ -3,7 +3,7 @@
 Report fields (JSON; the Markdown shows the same numbers):
     kind             "cairn-loadtest/1" or "cairn-capacity/1"
     started_at, wall_s
-    target           url, served_here, service (model, store, model_store, model_name, model_version, workers)
+    target           url, served_here, service (recommender, session_store, artifacts, artifact_name, artifact_version, workers)
     settings         users, load_workers, mode (think-time | rate | ramp), step_rates, step_duration_s,
                      duration_s, count, budget_ms, exclude_seen, think_scale, max_think_s, replay
     visits           data, split, available, clicks, taken
@@ -56,7 +56,7 @@ def render_markdown(r: dict[str, Any]) -> str:
     if t["served_here"]:
         svc = t["service"]
         lines.append(
-            f"Service: started here at {t['url']} (model {svc['model'] or 'default'}, store {svc['store'] or 'default'}, "
+            f"Service: started here at {t['url']} (recommender {svc['recommender'] or 'default'}, session store {svc['session_store'] or 'default'}, "
             f"{svc['workers']} worker(s))."
         )
     else:

@@ -19,10 +19,11 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "demo-data": ("offline.demo.demo_cli", "generate the garden-shop demo click log and its oracle"),
     "prepare": ("offline.data.prepare_cli", "turn a raw click log into train/valid/test sessions"),
     "train": ("offline.model.train_cli", "train the GRU next-click model"),
-    "export": ("offline.export.export_cli", "write a model artifact into the model store"),
+    "export": ("offline.export.export_cli", "write a model artifact into the artifacts folder"),
     "evaluate": ("offline.evaluate.evaluate_cli", "compare recommenders on the test sessions"),
-    "artifacts": ("service.artifacts.artifacts_cli", "list and verify artifacts in the model store"),
+    "artifacts": ("service.artifacts.artifacts_cli", "list and verify the artifacts in the artifacts folder"),
     "serve": ("service.api.serve_cli", "run the HTTP recommendation service"),
+    "switch": ("service.api.switch_cli", "choose what a running service serves (artifact, recommender)"),
     "loadtest": ("loadtest.loadtest_cli", "replay held-out visits against the service and judge the page budget"),
     "capacity": ("loadtest.capacity_cli", "find the highest rate per core that meets the budget"),
 }

@@ -1,6 +1,6 @@
 """The service's settings: one pydantic-settings object, the only reader of the environment.
 
-Every knob is an environment variable with the `CAIRN_` prefix (`model_store` <- `CAIRN_MODEL_STORE`);
+Every knob is an environment variable with the `CAIRN_` prefix (`artifacts` <- `CAIRN_ARTIFACTS`);
 `cairn serve` flags override them. A bad value stops start-up with one line that names the
 setting and the value (`SettingsError`), never a traceback.
 """
@@ -23,7 +23,7 @@ ENV_PREFIX = "CAIRN_"
 
 
 class RecommenderKind(StrEnum):
-    """Which recommender answers the visits: chosen by CAIRN_MODEL or a switch at run time."""
+    """Which recommender answers the visits: chosen by CAIRN_RECOMMENDER or a switch at run time."""
 
     GRU = "gru"
     NEIGHBOURS = "neighbours"
@@ -41,14 +41,14 @@ class Settings(BaseSettings):
     model_config = SettingsConfigDict(env_prefix=ENV_PREFIX, extra="forbid", frozen=True)
 
     # Which recommender answers, and from which artifact.
-    model: Literal["gru", "neighbours", "popularity"] = "gru"
-    model_store: Path = Path("model_store")  # folder of <name>/<version>/ artifacts
-    model_name: str | None = None  # default: the only name in the store
-    model_version: str | None = None  # default: that name's newest version
+    recommender: Literal["gru", "neighbours", "popularity"] = "gru"
+    artifacts: Path = Path("model_store")  # folder of <name>/<version>/ artifacts
+    artifact_name: str | None = None  # default: the only name in the store
+    artifact_version: str | None = None  # default: that name's newest version
     # Session store: "memory" (in this process), a redis:// (rediss:// for TLS) URL shared by workers
     # and replicas, or redis-cluster://host:port,host:port,... (rediss-cluster:// for TLS).
-    store: str = "memory"
-    admin_token: SecretStr | None = None  # bearer token for PUT /v1/models/active; unset: switching disabled
+    session_store: str = "memory"
+    admin_token: SecretStr | None = None  # bearer token for PUT /v1/serving; unset: switching disabled
 
     # HTTP server.
     host: str = "127.0.0.1"
@@ -113,7 +113,7 @@ class Settings(BaseSettings):
     redis_pool_timeout_s: float = Field(0.5, gt=0, le=60)  # wait for a free pooled connection
     redis_prefix: str = Field("cairn:", pattern=r"^[A-Za-z0-9:._-]{0,32}$")
 
-    @field_validator("store")
+    @field_validator("session_store")
     @classmethod
     def _store_kind(cls, value: str) -> str:
         if value == "memory" or value.startswith(("redis://", "rediss://", "unix://")):
@@ -123,7 +123,7 @@ class Settings(BaseSettings):
             return value
         raise ValueError("use 'memory', a redis://host:port/db URL or redis-cluster://host:port,host:port,...")
 
-    @field_validator("model_name", "model_version")
+    @field_validator("artifact_name", "artifact_version")
     @classmethod
     def _artifact_part(cls, value: str | None) -> str | None:
         if value in (None, ""):
@@ -149,18 +149,18 @@ class Settings(BaseSettings):
 
     @model_validator(mode="after")
     def _workers_need_shared_store(self) -> Settings:
-        if self.workers > 1 and self.store == "memory":
+        if self.workers > 1 and self.session_store == "memory":
             raise ValueError(
-                f"{self.workers} workers with CAIRN_STORE=memory would each keep their own sessions; "
+                f"{self.workers} workers with CAIRN_SESSION_STORE=memory would each keep their own sessions; "
                 "use a redis:// store or one worker"
             )
         return self
 
     @property
     def store_kind(self) -> str:
-        if self.store == "memory":
+        if self.session_store == "memory":
             return "memory"
-        return "redis-cluster" if self.store.startswith(CLUSTER_SCHEMES) else "redis"
+        return "redis-cluster" if self.session_store.startswith(CLUSTER_SCHEMES) else "redis"
 
 
 CLUSTER_SCHEMES = ("redis-cluster://", "rediss-cluster://")
@@ -234,7 +234,7 @@ def _one_line(exc: ValidationError, overrides: dict[str, Any], flags: dict[str, 
             continue
         name = flags[field] if field in overrides and field in flags else f"{ENV_PREFIX}{field.upper()}"
         value = overrides.get(field, err.get("input"))
-        shown = "<hidden>" if field == "admin_token" else repr(redacted(value) if field == "store" and isinstance(value, str) else value)
+        shown = "<hidden>" if field == "admin_token" else repr(redacted(value) if field == "session_store" and isinstance(value, str) else value)
         parts.append(f"{name}={shown}: {msg}")
     return "; ".join(parts) or "invalid settings"
 

@@ -26,39 +26,39 @@ READY_POLL_S = 0.2
 
 @dataclass(frozen=True)
 class ServiceSpec:
-    model: str | None = None  # None: the service's default
-    store: str | None = None  # "memory" or a redis:// URL; None: the service's default
-    model_store: Path | None = None
-    model_name: str | None = None
-    model_version: str | None = None
+    recommender: str | None = None  # None: the service's default
+    session_store: str | None = None  # "memory" or a redis:// URL; None: the service's default
+    artifacts: Path | None = None
+    artifact_name: str | None = None
+    artifact_version: str | None = None
     workers: int = 1
 
     def __post_init__(self) -> None:
-        if self.model is not None and self.model not in MODELS:
-            raise LoadTestError(f"--model {self.model!r}: choose one of {', '.join(MODELS)}")
+        if self.recommender is not None and self.recommender not in MODELS:
+            raise LoadTestError(f"--recommender {self.recommender!r}: choose one of {', '.join(MODELS)}")
         if self.workers < 1:
             raise LoadTestError(f"--workers must be at least 1, got {self.workers}")
-        if self.model_store is not None and not Path(self.model_store).is_dir():
-            raise LoadTestError(f"--model-store {self.model_store}: no such folder")
+        if self.artifacts is not None and not Path(self.artifacts).is_dir():
+            raise LoadTestError(f"--artifacts {self.artifacts}: no such folder")
 
     def environment(self) -> dict[str, str]:
-        """The CAIRN_* variables that select this service's model and store."""
+        """The CAIRN_* variables that select this service's recommender, artifact and session store."""
         pairs = {
-            "CAIRN_MODEL": self.model,
-            "CAIRN_STORE": self.store,
-            "CAIRN_MODEL_STORE": None if self.model_store is None else str(Path(self.model_store).resolve()),
-            "CAIRN_MODEL_NAME": self.model_name,
-            "CAIRN_MODEL_VERSION": self.model_version,
+            "CAIRN_RECOMMENDER": self.recommender,
+            "CAIRN_SESSION_STORE": self.session_store,
+            "CAIRN_ARTIFACTS": None if self.artifacts is None else str(Path(self.artifacts).resolve()),
+            "CAIRN_ARTIFACT_NAME": self.artifact_name,
+            "CAIRN_ARTIFACT_VERSION": self.artifact_version,
         }
         return {k: v for k, v in pairs.items() if v is not None}
 
     def describe(self) -> dict[str, object]:
         return {
-            "model": self.model,
-            "store": self.store,
-            "model_store": None if self.model_store is None else str(self.model_store),
-            "model_name": self.model_name,
-            "model_version": self.model_version,
+            "recommender": self.recommender,
+            "session_store": self.session_store,
+            "artifacts": None if self.artifacts is None else str(self.artifacts),
+            "artifact_name": self.artifact_name,
+            "artifact_version": self.artifact_version,
             "workers": self.workers,
         }
 

@@ -57,7 +57,7 @@ class Result:
     sessions: np.ndarray  # int64 [S], indices in the split of the evaluated sessions (>= 2 clicks)
     events: np.ndarray  # float64 [S], target clicks per session
     sums: np.ndarray  # float64 [S, len(columns)], per-session sums of each ratio metric
-    columns: tuple[str, ...]  # names of the columns of `sums`: recall@k, mrr@k, popularity@k
+    columns: tuple[str, ...]  # names of the columns of `sums`: recall@k, mrr@k, click_share@k
     incidence: dict[int, sparse.csr_matrix]  # k -> [n_items, S], items reached by each session's top-k lists
     bootstrap: int
     seed: int
@@ -79,7 +79,7 @@ class Result:
 
 
 def metric_names(ks: Sequence[int]) -> list[str]:
-    return [f"{m}@{k}" for k in ks for m in ("recall", "mrr", "coverage", "popularity")]
+    return [f"{m}@{k}" for k in ks for m in ("recall", "mrr", "coverage", "click_share")]
 
 
 def evaluate(
@@ -95,7 +95,7 @@ def evaluate(
 ) -> Result:
     """Measure `scorer` on every session of `split` with two or more clicks.
 
-    popularity: training clicks per item (or shares), [n_items], for popularity@k.
+    popularity: training clicks per item (or shares), [n_items], for click_share@k.
     progress: a tqdm bar on stderr; None shows it only when stderr is a terminal.
     """
     ks = _check_ks(ks)
@@ -112,7 +112,7 @@ def evaluate(
     evaluated = np.flatnonzero(lengths >= 2)  # [S]
     if len(evaluated) == 0:
         raise InputDataError("no session with two or more clicks to evaluate on")
-    columns = tuple(f"{m}@{k}" for k in ks for m in ("recall", "mrr", "popularity"))
+    columns = tuple(f"{m}@{k}" for k in ks for m in ("recall", "mrr", "click_share"))
     sums = np.zeros((split.n_sessions, len(columns)), dtype=np.float64)  # per split session
     incidence = _TopListIncidence(n_items)
     kmax = max(ks)
@@ -240,7 +240,7 @@ def format_table(results: Mapping[str, Result] | Iterable[Result]) -> str:
 
 def _format_value(metric: str):
     # Popularity shares are often below 1e-3: significant digits, not decimals.
-    return (lambda v: f"{v:.4g}") if metric.startswith("popularity") else (lambda v: f"{v:.4f}")
+    return (lambda v: f"{v:.4g}") if metric.startswith("click_share") else (lambda v: f"{v:.4f}")
 
 
 def _percent(x: float) -> str:
@@ -287,7 +287,7 @@ def _metrics_with_intervals(result: Result) -> dict[str, Metric]:
     ratio_value = result.sums.sum(axis=0) / result.events.sum()  # [columns]
     metrics: dict[str, Metric] = {}
     for i, k in enumerate(result.ks):
-        for m in ("recall", "mrr", "coverage", "popularity"):
+        for m in ("recall", "mrr", "coverage", "click_share"):
             name = f"{m}@{k}"
             if m == "coverage":
                 metrics[name] = Metric(float(observed[i]), (float(cov_lo[i]), float(cov_hi[i])))

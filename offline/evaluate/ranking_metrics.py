@@ -7,7 +7,7 @@ GRU recommender paper, Hidasi et al., ICLR 2016):
     Recall@k      share of events with r <= k
     MRR@k         mean of 1/r, counting 0 when r > k (the published cut-off convention)
     Coverage@k    share of the catalogue that appears in at least one top-k list
-    Popularity@k  mean training popularity (share of training clicks) of the top-k items
+    click_share@k  mean training click share (share of training clicks) of the top-k items
 
 Clicks of one session are not independent, so confidence intervals resample whole sessions
 (percentile bootstrap, Efron and Tibshirani, 1993): a resample is a vector of session weights

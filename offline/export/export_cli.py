@@ -42,7 +42,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     source.add_argument("--checkpoint", type=Path, metavar="PATH", help="GRU checkpoint written by `cairn train`")
     source.add_argument("--random", action="store_true", help="random weights and tables instead of a trained model")
     parser.add_argument("--data", type=Path, metavar="DIR", help="prepared data set the checkpoint was trained on")
-    parser.add_argument("--store", type=Path, default=DEFAULT_STORE, metavar="DIR", help="model store folder (default: %(default)s)")
+    parser.add_argument("--artifacts", type=Path, default=DEFAULT_STORE, metavar="DIR", help="the artifacts folder (default: %(default)s)")
     parser.add_argument("--name", required=True, help="artifact name, e.g. garden-gru")
     parser.add_argument("--version", help="artifact version (default: UTC time, e.g. 20261202T101500)")
     parser.add_argument(
@@ -72,7 +72,7 @@ def run(args: argparse.Namespace) -> int:
         if args.data is not None or args.metrics is not None:
             raise InputDataError("--data and --metrics describe a trained model; --random takes neither")
         path = write_random_artifact(
-            args.store,
+            args.artifacts,
             args.name,
             version,
             n_items=args.items or 40_000,
@@ -91,7 +91,7 @@ def run(args: argparse.Namespace) -> int:
         path = export_artifact(
             args.checkpoint,
             args.data,
-            args.store,
+            args.artifacts,
             args.name,
             version,
             neighbours=args.knn_neighbours or DEFAULT_KNN_NEIGHBOURS,

@@ -22,6 +22,9 @@ from typing import Any
 import torch
 from torch import nn
 
+from service.artifacts.format import RENAMED_HYPERPARAMETERS
+from service.errors import InputDataError
+
 
 @dataclass
 class GRUConfig:
@@ -30,8 +33,8 @@ class GRUConfig:
     hidden_size: int = 100  # GRU state size per layer
     layers: int = 1  # stacked GRU layers
     ff_sizes: list[int] = field(default_factory=list)  # tanh feed-forward layers after the GRU
-    dropout_embedding: float = 0.0  # on the input embedding, training only
-    dropout_hidden: float = 0.0  # on the GRU output, training only
+    input_dropout: float = 0.0  # on the input embedding, training only
+    state_dropout: float = 0.0  # on the GRU output, training only
     tie_output: bool = False  # output item vectors = input embedding
 
     @property
@@ -59,8 +62,8 @@ class NextClickGRU(nn.Module):
         self.ff = nn.ModuleList(nn.Linear(a, b) for a, b in zip(sizes[:-1], sizes[1:]))
         self.output = None if c.tie_output else nn.Embedding(c.n_items, c.output_size, sparse=True)
         self.output_bias = nn.Embedding(c.n_items, 1, sparse=True)
-        self.drop_embedding = nn.Dropout(c.dropout_embedding)
-        self.drop_hidden = nn.Dropout(c.dropout_hidden)
+        self.drop_embedding = nn.Dropout(c.input_dropout)
+        self.drop_hidden = nn.Dropout(c.state_dropout)
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
@@ -107,8 +110,17 @@ def save_checkpoint(path: Path, model: NextClickGRU, extra: dict[str, Any] | Non
     tmp.replace(path)
 
 
+def check_renamed_keys(keys: Any, where: str) -> None:
+    """InputDataError naming the first old key in `keys` and its new name."""
+    for old, new in RENAMED_HYPERPARAMETERS.items():
+        if old in keys:
+            raise InputDataError(f"{where}: written by an older cairn (key {old!r}, now {new!r}); train it again")
+
+
 def load_checkpoint(path: Path) -> tuple[NextClickGRU, dict[str, Any]]:
     blob = torch.load(Path(path), map_location="cpu", weights_only=True)
+    check_renamed_keys(blob["config"], str(path))
+    check_renamed_keys(blob.get("extra", {}).get("hyperparameters", {}), str(path))
     model = NextClickGRU(GRUConfig(**blob["config"]))
     model.load_state_dict(blob["state_dict"])
     model.eval()

@@ -228,10 +228,10 @@ def top1_max(scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
     return _TOP1Max.apply(scores, negatives)
 
 
-def get_loss(name: str, bpreg: float = 1.0) -> LossFn:
-    """The loss named `name` (one of LOSS_NAMES); `bpreg` is BPR-max's score regularisation lambda."""
+def get_loss(name: str, score_penalty: float = 1.0) -> LossFn:
+    """The loss named `name` (one of LOSS_NAMES); `score_penalty` is BPR-max's score regularisation lambda."""
     if name == "bpr-max":
-        return lambda scores, negatives: bpr_max(scores, negatives, reg=bpreg)
+        return lambda scores, negatives: bpr_max(scores, negatives, reg=score_penalty)
     table: dict[str, LossFn] = {"top1": top1, "bpr": bpr, "cross-entropy": cross_entropy, "top1-max": top1_max}
     if name not in table:
         raise ValueError(f"unknown loss {name!r}; expected one of {', '.join(LOSS_NAMES)}")

@@ -56,8 +56,8 @@ _M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3  # mallopt() parameters, from glib
 class TrainSettings:
     loss: str = "bpr-max"  # one of LOSS_NAMES
     negatives: int | str = AUTO  # extra sampled negatives per step, shared by the batch; 0 = in-batch only; ALL_ITEMS; AUTO
-    sample_alpha: float = 0.75  # negatives drawn by popularity**alpha: 0 uniform, 1 popularity
-    bpreg: float = 1.0  # BPR-max score regularisation lambda
+    negative_skew: float = 0.75  # negatives drawn by popularity**alpha: 0 uniform, 1 popularity
+    score_penalty: float = 1.0  # BPR-max score regularisation lambda
     optimizer: str = "adagrad"  # adagrad | adam (SparseAdam for the item tables, Adam for the rest)
     lr: float = 0.05
     epochs: int = 10
@@ -72,8 +72,8 @@ class TrainSettings:
             raise TrainingError(f"unknown optimizer {self.optimizer!r}; expected one of {', '.join(OPTIMIZERS)}")
         checks = [
             ("negatives", self.negatives in (ALL_ITEMS, AUTO) or (isinstance(self.negatives, int) and self.negatives >= 0)),
-            ("sample_alpha", self.sample_alpha >= 0),
-            ("bpreg", self.bpreg >= 0),
+            ("negative_skew", self.negative_skew >= 0),
+            ("score_penalty", self.score_penalty >= 0),
             ("lr", self.lr > 0),
             ("epochs", self.epochs >= 1),
             ("batch_size", self.batch_size >= 1),
@@ -203,7 +203,7 @@ def make_sampler(data: PreparedData, settings: TrainSettings) -> NegativeSampler
     if negatives == ALL_ITEMS:
         return EveryItem(data.n_items)
     counts = np.bincount(data.train.items, minlength=data.n_items)  # [n_items] training clicks
-    return NegativeSampler(sampling_weights(counts, settings.sample_alpha), int(negatives), seed=settings.seed)
+    return NegativeSampler(sampling_weights(counts, settings.negative_skew), int(negatives), seed=settings.seed)
 
 
 def check_data(data: PreparedData, batch_size: int) -> None:
@@ -262,7 +262,7 @@ def train(
     torch.manual_seed(settings.seed)
     model = NextClickGRU(config)
     optimizers = build_optimizers(model, settings.optimizer, settings.lr)
-    loss_fn = get_loss(settings.loss, settings.bpreg)
+    loss_fn = get_loss(settings.loss, settings.score_penalty)
     batches = SessionParallelBatches(data.train, settings.batch_size)
     sampler = make_sampler(data, settings)
     fingerprint = data.fingerprint()

@@ -82,10 +82,10 @@ def configure(parser: argparse.ArgumentParser) -> None:
                    help="extra sampled negatives per step beside the in-batch ones; 0 = in-batch only; "
                         f"'{ALL_ITEMS}' = every item, unsampled (small catalogues); '{AUTO}' = '{ALL_ITEMS}' up to "
                         f"{AUTO_ALL_UP_TO:,} items, else {AUTO_SAMPLED:,} (default {d.negatives})")
-    g.add_argument("--sample-alpha", type=_nonnegative_float, default=d.sample_alpha, metavar="A",
-                   help=f"negatives drawn by popularity**A: 0 uniform, 1 popularity (default {d.sample_alpha})")
-    g.add_argument("--bpreg", type=_nonnegative_float, default=d.bpreg, metavar="L",
-                   help=f"BPR-max score regularisation (default {d.bpreg})")
+    g.add_argument("--negative-skew", type=_nonnegative_float, default=d.negative_skew, metavar="A",
+                   help=f"negatives drawn by popularity**A: 0 uniform, 1 popularity (default {d.negative_skew})")
+    g.add_argument("--score_penalty", type=_nonnegative_float, default=d.score_penalty, metavar="L",
+                   help=f"BPR-max score regularisation (default {d.score_penalty})")
     g.add_argument("--optimizer", choices=OPTIMIZERS, default=d.optimizer, help=f"(default {d.optimizer})")
     g.add_argument("--lr", type=_positive_float, default=None,
                    help=f"learning rate (default {DEFAULT_LR['adagrad']} with adagrad, {DEFAULT_LR['adam']} with adam)")
@@ -104,8 +104,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
     m.add_argument("--layers", type=_positive_int, default=c.layers, help=f"stacked GRU layers (default {c.layers})")
     m.add_argument("--ff-sizes", type=_sizes, default=[], metavar="N,N",
                    help="tanh feed-forward layer sizes after the GRU, comma-separated (default none)")
-    m.add_argument("--dropout-embedding", type=_dropout, default=c.dropout_embedding, metavar="P", help="(default 0)")
-    m.add_argument("--dropout-hidden", type=_dropout, default=c.dropout_hidden, metavar="P", help="(default 0)")
+    m.add_argument("--input-dropout", type=_dropout, default=c.input_dropout, metavar="P", help="(default 0)")
+    m.add_argument("--state-dropout", type=_dropout, default=c.state_dropout, metavar="P", help="(default 0)")
     m.add_argument("--tie-output", action="store_true",
                    help="output item vectors = input embedding (needs the last layer size = --embedding-size)")
 
@@ -126,15 +126,15 @@ def run(args: argparse.Namespace) -> int:
         hidden_size=args.hidden_size,
         layers=args.layers,
         ff_sizes=list(args.ff_sizes),
-        dropout_embedding=args.dropout_embedding,
-        dropout_hidden=args.dropout_hidden,
+        input_dropout=args.input_dropout,
+        state_dropout=args.state_dropout,
         tie_output=args.tie_output,
     )
     settings = TrainSettings(
         loss=args.loss,
         negatives=resolve_negatives(args.negatives, data.n_items),
-        sample_alpha=args.sample_alpha,
-        bpreg=args.bpreg,
+        negative_skew=args.negative_skew,
+        score_penalty=args.score_penalty,
         optimizer=args.optimizer,
         lr=lr,
         epochs=args.epochs,

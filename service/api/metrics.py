@@ -184,7 +184,7 @@ class ServiceMetrics:
             Histogram("cairn_model_duration_seconds", "Time one request spent in the model (queue wait and scoring).", ("served_by",))
         )
         self.active_model: Gauge = add(
-            Gauge("cairn_active_model_info", "1 for the artifact and recommender this worker serves.", ("name", "version", "recommender"))
+            Gauge("cairn_serving_info", "1 for the artifact and recommender this worker serves.", ("name", "version", "recommender"))
         )
         self.worker: Gauge = add(
             Gauge("cairn_worker_info", "1, labelled with the process id of the worker that answered this scrape.", ("pid",))

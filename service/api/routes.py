@@ -34,11 +34,11 @@ from service.api.schemas import (
     SESSION_ID_CHARS,
     SESSION_ID_MAX,
     SESSION_ID_PATTERN,
-    ActiveModelAnswer,
+    ServingAnswer,
     ClickRequest,
     ErrorAnswer,
-    ModelChoiceBody,
-    ModelsAnswer,
+    ServingChoiceBody,
+    ArtifactsAnswer,
     RecommendationAnswer,
 )
 from service.artifacts.format import list_artifacts
@@ -86,9 +86,9 @@ def answer_json(session_id: str, answer: Answer, timing: Timing) -> bytes:
         "session_id": session_id,
         "items": [{"item_id": i, "score": s} for i, s in zip(answer.item_ids, answer.scores)],
         "served_by": answer.served_by,
-        "model_version": answer.model_version,
+        "artifact": answer.artifact,
         "fallback_reason": answer.fallback_reason,
-        "took_ms": round((time.perf_counter() - timing.started) * 1e3, 3),
+        "elapsed_ms": round((time.perf_counter() - timing.started) * 1e3, 3),
         "sequence": answer.sequence,
         "duplicate": answer.duplicate,
     }
@@ -165,13 +165,13 @@ async def delete_session(session_id: SessionId, request: Request, service: Servi
 
 
 def _active_answer(choice: ModelChoice) -> dict[str, str]:
-    return {"name": choice.name, "version": choice.version, "recommender": choice.recommender, "model_version": choice.tag}
+    return {"name": choice.name, "version": choice.version, "recommender": choice.recommender, "artifact": choice.tag}
 
 
-@router.get("/v1/models", response_model=ModelsAnswer, summary="Artifacts in the model store, and the active one", tags=["models"])
-async def get_models(service: ServiceDep) -> dict[str, Any]:
+@router.get("/v1/artifacts", response_model=ArtifactsAnswer, summary="The artifacts in the folder, and what serves now", tags=["artifacts"])
+async def get_artifacts(service: ServiceDep) -> dict[str, Any]:
     _, choice = service.active.current
-    listings = await asyncio.to_thread(list_artifacts, service.settings.model_store)
+    listings = await asyncio.to_thread(list_artifacts, service.settings.artifacts)
     artifacts = []
     for a in listings:
         m = a.manifest or {}
@@ -180,7 +180,7 @@ async def get_models(service: ServiceDep) -> dict[str, Any]:
                 "name": a.name,
                 "version": a.version,
                 "verified": a.problem is None,
-                "problem": None if a.problem is None else _without_paths(a.problem, service.settings.model_store),
+                "problem": None if a.problem is None else _without_paths(a.problem, service.settings.artifacts),
                 "active": (a.name, a.version) == (choice.name, choice.version),
                 "created_at": m.get("created_at"),
                 "data_fingerprint": m.get("data_fingerprint"),
@@ -192,14 +192,14 @@ async def get_models(service: ServiceDep) -> dict[str, Any]:
 
 
 @router.put(
-    "/v1/models/active",
-    response_model=ActiveModelAnswer,
+    "/v1/serving",
+    response_model=ServingAnswer,
     responses={code: {"model": ErrorAnswer} for code in (401, 403, 404, 409, 422, 503)},
-    summary="Switch the serving artifact (and recommender) at run time",
-    tags=["models"],
-    openapi_extra={"requestBody": {"required": True, "content": {"application/json": {"schema": ModelChoiceBody.model_json_schema()}}}},
+    summary="Choose what serves: the artifact (and recommender), at run time",
+    tags=["artifacts"],
+    openapi_extra={"requestBody": {"required": True, "content": {"application/json": {"schema": ServingChoiceBody.model_json_schema()}}}},
 )
-async def put_active_model(
+async def put_serving(
     request: Request,
     service: ServiceDep,
     credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
@@ -211,7 +211,7 @@ async def put_active_model(
         raise ApiError(401, "unauthorized", "a valid bearer token is needed", "authorization", {"WWW-Authenticate": "Bearer"})
     # The body is read only after the token checks out (auth first, then validation).
     try:
-        body = ModelChoiceBody.model_validate_json(await request.body())
+        body = ServingChoiceBody.model_validate_json(await request.body())
     except ValidationError as exc:
         raise RequestValidationError([{**e, "loc": ("body", *e["loc"])} for e in exc.errors(include_url=False)]) from None
     _, current = service.active.current
@@ -219,9 +219,9 @@ async def put_active_model(
     try:
         await service.active.switch(choice)
     except ArtifactError as exc:
-        if not (service.settings.model_store / choice.name / choice.version).is_dir():
-            raise ApiError(404, "unknown_artifact", f"no artifact {choice.tag} in the model store", "version") from exc
-        problem = _without_paths(str(exc), service.settings.model_store)
+        if not (service.settings.artifacts / choice.name / choice.version).is_dir():
+            raise ApiError(404, "unknown_artifact", f"no artifact {choice.tag} in the artifacts folder", "version") from exc
+        problem = _without_paths(str(exc), service.settings.artifacts)
         raise ApiError(409, "artifact_refused", f"{choice.tag} failed verification, still serving {current.tag}: {problem}") from exc
     except StoreError as exc:
         message = f"the session store is unavailable, so the choice could not be shared; still serving {current.tag}"

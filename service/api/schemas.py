@@ -60,7 +60,7 @@ class RecommendationAnswer(BaseModel):
     session_id: str
     items: list[ScoredItem]
     served_by: str = Field(description="gru, neighbours or popularity")
-    model_version: str = Field(description="name/version of the artifact that answered")
+    artifact: str = Field(description="name/version of the artifact that answered")
     fallback_reason: str | None = Field(
         description=(
             "why the active recommender did not answer: unknown_item, no_history, budget (the model would not fit in "
@@ -68,12 +68,12 @@ class RecommendationAnswer(BaseModel):
             "model_error (this call failed), store_unavailable (the session store failed, timed out or its breaker is open)"
         )
     )
-    took_ms: float
+    elapsed_ms: float
     sequence: int = Field(description="clicks this visit has applied; 0 with store_unavailable or deadline: this click was not recorded")
     duplicate: bool = Field(False, description="true when the click's event_id was applied before; nothing was applied now")
 
 
-class ModelChoiceBody(BaseModel):
+class ServingChoiceBody(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     name: Annotated[str, StringConstraints(strict=True, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")]
@@ -83,11 +83,11 @@ class ModelChoiceBody(BaseModel):
     )
 
 
-class ActiveModelAnswer(BaseModel):
+class ServingAnswer(BaseModel):
     name: str
     version: str
     recommender: str
-    model_version: str
+    artifact: str = Field(description="name/version, as answers carry it")
 
 
 class ArtifactEntry(BaseModel):
@@ -102,8 +102,8 @@ class ArtifactEntry(BaseModel):
     hyperparameters: dict[str, Any]
 
 
-class ModelsAnswer(BaseModel):
-    active: ActiveModelAnswer
+class ArtifactsAnswer(BaseModel):
+    active: ServingAnswer
     artifacts: list[ArtifactEntry]
 
 

@@ -22,11 +22,11 @@ _FLAGS = {
     "--host": "host",
     "--port": "port",
     "--workers": "workers",
-    "--model": "model",
-    "--model-store": "model_store",
-    "--model-name": "model_name",
-    "--model-version": "model_version",
-    "--store": "store",
+    "--recommender": "recommender",
+    "--artifacts": "artifacts",
+    "--artifact-name": "artifact_name",
+    "--artifact-version": "artifact_version",
+    "--session-store": "session_store",
     "--log-level": "log_level",
     "--tls-certfile": "tls_certfile",
     "--tls-keyfile": "tls_keyfile",
@@ -36,13 +36,13 @@ _FLAGS = {
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--host", help="address to listen on (CAIRN_HOST, default 127.0.0.1)")
     parser.add_argument("--port", type=int, help="port to listen on (CAIRN_PORT, default 8000)")
-    parser.add_argument("--workers", type=int, help="worker processes; more than one needs a redis:// store (CAIRN_WORKERS, default 1)")
-    parser.add_argument("--model", choices=RECOMMENDERS, help="which recommender answers (CAIRN_MODEL, default gru)")
-    parser.add_argument("--model-store", help="artifacts folder (CAIRN_MODEL_STORE, default model_store/)")
-    parser.add_argument("--model-name", help="artifact name (CAIRN_MODEL_NAME; default: the only name in the store)")
-    parser.add_argument("--model-version", help="artifact version (CAIRN_MODEL_VERSION; default: the newest)")
+    parser.add_argument("--workers", type=int, help="worker processes; more than one needs a redis:// session store (CAIRN_WORKERS, default 1)")
+    parser.add_argument("--recommender", choices=RECOMMENDERS, help="which recommender answers (CAIRN_RECOMMENDER, default gru)")
+    parser.add_argument("--artifacts", metavar="DIR", help="the artifacts folder, <name>/<version>/ inside (CAIRN_ARTIFACTS, default model_store)")
+    parser.add_argument("--artifact-name", help="artifact name (CAIRN_ARTIFACT_NAME; default: the only name in the store)")
+    parser.add_argument("--artifact-version", help="artifact version (CAIRN_ARTIFACT_VERSION; default: the newest)")
     parser.add_argument(
-        "--store", help="'memory', redis://host:port/db (rediss:// for TLS) or redis-cluster://host:port,host:port,... (CAIRN_STORE, default memory)"
+        "--session-store", help="'memory', redis://host:port/db (rediss:// for TLS) or redis-cluster://host:port,host:port,... (CAIRN_SESSION_STORE, default memory)"
     )
     parser.add_argument("--log-level", choices=("debug", "info", "warning", "error"), help="(CAIRN_LOG_LEVEL, default info)")
     parser.add_argument(

@@ -1,7 +1,7 @@
-"""`cairn artifacts`: list the model store, or verify one artifact.
+"""`cairn artifacts`: list the artifacts folder, or verify one artifact.
 
-    cairn artifacts [--store model_store]     name, version, created_at, key metrics, OK or the problem
-    cairn artifacts verify PATH               exit 0 when sound, 2 with the reason when not
+    cairn artifacts [list] [--artifacts DIR]            name, version, created, key metrics, OK or the problem
+    cairn artifacts verify NAME/VERSION|PATH [--artifacts DIR]   exit 0 when sound, 2 with the reason when not
 """
 
 from __future__ import annotations
@@ -18,18 +18,36 @@ KEY_METRICS = ("recall", "mrr")  # the next-click metrics worth a column; others
 MAX_METRICS = 4
 
 
+def _add_folder(parser: argparse.ArgumentParser, default: object) -> None:
+    # Accepted before and after the action (`cairn artifacts list --artifacts DIR`); given after it, it wins.
+    parser.add_argument("--artifacts", type=Path, default=default, metavar="DIR", help=f"the artifacts folder (default: {DEFAULT_STORE})")
+
+
 def configure(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--store", type=Path, default=DEFAULT_STORE, metavar="DIR", help="model store folder (default: %(default)s)")
+    _add_folder(parser, DEFAULT_STORE)
     actions = parser.add_subparsers(dest="action", metavar="ACTION")
-    actions.add_parser("list", help="list every artifact in the store (the default)")
+    _add_folder(actions.add_parser("list", help="list every artifact in the folder (the default)"), argparse.SUPPRESS)
     verify = actions.add_parser("verify", help="check one artifact: checksums, format, tables, step graph")
-    verify.add_argument("path", type=Path, metavar="PATH", help="artifact folder, <store>/<name>/<version>")
+    verify.add_argument("artifact", metavar="NAME/VERSION|PATH", help="an artifact of the folder, or the path of an artifact folder")
+    _add_folder(verify, argparse.SUPPRESS)
 
 
 def run(args: argparse.Namespace) -> int:
     if args.action == "verify":
-        return _verify(args.path)
-    return _list(args.store)
+        return _verify(artifact_folder(args.artifact, args.artifacts))
+    return _list(args.artifacts)
+
+
+def artifact_folder(given: str, folder: Path) -> Path:
+    """NAME/VERSION inside `folder` when that exists (or `given` is not a path that exists), else `given` as a path."""
+    inside = folder / given
+    if inside.is_dir() or not Path(given).exists():
+        parts = Path(given).parts
+        if len(parts) == 2 and not inside.is_dir():
+            raise ArtifactError(f"{given}: no such artifact in {folder} (--artifacts)")
+        if len(parts) == 2:
+            return inside
+    return Path(given)
 
 
 def _list(store: Path) -> int:

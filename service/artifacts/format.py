@@ -49,6 +49,16 @@ _UNSET_DIGEST = "0" * 64
 _HEX_DIGEST = re.compile(r"[0-9a-f]{64}")
 
 
+# Training options renamed to names of our own; an artifact or checkpoint with an old key is refused
+# with the new name (offline/model/gru.py checks checkpoints against the same table).
+RENAMED_HYPERPARAMETERS = {
+    "dropout_embedding": "input_dropout",
+    "dropout_hidden": "state_dropout",
+    "bpreg": "score_penalty",
+    "sample_alpha": "negative_skew",
+}
+
+
 def sha256_file(path: Path) -> str:
     h = hashlib.sha256()
     with open(path, "rb") as f:
@@ -159,6 +169,10 @@ def verify_artifact(path: Path) -> dict[str, Any]:
         found = manifest.get("format") if isinstance(manifest, dict) else None
         raise ArtifactError(f"{mpath}: format {found!r}, this cairn reads {FORMAT!r}")
     _check_manifest_seal(mpath, raw, manifest)
+    hyperparameters = manifest.get("hyperparameters")
+    for old, new in RENAMED_HYPERPARAMETERS.items():
+        if isinstance(hyperparameters, dict) and old in hyperparameters:
+            raise ArtifactError(f"{mpath}: written by an older cairn (hyperparameter {old!r}, now {new!r}); export it again")
     files = manifest.get("files")
     if not isinstance(files, dict):
         raise ArtifactError(f"{mpath}: no 'files' checksums")

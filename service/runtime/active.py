@@ -127,27 +127,27 @@ def load_model(path: Path, ort_threads: int, max_batch: int) -> LoadedModel:
 
 def resolve_choice(settings: Settings) -> ModelChoice:
     """The artifact the settings name, with the defaults filled in; SettingsError when there is none."""
-    store = settings.model_store
+    store = settings.artifacts
     listings = list_artifacts(store)
     if not listings:
-        raise SettingsError(f"CAIRN_MODEL_STORE={str(store)!r}: no artifacts there (write one with `cairn export`)")
+        raise SettingsError(f"CAIRN_ARTIFACTS={str(store)!r}: no artifacts there (write one with `cairn export`)")
     names = sorted({a.name for a in listings})
-    name = settings.model_name
+    name = settings.artifact_name
     if name is None:
         if len(names) > 1:
-            raise SettingsError(f"CAIRN_MODEL_NAME is unset and {str(store)!r} holds {len(names)} names ({', '.join(names)}); set it")
+            raise SettingsError(f"CAIRN_ARTIFACT_NAME is unset and {str(store)!r} holds {len(names)} names ({', '.join(names)}); set it")
         name = names[0]
     versions = [a.version for a in listings if a.name == name]  # newest last
     if not versions:
-        raise SettingsError(f"CAIRN_MODEL_NAME={name!r}: not in {str(store)!r} (names: {', '.join(names)})")
-    version = settings.model_version or versions[-1]
+        raise SettingsError(f"CAIRN_ARTIFACT_NAME={name!r}: not in {str(store)!r} (names: {', '.join(names)})")
+    version = settings.artifact_version or versions[-1]
     if version not in versions:
-        raise SettingsError(f"CAIRN_MODEL_VERSION={version!r}: {name!r} has no such version (versions: {', '.join(versions)})")
-    return ModelChoice(name, version, settings.model)
+        raise SettingsError(f"CAIRN_ARTIFACT_VERSION={version!r}: {name!r} has no such version (versions: {', '.join(versions)})")
+    return ModelChoice(name, version, settings.recommender)
 
 
 def artifact_path(settings: Settings, name: str, version: str) -> Path:
-    return Path(settings.model_store) / name / version
+    return Path(settings.artifacts) / name / version
 
 
 class ActiveModel:
@@ -215,7 +215,7 @@ class ActiveModel:
             else:
                 path = artifact_path(self.settings, choice.name, choice.version)
                 if not path.is_dir():
-                    raise ArtifactError(f"no artifact {choice.tag} in {str(self.settings.model_store)!r}")
+                    raise ArtifactError(f"no artifact {choice.tag} in {str(self.settings.artifacts)!r}")
                 model = await asyncio.to_thread(load_model, path, self.settings.ort_threads, self.settings.max_batch)
                 if self._wrap_model is not None:
                     model.wrap(self._wrap_model)

@@ -54,7 +54,7 @@ class Answer:
     item_ids: list[str]
     scores: list[float]
     served_by: str  # gru | neighbours | popularity
-    model_version: str  # "name/version" of the artifact that answered
+    artifact: str  # "name/version" of the artifact that answered
     fallback_reason: str | None
     sequence: int  # clicks the visit has applied; 0 with store_unavailable or deadline: this click was not recorded
     duplicate: bool = False
@@ -364,7 +364,7 @@ class Visits:
             item_ids=model.ids_of(ranking.items),
             scores=ranking.scores,
             served_by=served_by,
-            model_version=model.tag,
+            artifact=model.tag,
             fallback_reason=reason,
             sequence=sequence,
         )

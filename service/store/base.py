@@ -39,8 +39,8 @@ class SessionStore(Protocol):
 
 
 def open_store(settings: Settings) -> SessionStore:
-    """The store of `settings.store`; nothing is connected yet (`ping` does that)."""
-    if settings.store == "memory":
+    """The store of `settings.session_store`; nothing is connected yet (`ping` does that)."""
+    if settings.session_store == "memory":
         from service.store.memory import MemoryStore
 
         return MemoryStore(max_entries=settings.memory_max_sessions, ttl_s=settings.session_ttl_s)
@@ -48,7 +48,7 @@ def open_store(settings: Settings) -> SessionStore:
         from service.store.cluster import RedisClusterStore
 
         return RedisClusterStore(
-            settings.store,
+            settings.session_store,
             ttl_s=settings.session_ttl_s,
             pool_size=settings.redis_pool_size,
             timeout_s=settings.redis_timeout_s,
@@ -58,7 +58,7 @@ def open_store(settings: Settings) -> SessionStore:
     from service.store.redis import RedisStore
 
     return RedisStore(
-        settings.store,
+        settings.session_store,
         ttl_s=settings.session_ttl_s,
         pool_size=settings.redis_pool_size,
         timeout_s=settings.redis_timeout_s,

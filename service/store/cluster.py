@@ -1,6 +1,6 @@
 """Session state in a Redis Cluster: redis-py's asyncio RedisCluster, the same values and script.
 
-`CAIRN_STORE=redis-cluster://host:port,host:port,...` names startup nodes (any of them; the client
+`CAIRN_SESSION_STORE=redis-cluster://host:port,host:port,...` names startup nodes (any of them; the client
 reads the slot map from the first that answers). Each session is one key, and the check-and-set
 script touches only that key, so every command goes to the one master that owns the key's hash
 slot: no cross-slot work, no MULTI across nodes.
@@ -48,7 +48,7 @@ class RedisClusterStore(RedisCommands):
                 ssl=tls,
             )
         except (ValueError, RedisError, RedisClusterException) as exc:
-            raise StoreError(f"CAIRN_STORE: cannot use {redacted(url)!r} ({redacted(str(exc))})") from exc
+            raise StoreError(f"CAIRN_SESSION_STORE: cannot use {redacted(url)!r} ({redacted(str(exc))})") from exc
 
     def shard_of(self, session_id: str) -> str:
         """host:port of the master that holds the session, "" before the slot map is known."""

@@ -142,7 +142,7 @@ class RedisStore(RedisCommands):
                 retry=no_retry,
             )
         except (ValueError, RedisError) as exc:
-            raise StoreError(f"CAIRN_STORE: cannot use {redacted(url)!r} ({redacted(str(exc))})") from exc
+            raise StoreError(f"CAIRN_SESSION_STORE: cannot use {redacted(url)!r} ({redacted(str(exc))})") from exc
         self._client = aioredis.Redis(connection_pool=self._pool, retry=no_retry)
 
     def shard_of(self, session_id: str) -> str:

@@ -117,10 +117,10 @@ class RunningServer:
 def shop_settings(model_store: Path, store: str, *, tag: str, **overrides: object) -> Settings:
     """Settings for the shop/v1 artifact of `model_store`, with a key prefix no other server shares."""
     base: dict[str, object] = {
-        "model_store": model_store,
-        "model_name": "shop",
-        "model_version": "v1",
-        "store": store,
+        "artifacts": model_store,
+        "artifact_name": "shop",
+        "artifact_version": "v1",
+        "session_store": store,
         "redis_prefix": f"{new_id(tag)}:",
         "admin_token": TOKEN,
     }

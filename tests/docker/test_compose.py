@@ -201,7 +201,7 @@ def test_compose_has_redis_two_replicas_and_a_balancer(compose: dict[str, Any]) 
     assert _api_services(compose, None) == ["api-1", "api-2"]
     for name in ("api-1", "api-2"):
         env = services[name]["environment"]
-        assert env["CAIRN_STORE"] == "redis://redis:6379/0"  # both replicas share the one Redis service
+        assert env["CAIRN_SESSION_STORE"] == "redis://redis:6379/0"  # both replicas share the one Redis service
         assert {"redis": {"condition": "service_healthy"}} == services[name]["depends_on"]
     assert services["redis"]["healthcheck"]["test"][:2] == ["CMD", "redis-cli"]
     # The replicas' CAIRN_* settings are ones the service accepts (its own settings object).
@@ -245,8 +245,8 @@ def test_cluster_profile_adds_a_redis_cluster_and_its_own_replicas(compose: dict
     )
     for name in ("api-cluster-1", "api-cluster-2"):
         env = services[name]["environment"]
-        assert env["CAIRN_STORE"].startswith("redis-cluster://")
-        assert sorted(cluster_nodes(env["CAIRN_STORE"])[0]) == addresses
+        assert env["CAIRN_SESSION_STORE"].startswith("redis-cluster://")
+        assert sorted(cluster_nodes(env["CAIRN_SESSION_STORE"])[0]) == addresses
         settings = Settings(**{k.removeprefix("CAIRN_").lower(): v for k, v in env.items()})
         assert settings.store_kind == "redis-cluster" and settings.workers == 1
 

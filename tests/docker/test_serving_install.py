@@ -89,7 +89,7 @@ def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Pa
     with running_process(
         [str(venv / "bin" / "cairn"), "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "1"],
         log_path=tmp_path / "serve.log", ready=healthy, what="cairn serve in the fresh environment", ignore=(urllib.error.URLError, OSError),
-        poll_s=0.2, env=environment_without_cairn(CAIRN_MODEL_STORE=str(store), CAIRN_MODEL="gru", CAIRN_STORE="memory"),
+        poll_s=0.2, env=environment_without_cairn(CAIRN_ARTIFACTS=str(store), CAIRN_RECOMMENDER="gru", CAIRN_SESSION_STORE="memory"),
         cwd=tmp_path, group=True,
     ):  # fmt: skip
         body = json.dumps({"item_id": "sku-000007", "count": 3, "exclude_seen": False}).encode()

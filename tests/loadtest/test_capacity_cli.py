@@ -12,7 +12,7 @@ from service.cli import main
 def test_capacity_reports_a_positive_rate_per_core(tmp_path: Path, model_store: Path, visits_data: Path, capsys) -> None:
     report_dir = tmp_path / "capacity"
     rc = main([
-        "capacity", "--serve", "--model", "popularity", "--store", "memory", "--model-store", str(model_store),
+        "capacity", "--serve", "--recommender", "popularity", "--session-store", "memory", "--artifacts", str(model_store),
         "--data", str(visits_data), "--ramp", "20:60:20", "--step-duration", "1", "--users", "4",
         "--p99-budget-ms", "25", "--target-rate", "500", "--report", str(report_dir),
     ])  # fmt: skip

@@ -68,7 +68,7 @@ def test_replayed_hit_rate_equals_offline_recall(tmp_path: Path, model_store: Pa
 
     report_dir = tmp_path / "report"
     rc = main([
-        "loadtest", "--serve", "--model", "neighbours", "--store", "memory", "--model-store", str(model_store),
+        "loadtest", "--serve", "--recommender", "neighbours", "--session-store", "memory", "--artifacts", str(model_store),
         "--data", str(walk_data), "--replay", "once", "--think-scale", "0", "--users", "3", "--load-workers", "1",
         "--duration", "60", "--count", str(COUNT), "--p99-budget-ms", "1000", "--max-error-rate", "0",
         "--report", str(report_dir),

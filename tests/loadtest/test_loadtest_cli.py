@@ -34,7 +34,7 @@ def _port_open(url: str) -> bool:
 def test_serve_meets_a_generous_budget_and_writes_the_report(tmp_path: Path, model_store: Path, visits_data: Path, capsys) -> None:
     report_dir = tmp_path / "report"
     rc = main([
-        "loadtest", "--serve", "--model", "gru", "--store", "memory", "--model-store", str(model_store),
+        "loadtest", "--serve", "--recommender", "gru", "--session-store", "memory", "--artifacts", str(model_store),
         "--data", str(visits_data), "--users", "4", "--rate", "40", "--duration", "3",
         "--count", "5", "--budget-ms", "50", "--p99-budget-ms", "25", "--max-error-rate", "0",
         "--report", str(report_dir),
@@ -49,7 +49,7 @@ def test_serve_meets_a_generous_budget_and_writes_the_report(tmp_path: Path, mod
     assert r["kind"] == "cairn-loadtest/1"
     assert r["verdict"] == {"met": True, "reasons": []}
     assert r["settings"]["mode"] == "rate" and r["settings"]["step_rates"] == [40.0]
-    assert r["target"]["served_here"] and r["target"]["service"]["model"] == "gru"
+    assert r["target"]["served_here"] and r["target"]["service"]["recommender"] == "gru"
     [step] = r["steps"]
     assert set(step) == STEP_FIELDS
     assert set(step["latency_ms"]) == {"p50", "p95", "p99", "max", "mean"}
@@ -74,7 +74,7 @@ def test_serve_meets_a_generous_budget_and_writes_the_report(tmp_path: Path, mod
 
 
 def test_an_impossible_budget_exits_1(tmp_path: Path, model_store: Path, visits_data: Path, capsys) -> None:
-    spec = ServiceSpec(model="popularity", store="memory", model_store=model_store)
+    spec = ServiceSpec(recommender="popularity", session_store="memory", artifacts=model_store)
     report_dir = tmp_path / "report"
     with LocalService(spec, tmp_path / "service.log") as service:
         rc = main([
@@ -103,14 +103,14 @@ def test_an_impossible_budget_exits_1(tmp_path: Path, model_store: Path, visits_
         (["--url", "http://127.0.0.1:9", "--serve"], "--url and --serve"),
         (["--url", "http://127.0.0.1:9/v1"], "'http://127.0.0.1:9/v1'"),
         (["--url", "ftp://127.0.0.1:9"], "'ftp://127.0.0.1:9'"),
-        (["--url", "http://127.0.0.1:9", "--model", "gru"], "--model"),
+        (["--url", "http://127.0.0.1:9", "--recommender", "gru"], "--recommender"),
         (["--url", "http://127.0.0.1:9", "--ramp", "50:10:10"], "'50:10:10'"),
         (["--url", "http://127.0.0.1:9", "--ramp", "10:50"], "'10:50'"),
         (["--url", "http://127.0.0.1:9", "--ramp", "10:50:10", "--rate", "5"], "--rate and --ramp"),
         (["--url", "http://127.0.0.1:9", "--users", "2", "--load-workers", "3"], "--load-workers 3"),
         (["--url", "http://127.0.0.1:9", "--think-scale", "-1"], "-1"),
         (["--url", "http://127.0.0.1:9", "--max-error-rate", "2"], "2"),
-        (["--serve", "--model-store", "/nonexistent/store"], "/nonexistent/store"),
+        (["--serve", "--artifacts", "/nonexistent/store"], "/nonexistent/store"),
     ],
 )
 def test_bad_input_is_one_line_and_exit_2(args: list[str], named: str, visits_data: Path, capsys) -> None:

@@ -24,33 +24,33 @@ def parse(argv: list[str]) -> argparse.Namespace:
 
 def test_defaults():
     s = load_settings()
-    assert (s.model, s.store, s.port, s.workers, s.history_length, s.session_ttl_s) == ("gru", "memory", 8000, 1, 20, 1800.0)
-    assert s.model_store == Path("model_store") and s.admin_token is None and s.model_name is None
+    assert (s.recommender, s.session_store, s.port, s.workers, s.history_length, s.session_ttl_s) == ("gru", "memory", 8000, 1, 20, 1800.0)
+    assert s.artifacts == Path("model_store") and s.admin_token is None and s.artifact_name is None
 
 
 def test_environment_then_flags(monkeypatch):
-    monkeypatch.setenv("CAIRN_MODEL", "neighbours")
+    monkeypatch.setenv("CAIRN_RECOMMENDER", "neighbours")
     monkeypatch.setenv("CAIRN_PORT", "9000")
     monkeypatch.setenv("CAIRN_SESSION_TTL_S", "60")
-    monkeypatch.setenv("CAIRN_STORE", "redis://127.0.0.1:7000/2")
+    monkeypatch.setenv("CAIRN_SESSION_STORE", "redis://127.0.0.1:7000/2")
     monkeypatch.setenv("CAIRN_REDIS_POOL_SIZE", "8")
     s = serve_cli.settings_from_args(parse(["--port", "9100", "--workers", "3"]))
-    assert (s.model, s.port, s.workers, s.session_ttl_s, s.redis_pool_size) == ("neighbours", 9100, 3, 60.0, 8)
+    assert (s.recommender, s.port, s.workers, s.session_ttl_s, s.redis_pool_size) == ("neighbours", 9100, 3, 60.0, 8)
     assert s.store_kind == "redis"
 
 
 @pytest.mark.parametrize(
     "env, flags, named",
     [
-        ({"CAIRN_MODEL": "bogus"}, [], "CAIRN_MODEL='bogus'"),
-        ({"CAIRN_STORE": "mysql://db"}, [], "CAIRN_STORE='mysql://db'"),
+        ({"CAIRN_RECOMMENDER": "bogus"}, [], "CAIRN_RECOMMENDER='bogus'"),
+        ({"CAIRN_SESSION_STORE": "mysql://db"}, [], "CAIRN_SESSION_STORE='mysql://db'"),
         ({"CAIRN_SESSION_TTL_S": "-1"}, [], "CAIRN_SESSION_TTL_S='-1'"),
         ({"CAIRN_HISTORY_LENGTH": "0"}, [], "CAIRN_HISTORY_LENGTH='0'"),
-        ({"CAIRN_MODEL_VERSION": "../v1"}, [], "CAIRN_MODEL_VERSION='../v1'"),
+        ({"CAIRN_ARTIFACT_VERSION": "../v1"}, [], "CAIRN_ARTIFACT_VERSION='../v1'"),
         ({"CAIRN_ORT_THREADS": "many"}, [], "CAIRN_ORT_THREADS='many'"),
         ({}, ["--port", "0"], "--port=0"),
-        ({}, ["--workers", "2"], "CAIRN_STORE=memory"),
-        ({"CAIRN_MODLE": "gru"}, [], "did you mean CAIRN_MODEL?"),
+        ({}, ["--workers", "2"], "CAIRN_SESSION_STORE=memory"),
+        ({"CAIRN_RECOMENDER": "gru"}, [], "did you mean CAIRN_RECOMMENDER?"),
     ],
 )
 def test_bad_values_fail_with_one_line_naming_them(monkeypatch, env, flags, named):
@@ -70,7 +70,7 @@ def test_a_short_token_is_refused_without_being_shown(monkeypatch):
 
 
 def test_export_environment_rebuilds_the_same_settings(monkeypatch, tmp_path):
-    s = Settings(model="popularity", model_store=tmp_path, store="redis://127.0.0.1:7/1", workers=2,
+    s = Settings(recommender="popularity", artifacts=tmp_path, session_store="redis://127.0.0.1:7/1", workers=2,
                  admin_token="a-long-enough-admin-token", access_log=True, session_ttl_s=12.5)
     saved = dict(os.environ)
     try:
@@ -88,19 +88,19 @@ def run_serve(args: list[str], env: dict[str, str], cwd: Path) -> subprocess.Com
 
 
 def test_cairn_serve_refuses_bad_settings_with_one_line(tmp_path, model_store):
-    r = run_serve([], {"CAIRN_MODEL": "bogus"}, tmp_path)
-    assert r.returncode == 2 and r.stderr.count("\n") == 1 and "CAIRN_MODEL='bogus'" in r.stderr, r.stderr
-    r = run_serve(["--model-store", str(tmp_path / "empty")], {}, tmp_path)
-    assert r.returncode == 2 and "CAIRN_MODEL_STORE" in r.stderr and "no artifacts" in r.stderr and r.stderr.count("\n") == 1
-    r = run_serve(["--model-store", str(model_store), "--model-version", "v7"], {}, tmp_path)
-    assert r.returncode == 2 and "CAIRN_MODEL_VERSION='v7'" in r.stderr and "v1, v2" in r.stderr, r.stderr
+    r = run_serve([], {"CAIRN_RECOMMENDER": "bogus"}, tmp_path)
+    assert r.returncode == 2 and r.stderr.count("\n") == 1 and "CAIRN_RECOMMENDER='bogus'" in r.stderr, r.stderr
+    r = run_serve(["--artifacts", str(tmp_path / "empty")], {}, tmp_path)
+    assert r.returncode == 2 and "CAIRN_ARTIFACTS" in r.stderr and "no artifacts" in r.stderr and r.stderr.count("\n") == 1
+    r = run_serve(["--artifacts", str(model_store), "--artifact-version", "v7"], {}, tmp_path)
+    assert r.returncode == 2 and "CAIRN_ARTIFACT_VERSION='v7'" in r.stderr and "v1, v2" in r.stderr, r.stderr
     with socket.socket() as busy:
         busy.bind(("127.0.0.1", 0))
         busy.listen()
         port = busy.getsockname()[1]
-        r = run_serve(["--model-store", str(model_store), "--model-version", "v0-broken", "--port", str(port)], {}, tmp_path)
+        r = run_serve(["--artifacts", str(model_store), "--artifact-version", "v0-broken", "--port", str(port)], {}, tmp_path)
         assert r.returncode == 2 and "checksum" in r.stderr and r.stderr.count("\n") == 1, r.stderr
-        r = run_serve(["--model-store", str(model_store), "--model-version", "v1", "--port", str(port)], {}, tmp_path)
+        r = run_serve(["--artifacts", str(model_store), "--artifact-version", "v1", "--port", str(port)], {}, tmp_path)
         assert r.returncode == 2 and f"--port {port}" in r.stderr and r.stderr.count("\n") == 1, r.stderr
 
 
@@ -126,9 +126,9 @@ def test_guard_settings_from_the_environment(monkeypatch):
         ({"CAIRN_MODEL_BREAKER_FAILURE_RATIO": "1.5"}, "CAIRN_MODEL_BREAKER_FAILURE_RATIO='1.5'"),
         ({"CAIRN_STORE_BREAKER_MIN_CALLS": "0"}, "CAIRN_STORE_BREAKER_MIN_CALLS='0'"),
         ({"CAIRN_LATENCY_QUANTILE": "0"}, "CAIRN_LATENCY_QUANTILE='0'"),
-        ({"CAIRN_STORE": "redis-cluster://a:1,b"}, "cluster node 'b': use host:port"),
-        ({"CAIRN_STORE": "redis-cluster://a:1/2"}, "only database 0"),
-        ({"CAIRN_STORE": "redis+cluster://a:1/0"}, "CAIRN_STORE='redis+cluster://a:1/0'"),
+        ({"CAIRN_SESSION_STORE": "redis-cluster://a:1,b"}, "cluster node 'b': use host:port"),
+        ({"CAIRN_SESSION_STORE": "redis-cluster://a:1/2"}, "only database 0"),
+        ({"CAIRN_SESSION_STORE": "redis+cluster://a:1/0"}, "CAIRN_SESSION_STORE='redis+cluster://a:1/0'"),
         ({"CAIRN_TLS_CERTFILE": "/x/cert.pem"}, "CAIRN_TLS_CERTFILE and CAIRN_TLS_KEYFILE go together"),
     ],
 )
@@ -143,15 +143,15 @@ def test_bad_guard_store_and_tls_values_are_named(monkeypatch, env, named):
 def test_cluster_urls():
     from service.config import cluster_nodes
 
-    s = load_settings({"store": "redis-cluster://10.0.0.1:7001,10.0.0.2:7002"})
+    s = load_settings({"session_store": "redis-cluster://10.0.0.1:7001,10.0.0.2:7002"})
     assert s.store_kind == "redis-cluster"
-    assert cluster_nodes(s.store) == ([("10.0.0.1", 7001), ("10.0.0.2", 7002)], None, None, False)
+    assert cluster_nodes(s.session_store) == ([("10.0.0.1", 7001), ("10.0.0.2", 7002)], None, None, False)
     # Credentials percent-decoded as in redis:// URLs (RFC 3986, 2.1); rediss-cluster:// means TLS.
     assert cluster_nodes("rediss-cluster://cairn:p%40ss@h:6379") == ([("h", 6379)], "cairn", "p@ss", True)
 
 
 def test_a_password_in_the_store_url_is_never_shown(monkeypatch):
-    monkeypatch.setenv("CAIRN_STORE", "rediss-cluster://cairn:hunter2-secret@h:notaport")
+    monkeypatch.setenv("CAIRN_SESSION_STORE", "rediss-cluster://cairn:hunter2-secret@h:notaport")
     with pytest.raises(SettingsError) as info:
         load_settings()
     assert "hunter2-secret" not in str(info.value) and "cairn:***@h:notaport" in str(info.value)
@@ -161,7 +161,7 @@ def test_the_recent_writes_cache_is_on_with_one_worker_and_off_with_more_unless_
     from service.config import DEFAULT_STATE_CACHE_SESSIONS, Settings
 
     redis = "redis://127.0.0.1:1/0"  # never connected: settings only
-    assert Settings(store=redis).state_cache_entries == DEFAULT_STATE_CACHE_SESSIONS
-    assert Settings(store=redis, workers=4).state_cache_entries == 0  # kernel-balanced workers: stale entries would cost steps
-    assert Settings(store=redis, workers=4, state_cache_sessions=500).state_cache_entries == 500  # set: taken as it is
-    assert Settings(store=redis, state_cache_sessions=0).state_cache_entries == 0
+    assert Settings(session_store=redis).state_cache_entries == DEFAULT_STATE_CACHE_SESSIONS
+    assert Settings(session_store=redis, workers=4).state_cache_entries == 0  # kernel-balanced workers: stale entries would cost steps
+    assert Settings(session_store=redis, workers=4, state_cache_sessions=500).state_cache_entries == 500  # set: taken as it is
+    assert Settings(session_store=redis, state_cache_sessions=0).state_cache_entries == 0

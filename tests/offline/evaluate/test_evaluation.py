@@ -86,7 +86,7 @@ def test_coverage_and_popularity_equal_brute_force() -> None:
     top = np.argsort(-table[prev], axis=1)[:, :3]  # [events, 3]
     assert result.metrics["coverage@3"].value == pytest.approx(len(np.unique(top)) / n_items)
     shares = counts / counts.sum()
-    assert result.metrics["popularity@3"].value == pytest.approx(shares[top].mean(axis=1).mean())
+    assert result.metrics["click_share@3"].value == pytest.approx(shares[top].mean(axis=1).mean())
 
 
 def test_repeated_clicks_are_targets_and_single_clicks_are_skipped() -> None:
@@ -189,7 +189,7 @@ def test_json_holds_the_documented_keys() -> None:
     r = evaluate(Popularity(counts), random_split(1, 20, 10), (20, 5), popularity=counts, bootstrap=10)
     out = results_json([r])
     assert list(out) == ["pop"]
-    assert set(out["pop"]) == {f"{m}@{k}" for m in ("recall", "mrr", "coverage", "popularity") for k in (20, 5)} | {
+    assert set(out["pop"]) == {f"{m}@{k}" for m in ("recall", "mrr", "coverage", "click_share") for k in (20, 5)} | {
         "events",
         "sessions",
     }
@@ -232,7 +232,7 @@ def test_cairn_evaluate_end_to_end(prepared: Path, tmp_path: Path, capsys: pytes
     assert list(report) == ["pop", "spop", "markov", "item-knn"]
     for name, entry in report.items():
         for k in (20, 5):
-            for m in ("recall", "mrr", "coverage", "popularity"):
+            for m in ("recall", "mrr", "coverage", "click_share"):
                 metric = entry[f"{m}@{k}"]
                 assert set(metric) == {"value", "ci95"} and len(metric["ci95"]) == 2
         assert entry["sessions"] > 0 and entry["events"] >= entry["sessions"]

@@ -314,7 +314,7 @@ def test_export_cli(trained, tmp_path: Path, capsys) -> None:
     store = tmp_path / "store"
     metrics = tmp_path / "evaluation.json"
     metrics.write_text(json.dumps({"recall@20": 0.4}))
-    args = ["export", "--checkpoint", str(checkpoint), "--data", str(data_dir), "--store", str(store), "--name", "garden"]
+    args = ["export", "--checkpoint", str(checkpoint), "--data", str(data_dir), "--artifacts", str(store), "--name", "garden"]
     assert cairn([*args, "--knn-neighbours", "4", "--metrics", str(metrics)]) == 0
     (written,) = (store / "garden").iterdir()
     assert re.fullmatch(r"\d{8}T\d{6}", written.name), "default version: a UTC timestamp"
@@ -324,14 +324,14 @@ def test_export_cli(trained, tmp_path: Path, capsys) -> None:
     assert "exists already" in capsys.readouterr().err
     assert cairn([*args, "--version", written.name, "--overwrite"]) == 0
 
-    assert cairn(["export", "--random", "--items", "200", "--hidden-size", "8", "--store", str(store), "--name", "bench", "--version", "r1"]) == 0
+    assert cairn(["export", "--random", "--items", "200", "--hidden-size", "8", "--artifacts", str(store), "--name", "bench", "--version", "r1"]) == 0
     assert load_artifact(store / "bench" / "r1").n_items == 200
     capsys.readouterr()
 
     for bad, says in (
-        (["export", "--checkpoint", str(checkpoint), "--store", str(store), "--name", "g"], "--data is required"),
+        (["export", "--checkpoint", str(checkpoint), "--artifacts", str(store), "--name", "g"], "--data is required"),
         ([*args, "--items", "10"], "--items only go with --random"),
-        (["export", "--random", "--store", str(store), "--name", "../x"], "artifact name '../x'"),
+        (["export", "--random", "--artifacts", str(store), "--name", "../x"], "artifact name '../x'"),
         ([*args, "--metrics", str(tmp_path / "nope.json")], "nope.json: no metrics file"),
     ):
         assert cairn(bad) == 2

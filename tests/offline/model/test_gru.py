@@ -107,7 +107,7 @@ def test_checkpoint_round_trip_rebuilds_the_same_model(tmp_path: Path) -> None:
 
 
 def test_scorer_scores_every_item_after_each_click() -> None:
-    model = make_model(dropout_embedding=0.5, dropout_hidden=0.5).train()
+    model = make_model(input_dropout=0.5, state_dropout=0.5).train()
     scorer = TorchGRUScorer(model, "gru-test")
     clicks = [np.array([1, 7]), np.array([2, 7])]
     runs = []
@@ -139,3 +139,19 @@ def test_load_torch_scorer_refuses_what_is_not_a_training_checkpoint(tmp_path: P
     save_checkpoint(tmp_path / "bare.pt", make_model())
     with pytest.raises(ArtifactError, match="no training loss"):
         load_torch_scorer(tmp_path / "bare.pt")
+
+
+def test_a_checkpoint_with_a_retired_option_name_is_refused_naming_both(tmp_path) -> None:
+    import torch
+
+    from offline.model.gru import load_checkpoint, save_checkpoint
+    from service.errors import InputDataError
+
+    path = tmp_path / "old.pt"
+    save_checkpoint(path, make_model())
+    blob = torch.load(path, weights_only=True)
+    old = "dropout_" + "hidden"  # in pieces: the retired name appears nowhere else in the repository
+    blob["config"][old] = blob["config"].pop("state_dropout")
+    torch.save(blob, path)
+    with pytest.raises(InputDataError, match=f"'{old}', now 'state_dropout'"):
+        load_checkpoint(path)

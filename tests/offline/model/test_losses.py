@@ -96,7 +96,7 @@ def test_cross_entropy_over_every_item_equals_pytorch_full_softmax() -> None:
 @pytest.mark.parametrize("name", ["bpr", "top1", "bpr-max", "top1-max"])
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
 def test_value_equals_the_published_formula(name: str, dtype: torch.dtype) -> None:
-    loss = get_loss(name, bpreg=LAMBDA)(scores(dtype), negative_mask(TARGETS, CANDIDATES))
+    loss = get_loss(name, score_penalty=LAMBDA)(scores(dtype), negative_mask(TARGETS, CANDIDATES))
     assert loss.item() == pytest.approx(by_hand(name), rel=1e-6)
 
 
@@ -112,7 +112,7 @@ def test_cross_entropy_equals_pytorch_on_the_target_and_its_negatives() -> None:
 
 @pytest.mark.parametrize("name", LOSS_NAMES)
 def test_a_column_holding_the_target_item_counts_for_nothing(name: str) -> None:
-    fn = get_loss(name, bpreg=LAMBDA)
+    fn = get_loss(name, score_penalty=LAMBDA)
     mask = negative_mask(TARGETS, CANDIDATES)
     x = scores()
     base = fn(x, mask)
@@ -132,7 +132,7 @@ def test_gradient_matches_finite_differences(name: str) -> None:
     candidates = torch.cat([targets, torch.tensor([2, 7, 1, 8])])  # in-batch and sampled duplicates
     mask = negative_mask(targets, candidates)
     x = (torch.randn(5, 9, dtype=torch.float64) * 2).requires_grad_()
-    fn = get_loss(name, bpreg=0.7)
+    fn = get_loss(name, score_penalty=0.7)
     assert torch.autograd.gradcheck(lambda y: fn(y, mask), (x,))
 
 
@@ -150,7 +150,7 @@ def test_no_negatives_gives_zero_loss_and_a_finite_zero_gradient(name: str) -> N
 
 @pytest.mark.parametrize("name", LOSS_NAMES)
 def test_raising_the_target_score_lowers_the_loss(name: str) -> None:
-    fn = get_loss(name, bpreg=LAMBDA)
+    fn = get_loss(name, score_penalty=LAMBDA)
     mask = negative_mask(TARGETS, CANDIDATES)
     low, high = scores().detach(), scores().detach()
     high[0, 0] += 1.0

