@@ -29,7 +29,7 @@ from service.api.routes import router
 from service.config import Settings, load_settings
 from service.errors import CairnError, StoreError
 from service.resilience.guards import Guards
-from service.runtime.active import ActiveModel, ModelChoice, ModelWrapper, resolve_choice
+from service.runtime.active import ActiveModel, ModelChoice, ModelWrapper, resolve_choices
 from service.runtime.tasks import stop_task
 from service.runtime.visits import Visits
 from service.store.base import SessionStore, open_store
@@ -60,15 +60,11 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
         if session_store.kind != "memory" and settings.state_cache_entries > 0:
             recent = RecentWrites(settings.state_cache_entries, settings.session_ttl_s)
         try:
-            configured = await asyncio.to_thread(resolve_choice, settings)
+            candidates = await asyncio.to_thread(resolve_choices, settings)
             shared = await _shared_choice(session_store)
-            try:
-                await active.open(shared or configured)
-            except CairnError as exc:
-                if shared is None or shared == configured:
-                    raise
-                log.error("cannot load the shared model choice %s (%s); serving the configured one", shared.tag, exc)
-                await active.open(configured)
+            if shared is not None and shared not in candidates:
+                candidates.insert(0, shared)
+            await _open_first(active, candidates)
             service = Service(
                 settings=settings,
                 store=session_store,
@@ -100,6 +96,19 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
     install_handlers(app)
     app.include_router(router)
     return app
+
+
+async def _open_first(active: ActiveModel, candidates: list[ModelChoice]) -> None:
+    """Serve the first candidate that loads: the shared choice, then the configured artifact (or the
+    newest versions that verify, newest first). A candidate that fails is logged loudly."""
+    for i, choice in enumerate(candidates):
+        try:
+            await active.open(choice)
+            return
+        except CairnError as exc:
+            if i == len(candidates) - 1:
+                raise
+            log.error("cannot serve %s (%s); trying %s", choice.tag, exc, candidates[i + 1].tag)
 
 
 async def _shared_choice(store: SessionStore) -> ModelChoice | None:

@@ -175,12 +175,16 @@ async def get_artifacts(service: ServiceDep) -> dict[str, Any]:
     artifacts = []
     for a in listings:
         m = a.manifest or {}
+        tag = f"{a.name}/{a.version}"
+        loaded = service.active.load_results.get(tag, ...) if a.problem is None else ...
+        problem = a.problem if a.problem is not None else (loaded if isinstance(loaded, str) else None)
         artifacts.append(
             {
                 "name": a.name,
                 "version": a.version,
                 "verified": a.problem is None,
-                "problem": None if a.problem is None else _without_paths(a.problem, service.settings.artifacts),
+                "loadable": None if loaded is ... else loaded is None,
+                "problem": None if problem is None else _without_paths(problem, service.settings.artifacts),
                 "active": (a.name, a.version) == (choice.name, choice.version),
                 "created_at": m.get("created_at"),
                 "data_fingerprint": m.get("data_fingerprint"),

@@ -93,7 +93,10 @@ class ServingAnswer(BaseModel):
 class ArtifactEntry(BaseModel):
     name: str
     version: str
-    verified: bool
+    verified: bool = Field(description="checksums, format and manifest match (what the listing checks)")
+    loadable: bool | None = Field(
+        description="whether this worker could load it (tables and step graph, as a switch does); null: not tried here"
+    )
     problem: str | None
     active: bool
     created_at: str | None

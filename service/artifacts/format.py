@@ -137,7 +137,7 @@ def write_artifact(
             "format": FORMAT,
             "name": name,
             "version": version,
-            "created_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            "created_at": datetime.now(timezone.utc).isoformat(timespec="milliseconds"),
             **manifest_fields,
             "files": {f: sha256_file(tmp / f) for f in REQUIRED_FILES},
             "manifest_sha256": _UNSET_DIGEST,
@@ -169,6 +169,13 @@ def verify_artifact(path: Path) -> dict[str, Any]:
         found = manifest.get("format") if isinstance(manifest, dict) else None
         raise ArtifactError(f"{mpath}: format {found!r}, this cairn reads {FORMAT!r}")
     _check_manifest_seal(mpath, raw, manifest)
+    # A copied folder whose manifest names another artifact would serve under two names.
+    named = (manifest.get("name"), manifest.get("version"))
+    if named != (path.parent.name, path.name):
+        raise ArtifactError(
+            f"{mpath}: the manifest names {named[0]}/{named[1]} but the folder is {path.parent.name}/{path.name}; "
+            "export it under its own name instead of copying it"
+        )
     hyperparameters = manifest.get("hyperparameters")
     for old, new in RENAMED_HYPERPARAMETERS.items():
         if isinstance(hyperparameters, dict) and old in hyperparameters:
@@ -224,14 +231,15 @@ def load_artifact(path: Path) -> Artifact:
 
 
 def list_artifacts(store: Path) -> list[ArtifactListing]:
-    """Every `<name>/<version>` folder in the store, verified; newest version last within a name."""
+    """Every `<name>/<version>` folder in the store, verified (checksums, format, manifest); within a
+    name, ordered by creation time (the manifest's `created_at`), so the newest version is last."""
     store = Path(store)
     out: list[ArtifactListing] = []
     if not store.is_dir():
         return out
     for name_dir in sorted(p for p in store.iterdir() if p.is_dir() and not p.name.startswith(".")):
         versions = [p for p in name_dir.iterdir() if p.is_dir() and not p.name.startswith(".")]
-        for vdir in sorted(versions, key=lambda p: _version_key(p.name)):
+        for vdir in sorted(versions, key=lambda p: (_created_at(p), _version_key(p.name))):
             try:
                 manifest, problem = verify_artifact(vdir), None
             except ArtifactError as exc:
@@ -286,6 +294,18 @@ def _fsync_folder(folder: Path) -> None:
     for p in folder.iterdir():
         _fsync_path(p)
     _fsync_path(folder)
+
+
+def _created_at(folder: Path) -> str:
+    """When an artifact was written: its manifest's `created_at` (read without verifying it, so a
+    damaged newest version still sorts as the newest), else the folder's modification time."""
+    try:
+        created = json.loads((folder / MANIFEST).read_text(encoding="utf-8")).get("created_at")
+        if isinstance(created, str):
+            return created
+    except (OSError, ValueError, AttributeError):
+        pass
+    return datetime.fromtimestamp(folder.stat().st_mtime, timezone.utc).isoformat()
 
 
 def _version_key(version: str) -> tuple:

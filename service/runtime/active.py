@@ -127,8 +127,16 @@ def load_model(path: Path, ort_threads: int, max_batch: int) -> LoadedModel:
 
 def resolve_choice(settings: Settings) -> ModelChoice:
     """The artifact the settings name, with the defaults filled in; SettingsError when there is none."""
+    return resolve_choices(settings)[0]
+
+
+def resolve_choices(settings: Settings) -> list[ModelChoice]:
+    """What to serve, best first: the version the settings name, or else the name's versions that
+    verify, newest (created last) first, so that start-up can fall back past one that fails to
+    load. A newer version that does not verify is skipped with a loud warning. SettingsError when
+    nothing can be served."""
     store = settings.artifacts
-    listings = list_artifacts(store)
+    listings = list_artifacts(store)  # within a name, by creation time: newest last
     if not listings:
         raise SettingsError(f"CAIRN_ARTIFACTS={str(store)!r}: no artifacts there (write one with `cairn export`)")
     names = sorted({a.name for a in listings})
@@ -137,13 +145,21 @@ def resolve_choice(settings: Settings) -> ModelChoice:
         if len(names) > 1:
             raise SettingsError(f"CAIRN_ARTIFACT_NAME is unset and {str(store)!r} holds {len(names)} names ({', '.join(names)}); set it")
         name = names[0]
-    versions = [a.version for a in listings if a.name == name]  # newest last
+    versions = [a for a in listings if a.name == name]
     if not versions:
         raise SettingsError(f"CAIRN_ARTIFACT_NAME={name!r}: not in {str(store)!r} (names: {', '.join(names)})")
-    version = settings.artifact_version or versions[-1]
-    if version not in versions:
-        raise SettingsError(f"CAIRN_ARTIFACT_VERSION={version!r}: {name!r} has no such version (versions: {', '.join(versions)})")
-    return ModelChoice(name, version, settings.recommender)
+    if settings.artifact_version is not None:
+        if settings.artifact_version not in {a.version for a in versions}:
+            listed = ", ".join(a.version for a in versions)
+            raise SettingsError(f"CAIRN_ARTIFACT_VERSION={settings.artifact_version!r}: {name!r} has no such version (versions: {listed})")
+        return [ModelChoice(name, settings.artifact_version, settings.recommender)]
+    good = [a for a in versions if a.problem is None]
+    if not good:
+        problems = "; ".join(f"{a.version}: {a.problem}" for a in versions)
+        raise SettingsError(f"no version of {name!r} verifies ({problems})")
+    for broken in versions[versions.index(good[-1]) + 1 :]:
+        log.warning("NOT serving the newest artifact %s/%s: %s; falling back to an older version", name, broken.version, broken.problem)
+    return [ModelChoice(name, a.version, settings.recommender) for a in reversed(good)]
 
 
 def artifact_path(settings: Settings, name: str, version: str) -> Path:
@@ -170,6 +186,9 @@ class ActiveModel:
         self._retiring: set[asyncio.Task] = set()
         self._retired: list[LoadedModel] = []
         self._refused: tuple[bytes, float] | None = None  # shared choice that failed here, and when; not retried every poll
+        # What loading each artifact ("name/version") here came to: None loaded, else the problem.
+        # The listing reports it: loading (tables, step graph) checks more than the checksums.
+        self.load_results: dict[str, str | None] = {}
 
     @property
     def current(self) -> tuple[LoadedModel, ModelChoice]:
@@ -216,7 +235,12 @@ class ActiveModel:
                 path = artifact_path(self.settings, choice.name, choice.version)
                 if not path.is_dir():
                     raise ArtifactError(f"no artifact {choice.tag} in {str(self.settings.artifacts)!r}")
-                model = await asyncio.to_thread(load_model, path, self.settings.ort_threads, self.settings.max_batch)
+                try:
+                    model = await asyncio.to_thread(load_model, path, self.settings.ort_threads, self.settings.max_batch)
+                except ArtifactError as exc:
+                    self.load_results[choice.tag] = str(exc)
+                    raise
+                self.load_results[choice.tag] = None
                 if self._wrap_model is not None:
                     model.wrap(self._wrap_model)
                 model.start()

@@ -150,20 +150,23 @@ def test_write_refuses_bad_names_clashes_and_inconsistent_tables(tmp_path: Path)
     assert not (tmp_path / "x").exists(), "refused before anything is written"
 
 
-def test_list_orders_versions_and_reports_problems(tmp_path: Path) -> None:
+def test_list_orders_versions_by_creation_and_reports_problems(tmp_path: Path) -> None:
+    import time
+
     for version in ("v10", "v2", "v1"):
         small_artifact(tmp_path, version=version)
+        time.sleep(0.01)  # created_at has millisecond resolution
     small_artifact(tmp_path, name="bench", version="20261202T101500")
     (tmp_path / "garden" / ".v3.tmp").mkdir()  # a write in progress: invisible
-    (tmp_path / "garden" / "stray").mkdir()  # not an artifact
+    (tmp_path / "garden" / "stray").mkdir()  # not an artifact: sorts by the folder's time, the newest here
     (tmp_path / "garden" / "v2" / POPULARITY).write_bytes(b"changed")
     listing = list_artifacts(tmp_path)
     assert [(a.name, a.version) for a in listing] == [
         ("bench", "20261202T101500"),
-        ("garden", "stray"),
-        ("garden", "v1"),
-        ("garden", "v2"),
         ("garden", "v10"),
+        ("garden", "v2"),
+        ("garden", "v1"),
+        ("garden", "stray"),
     ]
     problems = {a.version: a.problem for a in listing}
     assert problems["v1"] is None and problems["v10"] is None
@@ -256,3 +259,24 @@ def test_key_metrics_finds_recall_and_mrr_in_nested_reports() -> None:
     assert key_metrics(report) == "gru-bpr-max.recall@20=0.6123 gru-bpr-max.mrr@20=0.25"
     assert key_metrics({"loss": 1.5, "flag": True}) == "loss=1.5"
     assert key_metrics({}) == "" and key_metrics(None) == ""
+
+
+def test_a_copied_folder_whose_manifest_names_another_artifact_is_refused(tmp_path: Path) -> None:
+    import shutil
+
+    original = small_artifact(tmp_path, "garden", "v1")
+    copy = tmp_path / "garden" / "v2"
+    shutil.copytree(original, copy)
+    with pytest.raises(ArtifactError, match="manifest names garden/v1 but the folder is garden/v2"):
+        verify_artifact(copy)
+    problems = {a.version: a.problem for a in list_artifacts(tmp_path)}
+    assert problems["v1"] is None and "names garden/v1" in problems["v2"]
+
+
+def test_versions_are_ordered_by_creation_time_not_by_name(tmp_path: Path) -> None:
+    import time
+
+    small_artifact(tmp_path, "garden", "v10")
+    time.sleep(0.01)  # created_at has millisecond resolution
+    small_artifact(tmp_path, "garden", "v9")
+    assert [a.version for a in list_artifacts(tmp_path)] == ["v10", "v9"]  # v9 was created last: newest

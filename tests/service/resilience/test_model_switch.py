@@ -64,7 +64,10 @@ def test_each_kind_of_corrupt_artifact_is_refused_and_the_old_one_keeps_serving(
         assert answer["artifact"] == "shop/v1" and answer["served_by"] == "gru"
         assert kit.ids(answer) == offline["v1"].top(["sku-000123"])
         listing = {a["version"]: a for a in c.get("/v1/artifacts").json()["artifacts"]}
-    # The listing verifies checksums and format only; a graph that is whole by its checksums but does
-    # not open (bad-truncated) is caught when a switch loads it, as above.
+    # The listing verifies checksums and format; a graph that is whole by its checksums but does not
+    # open (bad-truncated) is caught when a switch loads it, and the listing then says so.
     assert listing[version]["verified"] is (version == "bad-truncated")
+    assert listing[version]["problem"] and REFUSALS[version] in listing[version]["problem"]
+    assert listing[version]["loadable"] is (False if version == "bad-truncated" else None)
+    assert listing["v1"]["loadable"] is True and listing["v2"]["loadable"] is None  # v2 was never loaded here
     assert str(model_store) not in (listing[version]["problem"] or "")
