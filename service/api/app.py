@@ -26,6 +26,7 @@ from service.api.fast_click import ClickFastPath
 from service.api.metrics import ServiceMetrics
 from service.api.middleware import EdgeMiddleware
 from service.api.routes import router
+from service.api.logs import configure_logging
 from service.config import Settings, load_settings
 from service.errors import CairnError, StoreError
 from service.resilience.guards import Guards
@@ -149,5 +150,8 @@ def _collect(service: Service) -> None:
 
 
 def app_from_environment() -> FastAPI:
-    """Factory for uvicorn worker processes: settings from the environment `cairn serve` prepared."""
-    return create_app(load_settings())
+    """Factory for uvicorn worker processes: settings from the environment `cairn serve` prepared,
+    and the same logging as the parent (a spawned worker inherits none of it)."""
+    settings = load_settings()
+    configure_logging(settings.log_level)
+    return create_app(settings)

@@ -10,9 +10,9 @@ from __future__ import annotations
 
 import argparse
 import importlib.util
-import logging
 import socket
 
+from service.api.logs import configure_logging
 from service.config import RECOMMENDERS, Settings, export_environment, load_settings
 from service.errors import SettingsError
 from service.errors import ArtifactError
@@ -93,7 +93,7 @@ def run(args: argparse.Namespace) -> int:
 
     settings = settings_from_args(args)
     preflight(settings)
-    logging.basicConfig(level=settings.log_level.upper(), format="%(asctime)s %(levelname)s %(name)s[%(process)d]: %(message)s")
+    configure_logging(settings.log_level)
     options = {
         "host": settings.host,
         "port": settings.port,

@@ -123,3 +123,26 @@ def test_sigterm_stops_a_worker_cleanly_and_promptly(model_store, redis_url, tmp
     assert rc in (0, -signal.SIGTERM), log
     assert took < 5, (took, log)  # no request in flight: nothing to wait for, well inside a 30 s grace period (common practice)
     assert "Application shutdown complete" in log and "Finished server process" in log and "Traceback" not in log
+
+
+def test_every_worker_logs_with_time_level_and_its_info_lines(model_store, redis_url, tmp_path):
+    port = free_port()
+    url = f"http://127.0.0.1:{port}"
+    with cairn_serve(
+        ["--workers", "2", "--port", str(port)],
+        tmp_path,
+        lambda: len(worker_of_each_scrape(url, tries=40)) == 2,
+        "cairn serve --workers 2",
+        ignore=(httpx.TransportError,),
+        CAIRN_SESSION_STORE=redis_url,
+        CAIRN_ARTIFACTS=str(model_store),
+        CAIRN_ARTIFACT_NAME="shop",
+        CAIRN_ARTIFACT_VERSION="v1",
+        CAIRN_REDIS_PREFIX=f"wl{os.getpid()}:",
+        CAIRN_LOG_LEVEL="info",
+    ):
+        pids = set(worker_of_each_scrape(url))
+    log = (tmp_path / "serve.log").read_text()
+    # "2026-12-03 07:40:01,123 INFO cairn.service[4242]: ready: shop/v1 (gru), ..." from each worker.
+    line = re.compile(r"^\d{4}-\d\d-\d\d \d\d:\d\d:\d\d,\d{3} INFO cairn\.service\[(\d+)\]: ready: shop/v1", re.M)
+    assert pids <= set(line.findall(log)), log[-3000:]
