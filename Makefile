@@ -8,7 +8,7 @@ STAMP := $(VENV)/.installed-stamp
 DEMO_DATA := data/demo
 DEMO_REPORTS := reports/demo
 
-.PHONY: demo test bench redis-server clean
+.PHONY: demo test bench fuzz redis-server clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -26,6 +26,11 @@ redis-server:
 # A crash in native code while tests run prints every thread's Python stack instead of a bare signal.
 test: $(STAMP) redis-server
 	PYTHONFAULTHANDLER=1 $(BIN)/python -m pytest
+
+# A long random schemathesis run against the live OpenAPI document (make test runs a short one).
+FUZZ_EXAMPLES ?= 2000
+fuzz: $(STAMP)
+	FUZZ_EXAMPLES=$(FUZZ_EXAMPLES) $(BIN)/python -m pytest tests/service/api/test_fuzz.py
 
 # The demo shop: scale 3 (about 780,000 training clicks) is what the GRU needs to get near the
 # oracle; the scenario itself is fixed. Each loss trains with early stopping on validation MRR@20.

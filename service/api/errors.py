@@ -17,6 +17,7 @@ from service.api.middleware import error_body
 from service.api.schemas import SESSION_ID_CHARS, SESSION_ID_MAX
 
 _SHOWN = 40  # characters of a bad value quoted back
+_FASTAPI_PARSE_FAILURE = "There was an error parsing the body"  # FastAPI's detail when json.loads raises a non-JSON error
 
 
 class ApiError(Exception):
@@ -43,7 +44,7 @@ def describe_validation(errors: list[dict[str, Any]]) -> tuple[int, str, str, st
         return 415, "unsupported_media_type", "send the body as a JSON object with Content-Type: application/json", "content-type"
     # A union field (item id: text or integer) fails once per member; say all that was expected.
     same = [e for e in errors if len(e.get("loc", ())) > 1 and str(e["loc"][1]) == field] or [first]
-    messages = list(dict.fromkeys(str(e.get("msg", "invalid")) for e in same))
+    messages = list(dict.fromkeys(str(e.get("msg", "invalid")).removeprefix("Value error, ") for e in same))
     lead = "Input should be "
     if len(messages) > 1 and all(m.startswith(lead) for m in messages):
         messages = [lead + " or ".join(m.removeprefix(lead) for m in messages)]
@@ -68,6 +69,11 @@ def install_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(StarletteHTTPException)
     async def _http(request: Request, exc: StarletteHTTPException) -> Response:
+        if exc.status_code == 400 and exc.detail == _FASTAPI_PARSE_FAILURE:
+            # json.loads raised something other than a syntax error: invalid UTF-8, nesting deeper
+            # than the parser's recursion limit, or an integer longer than Python converts (4300 digits).
+            message = "request body could not be read as JSON (invalid UTF-8, nesting too deep, or a number too long)"
+            return json_error(400, "malformed_json", message, "body")
         codes = {404: "not_found", 405: "method_not_allowed"}
         message = {404: "no such route", 405: "method not allowed on this route"}.get(exc.status_code, str(exc.detail))
         return json_error(exc.status_code, codes.get(exc.status_code, "http_error"), message, None, getattr(exc, "headers", None))

@@ -18,7 +18,7 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Path, Query, Request
 from fastapi.exceptions import RequestValidationError
-from fastapi.responses import Response
+from fastapi.responses import PlainTextResponse, Response
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from pydantic import ValidationError
 
@@ -198,7 +198,7 @@ async def get_artifacts(service: ServiceDep) -> dict[str, Any]:
 @router.put(
     "/v1/serving",
     response_model=ServingAnswer,
-    responses={code: {"model": ErrorAnswer} for code in (401, 403, 404, 409, 422, 503)},
+    responses={code: {"model": ErrorAnswer} for code in (400, 401, 403, 404, 409, 413, 422, 503)},
     summary="Choose what serves: the artifact (and recommender), at run time",
     tags=["artifacts"],
     openapi_extra={"requestBody": {"required": True, "content": {"application/json": {"schema": ServingChoiceBody.model_json_schema()}}}},
@@ -280,6 +280,12 @@ def _without_paths(message: str, model_store: PathLike) -> str:
     return message
 
 
-@router.get("/metrics", summary="Prometheus text format 0.0.4", tags=["operations"])
+@router.get(
+    "/metrics",
+    summary="Prometheus text format 0.0.4",
+    tags=["operations"],
+    response_class=PlainTextResponse,
+    responses={200: {"content": {CONTENT_TYPE: {"schema": {"type": "string"}}}, "description": "the service's metrics"}},
+)
 async def metrics(service: ServiceDep) -> Response:
     return Response(service.metrics.render(), media_type=CONTENT_TYPE)

@@ -9,7 +9,7 @@ from __future__ import annotations
 import re
 from typing import Annotated, Any
 
-from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictInt, StringConstraints, field_validator
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, StrictBool, StringConstraints, field_validator
 
 SESSION_ID_PATTERN = r"^[A-Za-z0-9._:-]+$"
 SESSION_ID_CHARS = "letters, digits and - _ . :"
@@ -27,11 +27,26 @@ EVENT_ID_MAX = 128
 COUNT_MIN, COUNT_MAX = 1, 100
 BUDGET_MIN, BUDGET_MAX = 1, 10_000
 
-_Int64 = Annotated[StrictInt, Field(ge=-(2**63), le=2**63 - 1)]
-ItemId = Annotated[str, StringConstraints(strict=True, min_length=1, max_length=ITEM_ID_MAX)] | _Int64
-EventId = Annotated[str, StringConstraints(strict=True, min_length=1, max_length=EVENT_ID_MAX)] | _Int64
-Count = Annotated[StrictInt, Field(ge=COUNT_MIN, le=COUNT_MAX, description="items to return")]
-BudgetMs = Annotated[StrictInt, Field(ge=BUDGET_MIN, le=BUDGET_MAX, description="time budget of this request in ms")]
+
+def _integral(value: Any) -> int:
+    """An integer, or a float with no fractional part (JSON Schema's "integer" accepts 244.0, JSON
+    Schema 2020-12 validation, section 6.1.1); never a bool or a string."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise ValueError("Input should be a valid integer")
+    if isinstance(value, float):
+        if not value.is_integer():
+            raise ValueError("Input should be a valid integer, without a fractional part")
+        return int(value)
+    return value
+
+
+# Integers that every JSON parser reads exactly: |n| <= 2**53 - 1 (I-JSON, RFC 7493 section 2.2).
+# Larger ids are sent as strings.
+_SafeInt = Annotated[int, Field(ge=-(2**53 - 1), le=2**53 - 1), BeforeValidator(_integral)]
+ItemId = Annotated[str, StringConstraints(strict=True, min_length=1, max_length=ITEM_ID_MAX)] | _SafeInt
+EventId = Annotated[str, StringConstraints(strict=True, min_length=1, max_length=EVENT_ID_MAX)] | _SafeInt
+Count = Annotated[int, Field(ge=COUNT_MIN, le=COUNT_MAX, description="items to return"), BeforeValidator(_integral)]
+BudgetMs = Annotated[int, Field(ge=BUDGET_MIN, le=BUDGET_MAX, description="time budget of this request in ms"), BeforeValidator(_integral)]
 
 
 class ClickRequest(BaseModel):

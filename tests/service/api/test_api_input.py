@@ -41,6 +41,8 @@ def check_error(r, status: int, field: str) -> dict:
         ({**GOOD, "count": 0}, "count"),  # count outside 1..100
         ({**GOOD, "count": 101}, "count"),
         ({**GOOD, "count": "10"}, "count"),
+        ({**GOOD, "count": 3.5}, "count"),  # an integer with a fraction is no integer
+        ({**GOOD, "count": True}, "count"),
         ({**GOOD, "budget_ms": 0}, "budget_ms"),  # budget outside 1..10000
         ({**GOOD, "budget_ms": 10001}, "budget_ms"),
         ({**GOOD, "exclude_seen": "yes"}, "exclude_seen"),
@@ -87,6 +89,34 @@ def test_malformed_json(server, sid):
         check_error(post(c, sid(), content=b"[1, 2]", headers={"content-type": "application/json"}), 422, "body")
         check_error(post(c, sid(), content=b"", headers={"content-type": "application/json"}), 422, "body")
         check_error(post(c, sid(), content=b"item_id=3", headers={"content-type": "application/x-www-form-urlencoded"}), 415, "content-type")
+
+
+def test_bodies_json_cannot_read_name_the_body(server, sid):
+    # json.loads raises RecursionError, UnicodeDecodeError or ValueError (Python's 4300-digit limit on
+    # int conversion) for these: each is a 400 naming the body, not an anonymous error.
+    deep = b'{"item_id": ' + b"[" * 5000 + b"]" * 5000 + b"}"
+    for raw in [deep, b"[" * 5000 + b"]" * 5000, b'{"item_id": "\xff\xfe"}', b'{"item_id": ' + b"9" * 5000 + b"}"]:
+        with server.client() as c:
+            r = post(c, sid(), content=raw, headers={"content-type": "application/json"})
+        body = check_error(r, 400, "body")
+        assert body["error"] == "malformed_json"
+
+
+def test_integral_floats_are_integers_as_json_schema_says(server, sid):
+    # JSON Schema 2020-12 (validation, section 6.1.1): "integer" matches any number with a zero
+    # fractional part, so 244.0 is a valid budget_ms and 3.0 a valid count.
+    with server.client() as c:
+        r = post(c, sid(), json={**GOOD, "budget_ms": 244.0, "count": 3.0})
+    assert r.status_code == 200, r.text
+    assert len(r.json()["items"]) == 3
+
+
+def test_the_openapi_document_says_what_metrics_and_the_switch_answer(server):
+    with server.client() as c:
+        doc = c.get("/openapi.json").json()
+        assert c.get("/metrics").headers["content-type"].startswith("text/plain")
+    assert "application/json" not in doc["paths"]["/metrics"]["get"]["responses"]["200"]["content"]
+    assert "400" in doc["paths"]["/v1/serving"]["put"]["responses"]  # a switch without a body
 
 
 def test_body_over_16_kb_is_refused_before_parsing(server, sid):
