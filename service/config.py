@@ -58,6 +58,10 @@ class Settings(BaseSettings):
     access_log: bool = False  # uvicorn's access log shows session ids in paths; off unless asked for
     tls_certfile: Path | None = None  # PEM certificate chain: serve HTTPS directly (else plain HTTP behind a TLS proxy)
     tls_keyfile: Path | None = None  # its PEM private key
+    # Slow or stuck clients: a request body must arrive whole within body_timeout_s (else 408), and a
+    # worker holds at most max_connections connections at once (more are answered 503 at once).
+    body_timeout_s: float = Field(5.0, gt=0, le=300)
+    max_connections: int = Field(1000, ge=1, le=100_000)
 
     # Sessions.
     history_length: int = Field(20, ge=1, le=200)  # clicks kept per session (replayed on a model switch)

@@ -93,7 +93,7 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
     app = FastAPI(title="cairn", version=__version__, description=DESCRIPTION, lifespan=lifespan)
     # The last added runs first: the edge (body limit, timing, metrics), then the click fast path.
     app.add_middleware(ClickFastPath)
-    app.add_middleware(EdgeMiddleware, metrics=metrics, store_kind=settings.store_kind)
+    app.add_middleware(EdgeMiddleware, metrics=metrics, store_kind=settings.store_kind, body_timeout_s=settings.body_timeout_s)
     install_handlers(app)
     app.include_router(router)
     return app

@@ -12,6 +12,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import json
 import logging
 import time
@@ -53,11 +54,14 @@ async def send_json_error(send: Send, status: int, error: str, message: str, fie
 
 
 class EdgeMiddleware:
-    def __init__(self, app: ASGIApp, metrics: ServiceMetrics, store_kind: str, max_body: int = MAX_BODY_BYTES) -> None:
+    def __init__(
+        self, app: ASGIApp, metrics: ServiceMetrics, store_kind: str, max_body: int = MAX_BODY_BYTES, body_timeout_s: float = 5.0
+    ) -> None:
         self.app = app
         self.metrics = metrics
         self.store_kind = store_kind
         self.max_body = max_body
+        self.body_timeout_s = body_timeout_s  # a client that sends half a body is not held longer than this
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -103,18 +107,25 @@ class EdgeMiddleware:
             return None
         chunks: list[bytes] = []
         size = 0
-        while True:
-            message = await receive()
-            if message["type"] == "http.disconnect":
-                return None
-            chunk = message.get("body", b"")
-            size += len(chunk)
-            if size > self.max_body:
-                await self._too_large(send)
-                return None
-            chunks.append(chunk)
-            if not message.get("more_body", False):
-                break
+        try:
+            async with asyncio.timeout(self.body_timeout_s):
+                while True:
+                    message = await receive()
+                    if message["type"] == "http.disconnect":
+                        return None
+                    chunk = message.get("body", b"")
+                    size += len(chunk)
+                    if size > self.max_body:
+                        await self._too_large(send)
+                        return None
+                    chunks.append(chunk)
+                    if not message.get("more_body", False):
+                        break
+        except TimeoutError:
+            # RFC 9110, section 15.5.9: 408 when the client did not send a complete request in time;
+            # uvicorn closes the connection after this answer, as the body was not read to its end.
+            await send_json_error(send, 408, "body_timeout", f"request body not received within {self.body_timeout_s:g} s", "body")
+            return None
         body = b"".join(chunks)
         scope["state"]["body"] = body  # the click fast path reads it here, without a second receive
         replayed = False

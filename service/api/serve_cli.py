@@ -105,6 +105,7 @@ def run(args: argparse.Namespace) -> int:
         "access_log": settings.access_log,
         "server_header": False,
         "timeout_graceful_shutdown": 5,
+        "limit_concurrency": settings.max_connections,  # connections and tasks per worker; more get a 503
     }
     if settings.tls_certfile is not None:
         options["ssl_certfile"] = str(settings.tls_certfile)

@@ -69,7 +69,7 @@ class RedisProcess(_RedisProcess):
 
 
 @contextlib.contextmanager
-def serve_app(app: object, log_level: str = "warning", access_log: bool = True) -> Iterator[str]:
+def serve_app(app: object, log_level: str = "warning", access_log: bool = True, limit_concurrency: int | None = None) -> Iterator[str]:
     """`app` on one uvicorn (uvloop, httptools) in a thread on a pre-bound loopback socket; yields its
     base URL and stops the server on exit. `access_log` defaults to uvicorn's own default."""
     sock = socket.socket()
@@ -79,7 +79,7 @@ def serve_app(app: object, log_level: str = "warning", access_log: bool = True) 
     # Shutdown waits for open connections at most 5 s, as `cairn serve` does.
     config = uvicorn.Config(
         app, loop="uvloop", http="httptools", lifespan="on", log_level=log_level, access_log=access_log, log_config=None,
-        timeout_graceful_shutdown=5,
+        timeout_graceful_shutdown=5, limit_concurrency=limit_concurrency,
     )  # fmt: skip
     server = uvicorn.Server(config)
     thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
@@ -134,7 +134,7 @@ def serve_in_thread(settings: Settings, **app_kwargs: object) -> Iterator[Runnin
     from service.api.app import create_app
 
     app = create_app(settings, **app_kwargs)
-    with serve_app(app, log_level=settings.log_level, access_log=settings.access_log) as url:
+    with serve_app(app, log_level=settings.log_level, access_log=settings.access_log, limit_concurrency=settings.max_connections) as url:
         yield RunningServer(url, settings, app)
 
 
