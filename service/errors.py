@@ -6,6 +6,7 @@ CairnError                 base of everything cairn raises on purpose
  ├── InputDataError        a click log or prepared data set that cannot be used (names file, column, row)
  ├── ArtifactError         a model artifact that is missing, corrupt or of another format
  ├── StoreError            the session store failed or timed out
+ │    └── StoreWriteUnknownError  a write was sent but no answer came: it may or may not have landed
  ├── StepError             ONNX Runtime failed running a model step
  ├── ModelNotReadyError    a request arrived before the first artifact was loaded
  ├── ScenarioError         a demo-scenario parameter that cannot be used (offline/demo)
@@ -38,6 +39,11 @@ class ArtifactError(CairnError):
 
 class StoreError(CairnError):
     """The session store failed or timed out."""
+
+
+class StoreWriteUnknownError(StoreError):
+    """A write was sent to the session store but its answer did not come within the request's
+    budget (or the connection broke while waiting): the store may or may not hold it."""
 
 
 class StepError(CairnError):

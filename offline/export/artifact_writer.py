@@ -263,8 +263,10 @@ def write_random_artifact(
     neighbours: int = 20,
     seed: int = 0,
     overwrite: bool = False,
+    item_ids: list[str] | None = None,
 ) -> Path:
-    """An artifact with random weights and tables, for benchmarks and service tests.
+    """An artifact with random weights and tables, for benchmarks and service tests (item ids
+    sku-000000... unless given).
 
     The cost of a step depends on the sizes only, not on the weights, so this times the real thing.
     """
@@ -299,7 +301,7 @@ def write_random_artifact(
         name,
         version,
         step_graph=build_step_graph(model),
-        item_ids=[f"sku-{i:06d}" for i in range(n_items)],
+        item_ids=item_ids if item_ids is not None else [f"sku-{i:06d}" for i in range(n_items)],
         neighbour_items=table_items,
         neighbour_scores=table_scores,
         popularity=popularity,

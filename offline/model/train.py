@@ -16,11 +16,13 @@ from __future__ import annotations
 
 import ctypes
 import itertools
+import json
 import math
 import shutil
 import time
 from collections.abc import Callable, Iterable
 from dataclasses import asdict, dataclass, field
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
@@ -35,6 +37,7 @@ from offline.evaluate.next_clicks import iterate_events, target_ranks
 from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint
 from offline.evaluate.gru_scorer import TorchGRUScorer
 from offline.model.losses import LOSS_NAMES, LossFn, get_loss, negative_mask
+from offline.model.progress import LineProgress, epoch_progress
 
 OPTIMIZERS = ("adagrad", "adam")
 ALL_ITEMS = "all"  # TrainSettings.negatives: every item is a negative of every row (EveryItem)
@@ -48,6 +51,7 @@ AUTO_SAMPLED = 2_048
 CUTOFF = 20  # validation ranks the target among all items; MRR@20 is the early-stopping metric
 VALID_BATCH = 512  # validation sessions side by side: one [512, n_items] score matrix at a time
 BEST = "best.pt"
+EPOCH_LOG = "training_log.jsonl"  # one JSON object per epoch, beside the checkpoints; readable without torch
 _M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3  # mallopt() parameters, from glibc's malloc.h
 
 
@@ -138,7 +142,7 @@ def train_epoch(
     optimizers: list[torch.optim.Optimizer],
     batch_size: int,
     max_steps: int | None = None,
-    progress: tqdm | None = None,
+    progress: tqdm | LineProgress | None = None,
 ) -> EpochStats:
     """One pass over `steps` (or its first `max_steps`); the model is left in train mode."""
     model.train()
@@ -225,6 +229,19 @@ def check_data(data: PreparedData, batch_size: int) -> None:
         raise InputDataError("valid split has no session of two or more clicks: nothing to early-stop on")
 
 
+def append_epoch_log(path: Path, record: dict[str, Any]) -> None:
+    """One line per epoch: epoch, train_loss, train_clicks, clicks_per_second, valid {metric: value},
+    seconds, finished_at (UTC). Appended, so a run stopped half way still left its epochs."""
+    line = {**record, "finished_at": datetime.now(timezone.utc).isoformat(timespec="seconds")}
+    with open(path, "a", encoding="utf-8") as f:
+        f.write(json.dumps(line) + "\n")
+
+
+def read_epoch_log(path: Path) -> list[dict[str, Any]]:
+    """The records `append_epoch_log` wrote (no torch needed)."""
+    return [json.loads(line) for line in Path(path).read_text(encoding="utf-8").splitlines() if line.strip()]
+
+
 def train(
     data: PreparedData,
     config: GRUConfig,
@@ -250,6 +267,7 @@ def train(
     out = Path(out)
     try:
         out.mkdir(parents=True, exist_ok=True)
+        (out / EPOCH_LOG).unlink(missing_ok=True)  # this run's epochs only
     except OSError as exc:
         raise TrainingError(f"cannot write checkpoints into {out}: {exc.strerror or exc}") from exc
     hyperparameters = hyperparameters or {**asdict(settings), **asdict(config)}
@@ -270,8 +288,8 @@ def train(
     result = TrainResult(best_epoch=0, best_metrics={})
     best_value, since_best = -math.inf, 0
     for epoch in range(1, settings.epochs + 1):
-        with tqdm(total=batches.n_events, desc=f"epoch {epoch}", unit="click", unit_scale=True,
-                  disable=None if progress is None else not progress, leave=False) as bar:
+        epoch_started = time.perf_counter()
+        with epoch_progress(batches.n_events, f"epoch {epoch}", progress) as bar:
             stats = train_epoch(model, batches, sampler, loss_fn, optimizers, settings.batch_size, progress=bar)
         if not math.isfinite(stats.loss):
             raise TrainingError(f"training loss became {stats.loss} in epoch {epoch}; try a smaller --lr")
@@ -284,6 +302,7 @@ def train(
             "valid": metrics,
         }
         result.history.append(record)
+        append_epoch_log(out / EPOCH_LOG, {**record, "seconds": round(time.perf_counter() - epoch_started, 3)})
         extra = {
             "epoch": epoch,
             "hyperparameters": hyperparameters,

@@ -91,6 +91,7 @@ def answer_json(session_id: str, answer: Answer, timing: Timing) -> bytes:
         "elapsed_ms": round((time.perf_counter() - timing.started) * 1e3, 3),
         "sequence": answer.sequence,
         "duplicate": answer.duplicate,
+        "recorded": answer.recorded,
     }
     return json.dumps(body, separators=(",", ":")).encode()
 

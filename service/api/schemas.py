@@ -7,7 +7,7 @@ Session ids are opaque to the service: 1-128 characters from SESSION_ID_CHARS (l
 from __future__ import annotations
 
 import re
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, StrictBool, StringConstraints, field_validator
 
@@ -84,8 +84,12 @@ class RecommendationAnswer(BaseModel):
         )
     )
     elapsed_ms: float
-    sequence: int = Field(description="clicks this visit has applied; 0 with store_unavailable or deadline: this click was not recorded")
+    sequence: int = Field(description="clicks this visit has applied; 0 when this click is not known to be recorded")
     duplicate: bool = Field(False, description="true when the click's event_id was applied before; nothing was applied now")
+    recorded: Literal["yes", "no", "unknown"] = Field(
+        description="is this click in the session store: yes; no (nothing written; a GET records nothing); "
+        "unknown (the write was sent, its answer did not come in time: retry with the same event_id)"
+    )
 
 
 class ServingChoiceBody(BaseModel):

@@ -92,8 +92,8 @@ def run(args: argparse.Namespace) -> int:
     import uvicorn
 
     settings = settings_from_args(args)
+    configure_logging(settings.log_level)  # before the preflight, whose warnings are worth their time stamp
     preflight(settings)
-    configure_logging(settings.log_level)
     options = {
         "host": settings.host,
         "port": settings.port,

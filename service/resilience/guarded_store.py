@@ -13,10 +13,14 @@ import time
 from collections.abc import Awaitable, Callable
 from typing import Any
 
-from service.errors import StoreError
+from service.errors import StoreError, StoreWriteUnknownError
 from service.resilience.guards import Guards
 from service.runtime.timing import Timing
 from service.store.base import SessionStore
+
+class _Refused(StoreError):
+    """The breaker refused the call: nothing was sent."""
+
 
 MIN_STORE_WAIT_S = 0.002  # least time a store call gets; a loopback Redis round trip is 0.1-0.3 ms (measured)
 
@@ -35,7 +39,15 @@ class GuardedStore:
         return await self._call(self.store.load, (session_id,), session_id, deadline, timing)
 
     async def save(self, session_id: str, value: bytes, expected: bytes, deadline: float, timing: Timing) -> bool:
-        return await self._call(self.store.save, (session_id, value, expected), session_id, deadline, timing)
+        """True when the write landed, False when the check-and-set lost (nothing written);
+        StoreError when it was never sent (breaker open), StoreWriteUnknownError when it was sent
+        and no answer came in time: the caller must not claim either outcome."""
+        try:
+            return await self._call(self.store.save, (session_id, value, expected), session_id, deadline, timing)
+        except _Refused:
+            raise
+        except StoreError as exc:
+            raise StoreWriteUnknownError(f"the write's outcome is unknown ({exc})") from exc
 
     async def delete(self, session_id: str, deadline: float, timing: Timing) -> None:
         await self._call(self.store.delete, (session_id,), session_id, deadline, timing)
@@ -50,7 +62,7 @@ class GuardedStore:
             breaker = self.guards.store_breaker(self.store.shard_of(session_id))
             ticket = breaker.allow()
             if ticket is None:
-                raise StoreError(f"circuit breaker {breaker.name} is open")
+                raise _Refused(f"circuit breaker {breaker.name} is open")
             left = deadline - t0
             try:
                 async with asyncio.timeout(left if left > MIN_STORE_WAIT_S else MIN_STORE_WAIT_S):

@@ -18,7 +18,11 @@ left of the budget; loading and saving go through the guarded store
 when the model gate admits it and under its deadline (service/resilience/model_gate.py).
 This module holds the click logic alone.
 Fallback reasons: unknown_item, no_history, budget, deadline, model_unavailable, model_error,
-store_unavailable. An answer with sequence 0 and store_unavailable or deadline did not record the click.
+store_unavailable. Whether the click is in the store, the answer says in `recorded`, truthfully:
+"yes" (stored now, or before under the same event_id), "no" (nothing was written: the store or the
+visit's lock was not reached in time, or the breaker was open), "unknown" (the write was sent and no
+answer came within the budget: it may have landed; a retry with the same event_id is never applied
+twice).
 Nothing here logs item ids or hidden states.
 """
 
@@ -32,7 +36,7 @@ from contextlib import asynccontextmanager
 from dataclasses import dataclass
 
 from service.config import RecommenderKind
-from service.errors import StoreError
+from service.errors import StoreError, StoreWriteUnknownError
 from service.resilience.guarded_store import GuardedStore
 from service.resilience.guards import Guards
 from service.resilience.model_gate import Admission, ModelGate
@@ -56,8 +60,9 @@ class Answer:
     served_by: str  # gru | neighbours | popularity
     artifact: str  # "name/version" of the artifact that answered
     fallback_reason: str | None
-    sequence: int  # clicks the visit has applied; 0 with store_unavailable or deadline: this click was not recorded
+    sequence: int  # clicks the visit has applied; 0 when the click is not known to be recorded
     duplicate: bool = False
+    recorded: str = "yes"  # yes | no | unknown: is this click in the session store (see the module docstring)
 
 
 class _LockWaitExpired(Exception):
@@ -154,9 +159,10 @@ class Visits:
             # With the guards on, the store breaker logs outages as they start and end; one line per
             # request would flood the log while one lasts.
             (log.debug if self.store.guarded else log.warning)("session store unavailable, answering without the visit: %s", exc)
-            return self._without_visit(item_id, count, exclude_seen, "store_unavailable")
+            recorded = "unknown" if isinstance(exc, StoreWriteUnknownError) else "no"
+            return self._without_visit(item_id, count, exclude_seen, "store_unavailable", recorded)
         except _LockWaitExpired:
-            return self._without_visit(item_id, count, exclude_seen, "deadline")
+            return self._without_visit(item_id, count, exclude_seen, "deadline", "no")
 
     async def current(self, session_id: str, count: int, exclude_seen: bool, budget_s: float, timing: Timing) -> Answer:
         deadline = timing.started + budget_s
@@ -165,8 +171,11 @@ class Visits:
             state = self._decode(await self.store.load(session_id, deadline, timing))
         except StoreError as exc:
             (log.debug if self.store.guarded else log.warning)("session store unavailable, answering without the visit: %s", exc)
-            return self._answer(model, model.popularity.top(count), "popularity", "store_unavailable", 0)
-        return await self._current(model, RecommenderKind(choice.recommender), state, count, exclude_seen, deadline, timing)
+            answer = self._answer(model, model.popularity.top(count), "popularity", "store_unavailable", 0)
+        else:
+            answer = await self._current(model, RecommenderKind(choice.recommender), state, count, exclude_seen, deadline, timing)
+        answer.recorded = "no"  # a request without a click records nothing
+        return answer
 
     async def forget(self, session_id: str, budget_s: float, timing: Timing) -> None:
         """Delete the visit; StoreError when the store cannot (the caller answers 503)."""
@@ -305,13 +314,15 @@ class Visits:
 
     # -- helpers --------------------------------------------------------------------------------
 
-    def _without_visit(self, item_id: str, count: int, exclude_seen: bool, reason: str) -> Answer:
-        """The clicked item's neighbours (popularity for an unknown item), the click not recorded."""
+    def _without_visit(self, item_id: str, count: int, exclude_seen: bool, reason: str, recorded: str) -> Answer:
+        """The clicked item's neighbours (popularity for an unknown item); the click not known to be stored."""
         model, _ = self.active.current
         index = model.index_of(item_id)
         seen = frozenset(model.known_indices((item_id,))) if exclude_seen else _NO_SEEN
         ranking, served_by = self._fallback(model, index, count, seen)
-        return self._answer(model, ranking, served_by, reason, 0)
+        answer = self._answer(model, ranking, served_by, reason, 0)
+        answer.recorded = recorded
+        return answer
 
     @staticmethod
     def _decode(raw: bytes | None) -> SessionState | None:

@@ -174,3 +174,27 @@ def test_benchmark_reports_each_batch_size(tmp_path: Path) -> None:
     report = json.loads(out.read_text())
     assert [r["batch_size"] for r in report["results"]] == [8, 16]
     assert all(r["median_clicks_per_second"] > 0 and len(r["window_clicks_per_second"]) == 2 for r in report["results"])
+
+
+def test_each_run_leaves_an_epoch_log_readable_without_torch(data_dir: Path, tmp_path: Path) -> None:
+    from offline.model.train import EPOCH_LOG
+
+    assert train(data_dir, tmp_path, "--epochs", "2", "--patience", "0") == 0
+    assert train(data_dir, tmp_path, "--epochs", "2", "--patience", "0") == 0  # a second run replaces the log
+    lines = (tmp_path / EPOCH_LOG).read_text().splitlines()
+    records = [json.loads(line) for line in lines]  # plain JSON Lines: no torch needed to read them
+    assert [r["epoch"] for r in records] == [1, 2]
+    for r in records:
+        assert {"train_loss", "train_clicks", "clicks_per_second", "valid", "seconds", "finished_at"} <= set(r)
+        assert r["valid"]["mrr@20"] >= 0 and r["clicks_per_second"] > 0 and r["seconds"] > 0
+
+
+def test_progress_in_a_pipe_is_plain_lines() -> None:
+    from offline.model.progress import LineProgress
+
+    lines: list[str] = []
+    bar = LineProgress(total=1000, desc="epoch 3", every_s=0.0, write=lines.append)
+    bar.set_postfix(loss="1.2500")
+    bar.update(250)
+    assert lines[-1].startswith("epoch 3: 25% (250 of 1,000 clicks), ") and lines[-1].endswith("loss 1.2500")
+    assert "\r" not in "".join(lines)

@@ -65,7 +65,7 @@ def test_cairn_serve_over_https(certificate, model_store, tmp_path):
 def test_cairn_serve_refuses_a_missing_or_broken_certificate(certificate, model_store, tmp_path):
     cert, key = certificate
     env = environment_without_cairn()
-    base = [sys.executable, "-m", "service.cli", "serve", "--artifacts", str(model_store), "--port", str(free_port())]
+    base = [sys.executable, "-m", "service.cli", "serve", "--artifacts", str(model_store), "--artifact-version", "v1", "--port", str(free_port())]
     r = subprocess.run([*base, "--tls-certfile", str(tmp_path / "none.pem"), "--tls-keyfile", str(key)], env=env, capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and "--tls-certfile" in r.stderr and "no such file" in r.stderr and r.stderr.count("\n") == 1, r.stderr
     r = subprocess.run([*base, "--tls-certfile", str(key), "--tls-keyfile", str(cert)], env=env, capture_output=True, text=True, timeout=60)
