@@ -91,6 +91,7 @@ class Settings(BaseSettings):
     latency_quantile: float = Field(0.95, gt=0, le=1)  # the model may start only if this quantile of its steps fits
     latency_window: int = Field(256, ge=8, le=100_000)  # recent calls the quantile is taken over
     latency_max_age_s: float = Field(30.0, gt=0, le=3600)  # older samples leave the window
+    latency_probe_s: float = Field(1.0, gt=0, le=3600)  # no model sample this long and an idle loop: one call runs to measure again
     # A breaker opens when, over `window_s`, at least `min_calls` calls were made and `failure_ratio`
     # of them failed or timed out; after `cool_down_s` it lets `trial_calls` calls through, and
     # closes when they all succeed.

@@ -30,6 +30,7 @@ from service.api.logs import configure_logging
 from service.config import Settings, load_settings
 from service.errors import CairnError, StoreError
 from service.resilience.guards import Guards
+from service.resilience.loop_lag import LoopLag
 from service.runtime.active import ActiveModel, ModelChoice, ModelWrapper, resolve_choices
 from service.runtime.tasks import stop_task
 from service.runtime.visits import Visits
@@ -56,6 +57,8 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
         guards = Guards(settings, on_change=metrics.breaker_changed)
         active = ActiveModel(settings, session_store, wrap_model=wrap_model, on_replaced=guards.model_replaced)
         follower: asyncio.Task | None = None
+        lag_task: asyncio.Task | None = None
+        loop_lag = LoopLag() if guards.enabled else None
         # The memory store is its own cache; a shared store's reads are worth saving.
         recent = None
         if session_store.kind != "memory" and settings.state_cache_entries > 0:
@@ -70,12 +73,17 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
                 settings=settings,
                 store=session_store,
                 active=active,
-                visits=Visits(session_store, active, settings.history_length, settings.event_memory, guards, recent),
+                visits=Visits(
+                    session_store, active, settings.history_length, settings.event_memory, guards, recent,
+                    loop_lag=loop_lag, probe_after_s=settings.latency_probe_s,
+                ),  # fmt: skip
                 metrics=metrics,
                 guards=guards,
             )
             metrics.registry.on_collect(lambda: _collect(service))
             app.state.service = service
+            if loop_lag is not None:
+                lag_task = asyncio.get_running_loop().create_task(loop_lag.run(), name="cairn-loop-lag")
             if session_store.kind != "memory":
                 follower = asyncio.get_running_loop().create_task(active.follow(), name="cairn-model-follower")
             model, choice = active.current
@@ -87,6 +95,8 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
         finally:
             if follower is not None:
                 await stop_task(follower)  # a single cancel can be lost inside a Redis call
+            if lag_task is not None:
+                await stop_task(lag_task)
             await active.close()
             await session_store.close()
 

@@ -193,7 +193,31 @@ async def get_artifacts(service: ServiceDep) -> dict[str, Any]:
                 "hyperparameters": m.get("hyperparameters") or {},
             }
         )
-    return {"active": _active_answer(choice), "artifacts": artifacts}
+    return {"active": _active_answer(choice), "artifacts": artifacts, "workers": await _workers(service)}
+
+
+async def _workers(service: Service) -> list[dict[str, Any]]:
+    """What every worker sharing this store reported serving at its last poll (this one reports now);
+    workers silent for three polls (at least 2 s) are dropped. Empty when the store cannot be read."""
+    try:
+        await service.active.report()
+        reports = await service.store.serving_reports()
+        now = time.time()
+        stale_after = max(3 * service.settings.model_poll_s, 2.0)
+        workers, gone = [], []
+        for worker, raw in sorted(reports.items()):
+            try:
+                r = json.loads(raw)
+                age = now - float(r["seen_at"])
+                entry = {"worker": worker, "artifact": str(r["artifact"]), "recommender": str(r["recommender"]), "seen_s_ago": round(age, 1)}
+            except (ValueError, KeyError, TypeError):
+                gone.append(worker)
+                continue
+            (gone if age > stale_after else workers).append(worker if age > stale_after else entry)
+        await service.store.forget_workers(gone)
+        return workers
+    except StoreError:
+        return []
 
 
 @router.put(

@@ -124,9 +124,17 @@ class ArtifactEntry(BaseModel):
     hyperparameters: dict[str, Any]
 
 
+class WorkerServing(BaseModel):
+    worker: str = Field(description="host:pid")
+    artifact: str
+    recommender: str
+    seen_s_ago: float = Field(description="seconds since the worker last reported")
+
+
 class ArtifactsAnswer(BaseModel):
     active: ServingAnswer
     artifacts: list[ArtifactEntry]
+    workers: list[WorkerServing] = Field(description="what each worker sharing the session store serves")
 
 
 class ErrorAnswer(BaseModel):

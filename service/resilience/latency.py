@@ -31,12 +31,14 @@ class LatencyWindow:
         self._fresh = 0  # samples since the estimate was computed
         self._estimate = 0.0
         self._computed_at = -math.inf
+        self.last_observed_at = -math.inf  # when the newest sample was taken
 
     def observe(self, seconds: float, now: float) -> None:
         i = self._next
         self._values[i] = seconds
         self._times[i] = now
         self._next = (i + 1) % self.size
+        self.last_observed_at = now
         self._fresh += 1
         if seconds > self._estimate:
             self._fresh = self.refresh_every  # slower than estimated: recompute at the next read

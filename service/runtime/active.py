@@ -18,11 +18,15 @@ every new artifact that starts serving (the model's circuit breaker starts afres
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import gc
 import json
 import logging
+import os
+import socket
+import time
 from collections.abc import Awaitable, Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -36,6 +40,7 @@ from service.runtime.recommenders import GruRecommender, NeighbourRecommender, P
 from service.store.base import SessionStore
 
 log = logging.getLogger("cairn.service")
+WORKER = f"{socket.gethostname()}:{os.getpid()}"  # how this process names itself in the serving reports
 
 RETIRE_AFTER_S = 11.0  # longest request budget (10 s) and a margin: no request still uses the old model
 RETRY_REFUSED_S = 30.0  # a shared choice this process could not load is tried again after this long
@@ -48,19 +53,27 @@ class ModelChoice:
     name: str
     version: str
     recommender: str  # gru | neighbours | popularity
+    # When a switch chose this (epoch seconds); 0.0 for the choice a worker was configured with. Of
+    # two choices the one switched to last wins, so workers agree whatever order they learn them in.
+    switched_at: float = field(default=0.0, compare=False)
 
     @property
     def tag(self) -> str:
         return f"{self.name}/{self.version}"
 
     def to_bytes(self) -> bytes:
-        return json.dumps({"name": self.name, "version": self.version, "recommender": self.recommender}).encode()
+        fields = {"name": self.name, "version": self.version, "recommender": self.recommender, "switched_at": self.switched_at}
+        return json.dumps(fields).encode()
+
+    def supersedes(self, other: ModelChoice) -> bool:
+        """Whether this choice wins over `other`: switched to later (ties broken by name, for a total order)."""
+        return (self.switched_at, self.tag, self.recommender) > (other.switched_at, other.tag, other.recommender)
 
     @classmethod
     def from_bytes(cls, raw: bytes) -> ModelChoice:
         try:
             data = json.loads(raw)
-            choice = cls(str(data["name"]), str(data["version"]), str(data["recommender"]))
+            choice = cls(str(data["name"]), str(data["version"]), str(data["recommender"]), float(data.get("switched_at", 0.0)))
         except (ValueError, KeyError, TypeError) as exc:
             raise StoreError(f"the stored active-model choice is unreadable ({type(exc).__name__})") from exc
         if choice.recommender not in RECOMMENDERS:
@@ -209,12 +222,14 @@ class ActiveModel:
         With `publish`, the choice is written to the store after the artifact loaded and before it
         serves here, so a choice that other workers follow is always one that loads.
         """
-        before_swap = None
+        before_swap: Callable[[], Awaitable[None]] | None = None
         if publish:
+            choice = dataclasses.replace(choice, switched_at=time.time())
 
-            async def before_swap() -> None:
+            async def publish_choice() -> None:
                 await self.store.save_active_model(choice.to_bytes())
 
+            before_swap = publish_choice
         await self._install(choice, before_swap)
         if publish:
             self._refused = None
@@ -274,19 +289,37 @@ class ActiveModel:
         task.add_done_callback(self._retiring.discard)
 
     async def adopt_shared(self) -> None:
-        """Switch to the choice kept in the store if it differs from ours (one poll of `follow`)."""
+        """One poll of `follow`: agree with the shared choice, or put ours back when it is newer or gone.
+
+        The newest switch wins everywhere: a worker serving an older choice adopts the shared one; a
+        worker whose choice is newer than the stored one (the store lost it, say a Redis restarted
+        without persistence, and a restarted worker wrote its configured choice) writes its own back.
+        Then it reports what it serves, for the listing."""
         raw = await self.store.load_active_model()
+        mine = self._current[1] if self._current is not None else None
         now = asyncio.get_running_loop().time()
-        if raw is None or (self._refused is not None and self._refused[0] == raw and now < self._refused[1] + RETRY_REFUSED_S):
+        if raw is None:
+            if mine is not None:
+                await self.store.save_active_model(mine.to_bytes())
+        elif not (self._refused is not None and self._refused[0] == raw and now < self._refused[1] + RETRY_REFUSED_S):
+            choice = ModelChoice.from_bytes(raw)
+            if mine is not None and mine.supersedes(choice):
+                await self.store.save_active_model(mine.to_bytes())
+            elif mine is None or mine != choice or mine.switched_at != choice.switched_at:
+                try:
+                    await self._install(choice)
+                except CairnError as exc:
+                    self._refused = (raw, now)
+                    log.error("cannot follow the shared model choice %s: %s", choice.tag, exc)
+        await self.report()
+
+    async def report(self) -> None:
+        """Tell the store what this worker serves (GET /v1/artifacts lists every worker's report)."""
+        if self._current is None:
             return
-        choice = ModelChoice.from_bytes(raw)
-        if self._current is not None and self._current[1] == choice:
-            return
-        try:
-            await self._install(choice)
-        except CairnError as exc:
-            self._refused = (raw, now)
-            log.error("cannot follow the shared model choice %s: %s", choice.tag, exc)
+        choice = self._current[1]
+        value = {"artifact": choice.tag, "recommender": choice.recommender, "switched_at": choice.switched_at, "seen_at": time.time()}
+        await self.store.report_serving(WORKER, json.dumps(value).encode())
 
     async def follow(self) -> None:
         """Poll the shared choice until cancelled; store trouble is logged (once per outage) and retried at the next poll."""

@@ -39,6 +39,7 @@ from service.config import RecommenderKind
 from service.errors import StoreError, StoreWriteUnknownError
 from service.resilience.guarded_store import GuardedStore
 from service.resilience.guards import Guards
+from service.resilience.loop_lag import LoopLag
 from service.resilience.model_gate import Admission, ModelGate
 from service.runtime.active import ActiveModel, LoadedModel
 from service.runtime.recommenders import GruState, Ranking
@@ -112,9 +113,11 @@ class Visits:
         event_memory: int,
         guards: Guards | None = None,
         recent: RecentWrites | None = None,
+        loop_lag: LoopLag | None = None,
+        probe_after_s: float = 1.0,
     ) -> None:
         self.store = GuardedStore(store, guards)
-        self.gate = ModelGate(guards)
+        self.gate = ModelGate(guards, loop_lag, probe_after_s)
         self.active = active
         self.history_length = history_length
         self.event_memory = event_memory

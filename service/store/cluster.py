@@ -34,6 +34,7 @@ class RedisClusterStore(RedisCommands):
         self.ttl_ms = max(1, int(round(ttl_s * 1000)))
         self._session_prefix = f"{prefix}s:"
         self._active_key = f"{prefix}active-model"
+        self._serving_key = f"{prefix}serving-workers"
         try:
             nodes, user, password, tls = cluster_nodes(url)
             self._client = RedisCluster(

@@ -24,6 +24,7 @@ class MemoryStore:
         self._clock = clock
         self._entries: OrderedDict[str, tuple[bytes, float]] = OrderedDict()  # id -> (value, expires at), LRU first
         self._active_model: bytes | None = None
+        self._serving: dict[str, bytes] = {}
 
     def __len__(self) -> int:
         return len(self._entries)
@@ -60,6 +61,16 @@ class MemoryStore:
 
     async def save_active_model(self, value: bytes) -> None:
         self._active_model = value
+
+    async def report_serving(self, worker: str, value: bytes) -> None:
+        self._serving[worker] = value
+
+    async def serving_reports(self) -> dict[str, bytes]:
+        return dict(self._serving)
+
+    async def forget_workers(self, workers: list[str]) -> None:
+        for worker in workers:
+            self._serving.pop(worker, None)
 
     async def ping(self) -> None:
         return None

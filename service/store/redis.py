@@ -73,6 +73,7 @@ class RedisCommands:
     _client: Any
     _session_prefix: str
     _active_key: str
+    _serving_key: str
     ttl_ms: int
 
     def key(self, session_id: str) -> str:
@@ -92,6 +93,17 @@ class RedisCommands:
 
     async def save_active_model(self, value: bytes) -> None:
         await self._call("SET", self._client.set(self._active_key, value))
+
+    async def report_serving(self, worker: str, value: bytes) -> None:
+        await self._call("HSET", self._client.hset(self._serving_key, worker, value))
+
+    async def serving_reports(self) -> dict[str, bytes]:
+        raw = await self._call("HGETALL", self._client.hgetall(self._serving_key))
+        return {(k.decode() if isinstance(k, bytes) else k): v for k, v in raw.items()}
+
+    async def forget_workers(self, workers: list[str]) -> None:
+        if workers:
+            await self._call("HDEL", self._client.hdel(self._serving_key, *workers))
 
     async def ping(self) -> None:
         await self._call("PING", self._client.ping())  # a cluster pings every node: one down is a degraded store
@@ -131,6 +143,7 @@ class RedisStore(RedisCommands):
         self.ttl_ms = max(1, int(round(ttl_s * 1000)))
         self._session_prefix = f"{prefix}s:"
         self._active_key = f"{prefix}active-model"
+        self._serving_key = f"{prefix}serving-workers"
         no_retry = Retry(NoBackoff(), 0)
         try:
             self._pool = aioredis.BlockingConnectionPool.from_url(

@@ -146,3 +146,64 @@ def test_every_worker_logs_with_time_level_and_its_info_lines(model_store, redis
     # "2026-12-03 07:40:01,123 INFO cairn.service[4242]: ready: shop/v1 (gru), ..." from each worker.
     line = re.compile(r"^\d{4}-\d\d-\d\d \d\d:\d\d:\d\d,\d{3} INFO cairn\.service\[(\d+)\]: ready: shop/v1", re.M)
     assert pids <= set(line.findall(log)), log[-3000:]
+
+
+def test_workers_agree_again_after_the_store_forgets_the_switch_and_a_worker_restarts(model_store, tmp_path, token, sid):
+    from tests._support.servers import RedisProcess
+
+    redis = RedisProcess(free_port()).start()
+    port = free_port()
+    url = f"http://127.0.0.1:{port}"
+    try:
+        with cairn_serve(
+            ["--workers", "2", "--port", str(port)],
+            tmp_path,
+            lambda: len(worker_of_each_scrape(url, tries=40)) == 2,
+            "cairn serve --workers 2",
+            ignore=(httpx.TransportError,),
+            CAIRN_SESSION_STORE=redis.url,
+            CAIRN_ARTIFACTS=str(model_store),
+            CAIRN_ARTIFACT_NAME="shop",
+            CAIRN_ARTIFACT_VERSION="v1",
+            CAIRN_ADMIN_TOKEN=token,
+            CAIRN_MODEL_POLL_S="0.2",
+            CAIRN_LOG_LEVEL="warning",
+        ):
+            with fresh(url) as c:
+                assert c.put("/v1/serving", json={"name": "shop", "version": "v2"}, headers={"authorization": f"Bearer {token}"}).status_code == 200
+            assert serving_by_worker(url, until={"v2"}) == {"v2"}
+            old_pids = set(worker_of_each_scrape(url))
+            redis.kill()  # no persistence: the shared choice is gone ...
+            redis.start()
+            os.kill(int(min(old_pids)), signal.SIGKILL)  # ... and a worker restarts on its configured v1
+            deadline = time.monotonic() + 20
+            while not (set(worker_of_each_scrape(url, tries=60)) - old_pids):
+                assert time.monotonic() < deadline, "uvicorn did not restart the killed worker"
+                time.sleep(0.2)
+            # Every worker serves the newest switch again within seconds.
+            assert serving_by_worker(url, until={"v2"}, within_s=5.0) == {"v2"}
+            with fresh(url) as c:
+                answers = [c.post(f"/v1/sessions/{sid('agree')}/clicks", json={"item_id": "sku-000007"}).json() for _ in range(30)]
+                listing = c.get("/v1/artifacts").json()
+            assert {a["artifact"] for a in answers} == {"shop/v2"}
+            workers = {w["worker"].rsplit(":", 1)[1]: w["artifact"] for w in listing["workers"]}
+            assert set(workers.values()) == {"shop/v2"} and (set(workers) - {str(p) for p in old_pids}), listing["workers"]
+    finally:
+        redis.stop()
+
+
+def serving_by_worker(url: str, until: set[str], within_s: float = 3.0) -> set[str]:
+    """The versions the last 20 answers of /readyz came with (new connections, so both workers
+    answer), polled until they are `until` from two workers or `within_s` passes."""
+    deadline = time.monotonic() + within_s
+    recent: list[tuple[str, str]] = []
+    with fresh(url) as c:
+        while True:
+            ready = c.get("/readyz").json()
+            recent = [*recent, (str(ready["pid"]), ready["active"]["version"])][-20:]
+            versions = {v for _, v in recent}
+            if len(recent) == 20 and versions == until and len({p for p, _ in recent}) >= 2:
+                return versions
+            if time.monotonic() > deadline:
+                return versions
+            time.sleep(0.02)

@@ -62,3 +62,29 @@ def test_the_estimate_is_cached_between_refreshes_but_follows_a_slowdown_at_once
     assert window.estimate(11.0) == 1.0  # ten seconds on: recomputed (the median of 14 samples is now 1)
     window.clear()
     assert window.estimate(11.0) == 0.0
+
+
+def test_a_refused_model_is_probed_only_on_an_idle_loop_and_one_at_a_time() -> None:
+    import time
+
+    from service.config import Settings
+    from service.resilience.guards import Guards
+    from service.resilience.loop_lag import LoopLag
+    from service.resilience.model_gate import Admission, ModelGate
+
+    guards = Guards(Settings())
+    lag = LoopLag()
+    gate = ModelGate(guards, lag, probe_after_s=1.0)
+    now = time.perf_counter()
+    guards.model_latency.observe(0.040, now - 2.0)  # a 40 ms step measured 2 s ago, nothing since
+    deadline = now + 0.020  # 20 ms left: the estimate says no
+    lag.record(0.010)  # a busy loop (10 ms backlog): overload, not a stall
+    assert gate.admit(1, deadline, 0.0) == "budget"
+    for _ in range(10):
+        lag.record(0.0001)  # the loop idles again
+    probe = gate.admit(1, deadline, 0.0)
+    assert isinstance(probe, Admission) and probe.probe
+    assert gate.admit(1, deadline, 0.0) == "budget"  # one probe at a time
+    guards.model_latency.observe(0.001, time.perf_counter())  # a fresh sample: no probe needed for a while
+    gate._probing = False
+    assert gate.admit(1, deadline, 0.0) == "budget"

@@ -93,3 +93,31 @@ def test_a_budget_the_model_would_not_fit_in_is_answered_without_starting_it(sta
         metrics = c.get("/metrics").text
     assert kit.metric(metrics, "cairn_breaker_state", breaker="model") == 0  # not calling the model is no failure of it
     assert kit.metric(metrics, "cairn_fallbacks_total", reason="budget") == 6
+
+
+def test_after_a_short_stall_the_model_answers_again_within_two_seconds(start_server, sid, kit):
+    # A stall lifts the step estimate past what a 25 ms request can hold; nothing refused is ever
+    # measured, so without a probe the neighbour table would answer until the slow samples aged out
+    # (CAIRN_LATENCY_MAX_AGE_S, 30 s here). The idle service probes once a second and comes back.
+    fault = kit.ModelFault()
+    server = start_server("memory", wrap_model=fault.wrap, default_budget_ms=100, latency_probe_s=1.0)
+    with server.client() as c:
+        fault.delay_s = 0.04  # the stall: each step 40 ms, still inside the 100 ms budget, so it is measured
+        for n in range(8):
+            answer = c.post(f"/v1/sessions/{sid('stall')}/clicks", json={"item_id": f"sku-{n:06d}"}).json()
+            assert answer["served_by"] == "gru"
+        fault.delay_s = 0.0  # the stall ends
+        ended = time.monotonic()
+        first = c.post(f"/v1/sessions/{sid('stall')}/clicks", json={"item_id": "sku-000100", "budget_ms": 25}).json()
+        assert first["served_by"] == "neighbours" and first["fallback_reason"] == "budget"  # the estimate still says 40 ms
+        back = None
+        while time.monotonic() - ended < 2.0:
+            answer = c.post(f"/v1/sessions/{sid('stall')}/clicks", json={"item_id": "sku-000101", "budget_ms": 25}).json()
+            if answer["served_by"] == "gru":
+                back = time.monotonic() - ended
+                break
+            time.sleep(0.1)
+        assert back is not None, "the model did not answer again within 2 s of the stall's end"
+        for n in range(5):  # and it stays: the window restarted from the probe's fast sample
+            answer = c.post(f"/v1/sessions/{sid('stall')}/clicks", json={"item_id": f"sku-{n + 200:06d}", "budget_ms": 25}).json()
+            assert answer["served_by"] == "gru", answer
