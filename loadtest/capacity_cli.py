@@ -12,7 +12,7 @@ from pathlib import Path
 from loadtest.capacity import REPORT_KIND, check_sizing, find_capacity
 from service.errors import LoadTestError
 from loadtest.setup import run_load_test
-from loadtest.loadtest_cli import add_load_arguments, add_target_arguments, build_setup, print_summary
+from loadtest.loadtest_cli import add_load_arguments, add_target_arguments, build_setup, print_summary, say
 from loadtest.report import write_report
 
 HEADROOM = 0.7  # plan to run at 70% of measured capacity, room for spikes and a lost replica (common practice)
@@ -36,7 +36,7 @@ def run(args: argparse.Namespace) -> int:
             raise LoadTestError("--service-cores is needed with --url: the service's cores cannot be seen from here")
         cores = float(setup.service.workers)
     check_sizing(cores, args.target_rate, args.headroom)  # before minutes of load, not after
-    report = run_load_test(setup)
+    report = run_load_test(setup, say=say)
     report["kind"] = REPORT_KIND
     report["capacity"] = find_capacity(report, cores, args.target_rate, args.headroom)
     paths = write_report(report, args.report, "capacity")

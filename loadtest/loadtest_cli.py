@@ -11,12 +11,12 @@ from pathlib import Path
 
 from loadtest.budget import Budget
 from service.errors import LoadTestError
-from loadtest.setup import LoadTestSetup, parse_ramp, run_load_test
+from loadtest.setup import LoadTestSetup, parse_ramp, run_load_test, step_line
 from bench.harness.service_process import MODELS, ServiceSpec
 from loadtest.plan import REPLAY_MODES
 from loadtest.report import write_report
 
-SERVE_ONLY = ("recommender", "session_store", "artifacts", "artifact_name", "artifact_version", "workers")
+SERVE_ONLY = ("recommender", "session_store", "artifacts", "artifact_name", "artifact_version", "workers", "port")
 
 
 def add_target_arguments(parser: argparse.ArgumentParser) -> None:
@@ -29,6 +29,7 @@ def add_target_arguments(parser: argparse.ArgumentParser) -> None:
     g.add_argument("--artifact-name", help="with --serve: artifact name (CAIRN_ARTIFACT_NAME)")
     g.add_argument("--artifact-version", help="with --serve: artifact version (CAIRN_ARTIFACT_VERSION)")
     g.add_argument("--workers", type=int, help="with --serve: service worker processes (default 1)")
+    g.add_argument("--port", type=int, help="with --serve: the port to start it on (default: a free loopback port)")
 
 
 def add_load_arguments(parser: argparse.ArgumentParser, ramp_required: bool = False) -> None:
@@ -48,13 +49,22 @@ def add_load_arguments(parser: argparse.ArgumentParser, ramp_required: bool = Fa
     )
     g.add_argument("--step-duration", type=float, default=10.0, help="seconds per ramp step (default 10)")
     g.add_argument("--count", type=int, default=10, help="items asked for per click (default 10)")
-    g.add_argument("--budget-ms", type=int, default=30, help="time budget sent with each click, whole ms (default 30)")
+    g.add_argument(
+        "--budget-ms", type=int, default=30,
+        help="the per-request budget each click asks the service for (its budget_ms field), whole ms (default 30); "
+        "the verdict's limit is --p99-budget-ms",
+    )  # fmt: skip
+    g.add_argument("--warmup", type=float, default=2.0, help="seconds of uncounted clicks before measuring; 0: none (default 2)")
     g.add_argument("--exclude-seen", action="store_true", help="ask the service to leave out items the visit has seen")
     g.add_argument("--think-scale", type=float, default=1.0, help="factor on the log's gaps between clicks; 0: no waiting (default 1)")
     g.add_argument("--max-think", type=float, default=30.0, help="cap of one wait between clicks, s (default 30)")
     g.add_argument("--replay", choices=REPLAY_MODES, default="loop", help="loop over the visits, or replay each once and stop (default loop)")
     b = parser.add_argument_group("page budget")
-    b.add_argument("--p99-budget-ms", type=float, default=50.0, help="p99 latency the page allows, ms (default 50)")
+    b.add_argument(
+        "--p99-budget-ms", type=float, default=50.0,
+        help="the verdict: p99 latency measured at the load generator that the page allows, ms (default 50); "
+        "each click's own budget is --budget-ms",
+    )  # fmt: skip
     b.add_argument("--max-error-rate", type=float, default=0.001, help="share of failed clicks allowed (default 0.001)")
     b.add_argument(
         "--max-fallback-rate",
@@ -112,6 +122,7 @@ def build_setup(args: argparse.Namespace) -> LoadTestSetup:
             artifact_name=args.artifact_name,
             artifact_version=args.artifact_version,
             workers=1 if args.workers is None else args.workers,
+            port=args.port,
         )
     return LoadTestSetup(
         url=args.url,
@@ -128,27 +139,33 @@ def build_setup(args: argparse.Namespace) -> LoadTestSetup:
         think_scale=args.think_scale,
         max_think_s=args.max_think,
         replay=args.replay,
+        warmup_s=_nonnegative("--warmup", args.warmup),
         budget=Budget(p99_ms=args.p99_budget_ms, max_error_rate=args.max_error_rate, max_fallback_rate=args.max_fallback_rate),
     )
 
 
-def print_summary(report: dict, paths: tuple[Path, Path]) -> None:
+def _nonnegative(flag: str, value: float) -> float:
+    if not value >= 0:
+        raise LoadTestError(f"{flag} must be zero or positive, got {value}")
+    return value
+
+
+def say(line: str) -> None:
+    print(line, flush=True)  # flushed: the lines show as they come in a pipe or a CI log too
+
+
+def print_summary(report: dict, paths: tuple[Path, ...]) -> None:
+    print("summary:")
     for row in report["steps"]:
-        lat = row["latency_ms"]
-        target = f"{row['target_rps']:g}/s" if row["target_rps"] is not None else "think-time"
-        print(
-            f"step {row['index']} ({target}): {row['rps']:.1f} req/s, p50 {lat['p50']} ms, p99 {lat['p99']} ms, "
-            f"errors {row['error_rate']:.2%}, hit rate {row['hit_rate']}, generator CPU {row['generator_cpu_percent']:.0f}%"
-            + ("" if row["meets_budget"] else "  <- " + "; ".join(row["failures"]))
-        )
+        print(f"  {step_line(row, len(report['steps']))}, hit rate {row['hit_rate']}, generator CPU {row['generator_cpu_percent']:.0f}%")
     for note in report["load_generator"]["notes"]:
         print(f"note: {note}")
-    print(f"budget {'met' if report['verdict']['met'] else 'NOT met'}; report: {paths[1]} and {paths[0]}")
+    print(f"budget {'met' if report['verdict']['met'] else 'NOT met'}; report: {', '.join(str(p) for p in paths)}")
 
 
 def run(args: argparse.Namespace) -> int:
     setup = build_setup(args)
-    report = run_load_test(setup)
+    report = run_load_test(setup, say=say)
     paths = write_report(report, args.report, "loadtest")
     print_summary(report, paths)
     return 0 if report["verdict"]["met"] else 1

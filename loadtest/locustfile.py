@@ -37,6 +37,7 @@ from loadtest.replay import VisitSet
 from loadtest.stats import NO_FALLBACK, StepStats
 
 CPU_SAMPLE_S = 0.25  # how often a worker samples its own CPU time
+STEP_SETTLE_S = 1.0  # a step's file is written this long after its window, once its last answers came in
 DONE_MESSAGE = "cairn-worker-done"  # worker -> master: all my visitors have left
 
 
@@ -72,6 +73,7 @@ class _WorkerRun:
         if plan.budget_ms is not None:
             self.body_base["budget_ms"] = plan.budget_ms
         self._last_sample = (time.time(), time.process_time())
+        self._steps_written = 0  # steps whose own file is out (the runner prints each as it ends)
         self.sampler = gevent.spawn(self._sample_cpu)
 
     def take_visit(self) -> tuple[int, str] | None:
@@ -103,8 +105,23 @@ class _WorkerRun:
             if self.over:
                 return
             self._sample_cpu_once()
+            self._write_finished_steps()
             if time.time() >= self.end:
                 return
+
+    def _write_finished_steps(self) -> None:
+        """worker-<i>.step-<k>.json for each step that has ended, so the runner can print it as it ends;
+        the run's final file stays the authority (a few late answers may land after this)."""
+        now = time.time()
+        while self._steps_written < self.plan.n_steps:
+            k = self._steps_written
+            if now < self.start + (k + 1) * self.plan.step_duration_s + STEP_SETTLE_S:
+                return
+            out = Path(self.plan.out_dir) / f"worker-{self.worker_index}.step-{k}.json"
+            tmp = out.with_suffix(".tmp")
+            tmp.write_text(json.dumps(self.steps[k].to_json()), encoding="utf-8")
+            os.replace(tmp, out)
+            self._steps_written += 1
 
     def _sample_cpu_once(self) -> None:
         """Add the CPU time used since the last sample to the step of that interval's midpoint."""

@@ -26,20 +26,22 @@ import json
 from pathlib import Path
 from typing import Any
 
+from loadtest.chart import write_chart
 from service.errors import LoadTestError
 
 
-def write_report(report: dict[str, Any], folder: Path, stem: str) -> tuple[Path, Path]:
-    """`<folder>/<stem>.json` and `<folder>/<stem>.md`; returns both paths."""
+def write_report(report: dict[str, Any], folder: Path, stem: str) -> tuple[Path, Path, Path]:
+    """`<folder>/<stem>.json`, `<stem>.md` and `<stem>.png` (p99 and fallbacks by rate); the paths."""
     folder = Path(folder)
     try:
         folder.mkdir(parents=True, exist_ok=True)
-        json_path, md_path = folder / f"{stem}.json", folder / f"{stem}.md"
+        json_path, md_path, png_path = folder / f"{stem}.json", folder / f"{stem}.md", folder / f"{stem}.png"
         json_path.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
-        md_path.write_text(render_markdown(report), encoding="utf-8")
+        write_chart(report, png_path)
+        md_path.write_text(render_markdown(report) + f"\n![p99 and fallbacks by rate]({png_path.name})\n", encoding="utf-8")
     except OSError as exc:
         raise LoadTestError(f"--report {folder}: cannot write the report ({exc})") from exc
-    return json_path, md_path
+    return json_path, md_path, png_path
 
 
 def render_markdown(r: dict[str, Any]) -> str:

@@ -14,6 +14,7 @@ import math
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -38,6 +39,7 @@ class LocustRun:
     locust_failures: int | None
     wall_s: float
     log_dir: Path
+    steps_reported: int = 0  # steps `on_step` was called for while the run went on
 
 
 def default_load_workers(users: int, cpus: int | None, local_service_workers: int) -> int:
@@ -47,8 +49,11 @@ def default_load_workers(users: int, cpus: int | None, local_service_workers: in
     return max(1, min(users, free))
 
 
-def run_locust(plan: LoadPlan, workdir: Path, python: str = sys.executable) -> LocustRun:
-    """Run `plan`; `workdir` receives the plan, the Locust logs and CSV stats, the worker files."""
+def run_locust(
+    plan: LoadPlan, workdir: Path, python: str = sys.executable, on_step: Callable[[int, StepStats], None] | None = None
+) -> LocustRun:
+    """Run `plan`; `workdir` receives the plan, the Locust logs and CSV stats, the worker files.
+    `on_step(k, merged stats)` is called as each step ends (from the workers' step files)."""
     if not LOCUSTFILE.is_file():
         raise LoadTestError(f"{LOCUSTFILE}: the locustfile is missing; reinstall cairn")
     workdir = Path(workdir)
@@ -79,7 +84,10 @@ def run_locust(plan: LoadPlan, workdir: Path, python: str = sys.executable) -> L
         for w in range(plan.load_workers):
             procs.append((f"worker {w}", _spawn(worker_cmd, workdir / f"locust-worker-{w}.log", workdir)))
         master = procs[0][1]
+        reported = 0
         while master.poll() is None:
+            if on_step is not None and reported < plan.n_steps:
+                reported = _report_finished_steps(out_dir, plan, reported, on_step)
             if time.monotonic() > deadline:
                 raise LoadTestError(f"Locust did not finish by its deadline; logs in {workdir}")
             for name, p in procs[1:]:
@@ -100,7 +108,7 @@ def run_locust(plan: LoadPlan, workdir: Path, python: str = sys.executable) -> L
                 _stop(p)
     wall = time.monotonic() - start
 
-    files = sorted(out_dir.glob("worker-*.json"))
+    files = sorted(f for f in out_dir.glob("worker-*.json") if f.stem.removeprefix("worker-").isdigit())  # not the step files
     if len(files) != plan.load_workers:
         raise LoadTestError(
             f"{len(files)} of {plan.load_workers} Locust workers wrote their stats; logs in {workdir}:\n{_tail(workdir, 'master')}"
@@ -117,7 +125,23 @@ def run_locust(plan: LoadPlan, workdir: Path, python: str = sys.executable) -> L
         locust_failures=failures,
         wall_s=wall,
         log_dir=workdir,
+        steps_reported=reported,
     )
+
+
+def _report_finished_steps(out_dir: Path, plan: LoadPlan, reported: int, on_step: Callable[[int, StepStats], None]) -> int:
+    """Call `on_step` for each next step every worker has written; the count of steps reported."""
+    while reported < plan.n_steps:
+        files = sorted(out_dir.glob(f"worker-*.step-{reported}.json"))
+        if len(files) < plan.load_workers:
+            break
+        try:
+            parts = [StepStats.from_json(json.loads(f.read_text(encoding="utf-8"))) for f in files]
+        except (OSError, ValueError):
+            break  # a file being replaced: next poll
+        on_step(reported, merge_steps(parts))
+        reported += 1
+    return reported
 
 
 def _spawn(cmd: list[str], log: Path, cwd: Path) -> subprocess.Popen:

@@ -13,16 +13,18 @@ import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
+from collections.abc import Callable
 from typing import Any
 
-from loadtest.budget import Budget, budget_failures, generator_limited, generator_notes
+from loadtest.budget import LOAD_FALLBACKS, Budget, budget_failures, generator_limited, generator_notes
 from service.errors import LoadTestError
 from bench.harness.service_process import LocalService, ServiceSpec
 from loadtest.plan import LoadPlan
 from loadtest.target import check_service_url
 from loadtest.replay import visits_from_data
 from loadtest.runner import default_load_workers, run_locust
-from loadtest.stats import StepSummary, merge_steps, summarize
+from loadtest.preflight import BUSY_WARNING, check_answers, cpu_busy_share, warm_up
+from loadtest.stats import StepStats, StepSummary, merge_steps, summarize
 
 REPORT_KIND = "cairn-loadtest/1"
 MAX_STEPS = 100
@@ -46,6 +48,7 @@ class LoadTestSetup:
     max_think_s: float
     replay: str
     budget: Budget
+    warmup_s: float = 2.0  # seconds of uncounted clicks before the first step
 
     def __post_init__(self) -> None:
         if (self.url is None) == (self.service is None):
@@ -80,8 +83,19 @@ def parse_ramp(spec: str) -> tuple[float, ...]:
     return tuple(round(start + k * step, 9) for k in range(n))
 
 
-def run_load_test(setup: LoadTestSetup) -> dict[str, Any]:
-    """Run the load test and return its report (see service/load/report.py for the fields)."""
+def run_load_test(setup: LoadTestSetup, say: Callable[[str], None] | None = None) -> dict[str, Any]:
+    """Run the load test and return its report (see loadtest/report.py for the fields). `say`
+    receives progress lines as the run goes (each step's as it ends)."""
+    say = say or (lambda line: None)
+    notes: list[str] = []
+    busy = cpu_busy_share()
+    if busy is not None and busy > BUSY_WARNING:
+        note = (
+            f"other processes used {busy:.0%} of this machine's CPU just before the run: the service and the load "
+            "generator had less, so the figures are lower than a quiet machine gives"
+        )
+        notes.append(note)
+        say(f"warning: {note}")
     # The cores this process may run on (a container's or taskset's limit), not the machine's.
     cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
     local_workers = setup.service.workers if setup.service is not None else 0
@@ -97,6 +111,11 @@ def run_load_test(setup: LoadTestSetup) -> dict[str, Any]:
         )
         with service_ctx as svc:
             url = svc.url if svc is not None else setup.url
+            check_answers(url)
+            if setup.warmup_s > 0:
+                items = [item for v in range(min(visits.n_visits, 200)) for item in visits.clicks(v)]
+                warmed = warm_up(url, items, setup.warmup_s, setup.count)
+                say(f"warm-up: {warmed} clicks in {setup.warmup_s:g} s (not counted)")
             plan = LoadPlan(
                 url=url,
                 users=setup.users,
@@ -114,14 +133,21 @@ def run_load_test(setup: LoadTestSetup) -> dict[str, Any]:
                 run_id=f"lt{secrets.token_hex(4)}",
                 request_timeout_s=REQUEST_TIMEOUT_S,
             )
-            run = run_locust(plan, work)
+            def on_step(k: int, stats: StepStats) -> None:
+                window_end = stats.window_start + plan.step_duration_s
+                row = _judged(summarize(k, stats, plan.step_rates[k], plan.step_duration_s, window_end), setup.budget, setup.users)
+                say(step_line(row, plan.n_steps))
+
+            run = run_locust(plan, work, on_step=on_step)
 
     steps = [summarize(k, s, plan.step_rates[k], plan.step_duration_s, run.run_end) for k, s in enumerate(run.steps)]
     overall = summarize(-1, merge_steps(run.steps), None, plan.total_duration_s, run.run_end)
     step_rows = [_judged(s, setup.budget, setup.users) for s in steps]
+    for row in step_rows[run.steps_reported :]:  # the steps that ended with the run itself
+        say(step_line(row, plan.n_steps))
     reasons = [f"step {row['index']}: {r}" for row in step_rows for r in row["failures"]]
     bottleneck = any(generator_limited(s) for s in steps)
-    gen_notes = sorted({n for row in step_rows for n in row["notes"]})
+    gen_notes = sorted({n for row in step_rows for n in row["notes"]}) + notes
     if plan.paced:
         gen_notes.append("think times were not used: with a target rate the pacing sets when clicks are sent")
     return {
@@ -171,6 +197,18 @@ def run_load_test(setup: LoadTestSetup) -> dict[str, Any]:
         },
         "locust": {"requests": run.locust_requests, "failures": run.locust_failures},
     }
+
+
+def step_line(row: dict[str, Any], n_steps: int) -> str:
+    """One step in one line, as printed when it ends and in the summary."""
+    lat = row["latency_ms"]
+    target = f"{row['target_rps']:,g}/s" if row["target_rps"] is not None else "think-time"
+    fallbacks = sum((row.get("fallback_reason") or {}).get(reason, 0.0) for reason in LOAD_FALLBACKS)
+    verdict = "meets the budget" if row["meets_budget"] else "over budget: " + "; ".join(row["failures"])
+    return (
+        f"step {row['index'] + 1}/{n_steps} ({target}): {row['rps']:,.1f} req/s, p50 {lat['p50']} ms, p99 {lat['p99']} ms, "
+        f"errors {row['error_rate']:.2%}, load fallbacks {fallbacks:.2%}; {verdict}"
+    )
 
 
 def _judged(step: StepSummary, budget: Budget, users: int) -> dict[str, Any]:

@@ -32,6 +32,7 @@ class ServiceSpec:
     artifact_name: str | None = None
     artifact_version: str | None = None
     workers: int = 1
+    port: int | None = None  # None: a free loopback port
 
     def __post_init__(self) -> None:
         if self.recommender is not None and self.recommender not in MODELS:
@@ -60,6 +61,7 @@ class ServiceSpec:
             "artifact_name": self.artifact_name,
             "artifact_version": self.artifact_version,
             "workers": self.workers,
+            "port": self.port,
         }
 
 
@@ -79,7 +81,7 @@ class LocalService:
         return f"http://127.0.0.1:{self.port}"
 
     def __enter__(self) -> "LocalService":
-        self.port = free_port()
+        self.port = self.spec.port if self.spec.port is not None else free_port()
         cmd = [
             self.python, "-m", "service.cli", "serve",
             "--host", "127.0.0.1", "--port", str(self.port), "--workers", str(self.spec.workers),

@@ -18,6 +18,11 @@ def test_capacity_reports_a_positive_rate_per_core(tmp_path: Path, model_store: 
     ])  # fmt: skip
     out = capsys.readouterr().out
     assert rc == 0, out
+    # Each step's line comes when it ends: the first ones before Locust has finished (the summary).
+    lines = out.splitlines()
+    step_lines = [n for n, line in enumerate(lines) if line.startswith("step ") and "/3 (" in line]
+    assert len(step_lines) == 3 and step_lines[-1] < lines.index("summary:"), out
+    assert (report_dir / "capacity.png").stat().st_size > 1000
     r = json.loads((report_dir / "capacity.json").read_text(encoding="utf-8"))
     assert r["kind"] == "cairn-capacity/1"
     assert [s["target_rps"] for s in r["steps"]] == [20.0, 40.0, 60.0]

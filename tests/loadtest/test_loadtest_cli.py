@@ -42,6 +42,13 @@ def test_serve_meets_a_generous_budget_and_writes_the_report(tmp_path: Path, mod
     out = capsys.readouterr().out
     assert rc == 0, out
     assert "budget met" in out
+    # Said as it went: the warm-up, then the step's line when it ended, before the summary.
+    assert out.index("warm-up: ") < out.index("step 1/1 (40/s): ") < out.index("summary:")
+    png = report_dir / "loadtest.png"
+    import matplotlib.image
+
+    assert matplotlib.image.imread(str(png)).shape[2] in (3, 4)  # a picture that decodes
+    assert "![p99 and fallbacks by rate](loadtest.png)" in (report_dir / "loadtest.md").read_text(encoding="utf-8")
 
     r = json.loads((report_dir / "loadtest.json").read_text(encoding="utf-8"))
     md = (report_dir / "loadtest.md").read_text(encoding="utf-8")
@@ -119,6 +126,18 @@ def test_bad_input_is_one_line_and_exit_2(args: list[str], named: str, visits_da
     assert rc == 2
     assert err.startswith("cairn loadtest: error:") and "\n" not in err
     assert named in err
+
+
+def test_a_url_where_nothing_answers_fails_at_once(visits_data: Path, capsys) -> None:
+    import time
+
+    from bench.harness.ports import free_port
+
+    started = time.monotonic()
+    rc = main(["loadtest", "--url", f"http://127.0.0.1:{free_port()}", "--data", str(visits_data), "--duration", "30"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "no service answers there" in err and "\n" == err[-1] and err.count("\n") == 1
+    assert time.monotonic() - started < 10  # not a 30 s run against a closed port
 
 
 def test_missing_data_names_the_folder(tmp_path: Path, capsys) -> None:
