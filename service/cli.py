@@ -55,6 +55,17 @@ def build_parser(selected: str | None = None) -> argparse.ArgumentParser:
     return parser
 
 
+def _innermost(parser: argparse.ArgumentParser, args: argparse.Namespace) -> argparse.ArgumentParser:
+    """The parser of the subcommand (and of its action, as in `cairn artifacts verify`) that ran."""
+    current = parser
+    while True:
+        subs = [a for a in current._actions if isinstance(a, argparse._SubParsersAction)]
+        chosen = getattr(args, subs[0].dest, None) if subs else None
+        if not subs or chosen not in subs[0].choices:
+            return current
+        current = subs[0].choices[chosen]
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else argv
     selected = next((a for a in argv if not a.startswith("-")), None)
@@ -65,7 +76,10 @@ def main(argv: list[str] | None = None) -> int:
     except CairnError as exc:
         print(f"cairn {selected}: error: {exc}", file=sys.stderr)
         return 2
-    args = parser.parse_args(argv)
+    args, extras = parser.parse_known_args(argv)
+    if extras:
+        # argparse would blame the top-level parser and print its usage; the subcommand's is the help.
+        _innermost(parser, args).error(f"unrecognized arguments: {' '.join(extras)}")
     module = _command_module(args.command)
     try:
         return int(module.run(args) or 0)

@@ -125,7 +125,7 @@ def write_artifact(
     _check_tables(len(item_ids), neighbour_items, neighbour_scores, popularity, f"artifact {name}/{version}")
     target = Path(store) / name / version
     if target.exists() and not overwrite:
-        raise ArtifactError(f"{target} exists already; choose another version or pass overwrite")
+        raise ArtifactError(f"{target} exists already; choose another version (--version) or replace it (--overwrite)")
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{version}.", dir=target.parent))
     try:
