@@ -8,7 +8,7 @@ STAMP := $(VENV)/.installed-stamp
 DEMO_DATA := data/demo
 DEMO_REPORTS := reports/demo
 
-.PHONY: demo test bench fuzz redis-server clean
+.PHONY: demo test bench fuzz soak redis-server clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -31,6 +31,11 @@ test: $(STAMP) redis-server
 FUZZ_EXAMPLES ?= 2000
 fuzz: $(STAMP)
 	FUZZ_EXAMPLES=$(FUZZ_EXAMPLES) $(BIN)/python -m pytest tests/service/api/test_fuzz.py
+
+# Ten minutes at a steady rate while Redis restarts and the model switches (not in CI; see bench/soak.py).
+SOAK_RATE ?= 300
+soak: $(STAMP) redis-server
+	$(BIN)/python -m bench.soak --minutes 10 --rate $(SOAK_RATE) --out reports/bench/soak.json
 
 # The demo shop: scale 3 (about 780,000 training clicks) is what the GRU needs to get near the
 # oracle; the scenario itself is fixed. Each loss trains with early stopping on validation MRR@20.
