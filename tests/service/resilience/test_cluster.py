@@ -7,15 +7,13 @@ state and check-and-set; with one master stopped, the sessions it held get clean
 from __future__ import annotations
 
 import asyncio
-import shutil
-import subprocess
-import time
 from collections.abc import Iterator
 
 import pytest
 import redis as redis_sync
 
 from service.store.cluster import RedisClusterStore
+from tests.service.resilience.cluster_support import running_cluster, url_of
 from service.store.state import NEW_TOKEN, SessionState, decode, encode, token_of
 
 MASTERS = 3
@@ -23,39 +21,8 @@ MASTERS = 3
 
 @pytest.fixture(scope="module")
 def cluster(tmp_path_factory, kit) -> Iterator[list]:
-    """Three cluster-enabled redis-servers, joined into one cluster with every slot assigned."""
-    if shutil.which("redis-cli") is None:
-        pytest.fail("redis-cli is not installed: the cluster tests need it (it comes with redis-server)")
-    folder = tmp_path_factory.mktemp("cluster")
-    nodes = []
-    try:
-        for _ in range(MASTERS):
-            port = kit.free_port(cluster_bus=True)
-            nodes.append(
-                kit.RedisProcess(
-                    port, "--cluster-enabled", "yes", "--cluster-config-file", str(folder / f"nodes-{port}.conf"),
-                    # Without this, the surviving masters stop serving every slot once they mark one
-                    # master failed (redis.conf's documentation of cluster-require-full-coverage).
-                    "--cluster-require-full-coverage", "no",
-                ).start()
-            )  # fmt: skip
-        create = subprocess.run(
-            ["redis-cli", "--cluster", "create", *[f"127.0.0.1:{n.port}" for n in nodes], "--cluster-replicas", "0", "--cluster-yes"],
-            capture_output=True, text=True, timeout=60, stdin=subprocess.DEVNULL,
-        )  # fmt: skip
-        assert create.returncode == 0, create.stdout + create.stderr
-        deadline = time.monotonic() + 20
-        while not all("cluster_state:ok" in redis_sync.Redis(port=n.port).execute_command("CLUSTER", "INFO").decode() for n in nodes):
-            assert time.monotonic() < deadline, "the cluster did not reach cluster_state:ok"
-            time.sleep(0.05)
+    with running_cluster(tmp_path_factory.mktemp("cluster"), kit) as nodes:
         yield nodes
-    finally:
-        for n in nodes:
-            n.kill()
-
-
-def url_of(nodes) -> str:
-    return "redis-cluster://" + ",".join(f"127.0.0.1:{n.port}" for n in nodes)
 
 
 def holders(nodes, prefix: str) -> dict[int, set[str]]:
