@@ -58,6 +58,9 @@ class Settings(BaseSettings):
     access_log: bool = False  # uvicorn's access log shows session ids in paths; off unless asked for
     tls_certfile: Path | None = None  # PEM certificate chain: serve HTTPS directly (else plain HTTP behind a TLS proxy)
     tls_keyfile: Path | None = None  # its PEM private key
+    # The demo shop (/shop/) and operator view (/operator/) pages; off: not even mounted, so the API
+    # serves exactly as without them.
+    pages: bool = False
 
     # Sessions.
     history_length: int = Field(20, ge=1, le=200)  # clicks kept per session (replayed on a model switch)
