@@ -13,6 +13,7 @@ from __future__ import annotations
 import math
 import time
 from collections import deque
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -48,7 +49,7 @@ def histogram_quantile(q: float, bounds: tuple[float, ...], counts: list[float])
 
 @dataclass(frozen=True)
 class _Snapshot:
-    at: float  # time.monotonic()
+    at: float  # seconds on the summary's clock
     requests: float  # recommendation answers so far
     buckets: list[float]  # answer-time bucket counts so far, summed over recommenders (+Inf last)
 
@@ -56,9 +57,10 @@ class _Snapshot:
 class OperatorSummary:
     """Windowed figures from `metrics`; `summary()` is called by the page's route only."""
 
-    def __init__(self, metrics: ServiceMetrics, window_s: float = WINDOW_S) -> None:
+    def __init__(self, metrics: ServiceMetrics, window_s: float = WINDOW_S, clock: Callable[[], float] = time.monotonic) -> None:
         self.metrics = metrics
         self.window_s = window_s
+        self.clock = clock
         self._snapshots: deque[_Snapshot] = deque(maxlen=_MAX_SNAPSHOTS)
         self._snapshots.append(self._take())  # the start: the first window reaches back to it
 
@@ -68,7 +70,7 @@ class OperatorSummary:
         for series in hist.snapshot().values():
             for i, n in enumerate(series[:-1]):
                 buckets[i] += n
-        return _Snapshot(time.monotonic(), sum(buckets), buckets)
+        return _Snapshot(self.clock(), sum(buckets), buckets)
 
     def summary(self) -> dict[str, Any]:
         now = self._take()
