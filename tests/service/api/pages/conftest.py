@@ -124,6 +124,7 @@ def browser() -> Iterator:
     options.binary_location = _find("chromium")
     for arg in ("--headless=new", "--no-sandbox", "--disable-dev-shm-usage", "--disable-gpu", "--window-size=1360,1000"):
         options.add_argument(arg)
+    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})  # the console, read by `console_errors`
     driver = webdriver.Chrome(service=Service(_find("chromedriver")), options=options)
     driver.set_page_load_timeout(20)
     try:
@@ -148,3 +149,13 @@ def kit_fault():
 def hostile() -> tuple[list[str], str]:
     """The hostile ids (the two most popular items of hostile/v1) and the hostile name of the first."""
     return HOSTILE_IDS, HOSTILE_NAME
+
+
+def console_errors(browser) -> list[str]:
+    """Errors the page's console got since the last call: script errors, CSP violations, failed loads."""
+    return [e["message"] for e in browser.get_log("browser") if e["level"] == "SEVERE"]
+
+
+@pytest.fixture(scope="session")
+def console():
+    return console_errors

@@ -33,17 +33,18 @@ def _click_and_wait(browser, button, sequence: int) -> None:
     _wait(browser, lambda d: _text(d, "sequence") == str(sequence), f"the answer to click {sequence}")
 
 
-def _fresh_shop(browser, url: str) -> None:
+def _fresh_shop(browser, url: str, console) -> None:
+    console(browser)  # what earlier tests left in the log
     browser.get(url + "/shop/")
     browser.execute_script("sessionStorage.clear()")  # a visit left by an earlier test
     browser.get(url + "/shop/")
     _wait(browser, lambda d: _text(d, "visit-id").startswith("shop-"), "the visit id")
 
 
-def test_shop_three_clicks_show_changing_recommendations_and_who_served_them(browser, pages_server, pages_store, screenshots):
+def test_shop_three_clicks_show_changing_recommendations_and_who_served_them(browser, pages_server, pages_store, screenshots, console):
     server = pages_server()
     artifact = load_artifact(pages_store / "garden" / "v1")
-    _fresh_shop(browser, server.url)
+    _fresh_shop(browser, server.url, console)
     grid = browser.find_elements(By.CSS_SELECTOR, "#grid .item")
     assert len(grid) == 60
     # The grid lists the most clicked items first, by their demo-shop names.
@@ -80,13 +81,18 @@ def test_shop_three_clicks_show_changing_recommendations_and_who_served_them(bro
     browser.find_element(By.ID, "new-visit").click()
     _wait(browser, lambda d: _text(d, "visit-id") != visit and not _recommended(d), "a new visit")
     assert browser.find_elements(By.CSS_SELECTOR, "#clicks li") == []
+    assert console(browser) == []  # no script error, no CSP violation, nothing failed to load
 
 
-def test_shop_search_filters_the_grid(browser, pages_server, pages_store):
+def test_shop_search_filters_the_grid_and_the_visit_goes_on(browser, pages_server, pages_store, console):
     server = pages_server()
     artifact = load_artifact(pages_store / "garden" / "v1")
     word = artifact.item_names[artifact.item_ids[0]].split()[0]
-    browser.get(server.url + "/shop/")
+    _fresh_shop(browser, server.url, console)
+    first = browser.find_elements(By.CSS_SELECTOR, "#grid .item")[0]
+    first_id = first.get_attribute("data-item-id")
+    _click_and_wait(browser, first, 1)
+    before = _recommended(browser)
     box = browser.find_element(By.NAME, "q")
     box.send_keys(word)
     box.submit()
@@ -95,12 +101,16 @@ def test_shop_search_filters_the_grid(browser, pages_server, pages_store):
     expected = sum(word.casefold() in n.casefold() or word.casefold() in i.casefold() for i, n in artifact.item_names.items())
     assert names and len(names) == min(expected, 60)
     assert all(word.casefold() in n.casefold() for n in names)
+    # The search reloads the page; the visit, its clicks and its list carry over.
+    _wait(browser, lambda d: _recommended(d) == before, "the visit's list again")
+    assert [e.text for e in browser.find_elements(By.CSS_SELECTOR, "#clicks .id")] == [first_id]
+    assert console(browser) == []
 
 
-def test_one_ms_budget_shows_the_fallback_reason(browser, pages_server, kit_fault):
+def test_one_ms_budget_shows_the_fallback_reason(browser, pages_server, kit_fault, console):
     fault = kit_fault(delay_s=0.004)  # a model step of 4 ms: it fits the default 50 ms, never 1 ms
     server = pages_server(wrap_model=fault.wrap)
-    _fresh_shop(browser, server.url)
+    _fresh_shop(browser, server.url, console)
     grid = browser.find_elements(By.CSS_SELECTOR, "#grid .item")
     _click_and_wait(browser, grid[0], 1)
     assert _text(browser, "served-by") == "gru" and _text(browser, "fallback-reason") == "none"
@@ -114,13 +124,14 @@ def test_one_ms_budget_shows_the_fallback_reason(browser, pages_server, kit_faul
     assert _text(browser, "served-by") == "neighbours"
     assert "warn" in browser.find_element(By.ID, "fallback-reason").get_attribute("class")
     assert len(_recommended(browser)) == 8
+    assert console(browser) == []
 
 
-def test_hostile_item_ids_and_names_show_as_text(browser, pages_server, hostile):
+def test_hostile_item_ids_and_names_show_as_text(browser, pages_server, hostile, console):
     HOSTILE_IDS, HOSTILE_NAME = hostile
     # The popularity recommender answers the most clicked items: the two hostile ids.
     server = pages_server(name="hostile", recommender="popularity")
-    _fresh_shop(browser, server.url)
+    _fresh_shop(browser, server.url, console)
     title = browser.title
     grid = browser.find_elements(By.CSS_SELECTOR, "#grid .item")
     assert [b.get_attribute("data-item-id") for b in grid[:2]] == HOSTILE_IDS  # the attribute holds the exact string
@@ -137,9 +148,10 @@ def test_hostile_item_ids_and_names_show_as_text(browser, pages_server, hostile)
 
     assert browser.title == title, "no injected script ran"
     assert browser.find_elements(By.CSS_SELECTOR, "main img, main b, main script") == []
+    assert console(browser) == []  # an injected <img src=x> would have failed to load here
 
 
-def test_operator_view_shows_the_live_artifact_and_a_breaker_that_opens(browser, pages_server, kit_fault, screenshots, sid):
+def test_operator_view_shows_the_live_artifact_and_a_breaker_that_opens(browser, pages_server, kit_fault, screenshots, sid, console):
     fault = kit_fault()
     server = pages_server(
         wrap_model=fault.wrap, model_breaker_min_calls=4, model_breaker_failure_ratio=0.5, model_breaker_cool_down_s=600.0,
@@ -149,6 +161,7 @@ def test_operator_view_shows_the_live_artifact_and_a_breaker_that_opens(browser,
         items = load_artifact(server.settings.artifacts / "garden" / "v1").item_ids
         for item in items[:6]:
             assert c.post(f"/v1/sessions/{visit}/clicks", json={"item_id": item}).json()["served_by"] == "gru"
+        console(browser)
         browser.get(server.url + "/operator/")
         _wait(browser, lambda d: _text(d, "updated") != "–", "the first refresh")
         assert _text(browser, "live-artifact") == "garden/v1" and _text(browser, "live-recommender") == "gru"
@@ -169,6 +182,8 @@ def test_operator_view_shows_the_live_artifact_and_a_breaker_that_opens(browser,
     assert _text(browser, "p99").endswith("ms of 50 ms budget")
     time.sleep(0.1)
     browser.save_screenshot(str(screenshots / "operator.png"))
+    # The only errors: /readyz answering 503 while degraded, which the page reads and shows.
+    assert [m for m in console(browser) if "/readyz" not in m or "503" not in m] == []
 
 
 def _table(browser, tbody_id: str) -> dict[str, str]:
