@@ -10,6 +10,7 @@ with textContent only.
 
 from __future__ import annotations
 
+import asyncio
 import json
 import os
 from pathlib import Path
@@ -64,18 +65,21 @@ def install_pages(app: FastAPI, metrics: ServiceMetrics) -> None:
     @router.get("/shop/")
     async def shop(service: ServiceDep, q: Annotated[str, Query(max_length=QUERY_MAX)] = "") -> HTMLResponse:
         model, choice = service.active.current
-        shop = catalogue.of(model.artifact)
+        # Sorting and searching a large catalogue takes milliseconds: off the event loop that answers clicks.
+        shop = await asyncio.to_thread(catalogue.of, model.artifact)
+        items = await asyncio.to_thread(shop.page, q)
         return render(
-            "shop.html", items=shop.page(q), query=q, artifact=choice.tag, named=bool(shop.names),
+            "shop.html", items=items, query=q, artifact=choice.tag, named=bool(shop.names),
             n_items=len(shop.items), default_budget_ms=service.settings.default_budget_ms,
         )  # fmt: skip
 
     @router.get("/shop/names")
-    async def names(service: ServiceDep, id: Annotated[list[str], Query()] = []) -> dict[str, dict[str, str]]:  # noqa: B006 - FastAPI copies defaults
-        if len(id) > NAMES_MAX:
-            raise ApiError(422, "invalid_request", f"at most {NAMES_MAX} ids a request, got {len(id)}", "id")
-        known = catalogue.of(service.active.current[0].artifact).names
-        return {"names": {i: known[i] for i in id if i in known}}
+    async def names(service: ServiceDep, ids: Annotated[list[str] | None, Query(alias="id")] = None) -> dict[str, dict[str, str]]:
+        ids = ids or []
+        if len(ids) > NAMES_MAX:
+            raise ApiError(422, "invalid_request", f"at most {NAMES_MAX} ids a request, got {len(ids)}", "id")
+        known = service.active.current[0].artifact.item_names
+        return {"names": {i: known[i] for i in ids if i in known}}
 
     @router.get("/operator/")
     async def operator(service: ServiceDep) -> HTMLResponse:

@@ -8,6 +8,7 @@ from __future__ import annotations
 import time
 
 import httpx
+from selenium.common.exceptions import StaleElementReferenceException
 from selenium.webdriver.common.by import By
 from selenium.webdriver.support.ui import WebDriverWait
 
@@ -17,7 +18,9 @@ WAIT_S = 10
 
 
 def _wait(browser, condition, what: str):
-    return WebDriverWait(browser, WAIT_S, poll_frequency=0.05).until(lambda d: condition(d), message=what)
+    # The operator view rebuilds its tables on every refresh: an element read mid-refresh is retried.
+    wait = WebDriverWait(browser, WAIT_S, poll_frequency=0.05, ignored_exceptions=(StaleElementReferenceException,))
+    return wait.until(lambda d: condition(d), message=what)
 
 
 def _text(browser, element_id: str) -> str:
@@ -175,7 +178,7 @@ def test_operator_view_shows_the_live_artifact_and_a_breaker_that_opens(browser,
         assert c.get("/readyz").json()["breakers"]["model"] == "open"
     _wait(browser, lambda d: _breakers(d).get("model") == "open", "the model breaker shown open")
     assert _text(browser, "ready") == "degraded: model"
-    assert "bad" in browser.find_element(By.CSS_SELECTOR, "#breakers tr[data-key='model'] td:last-child").get_attribute("class")
+    assert _rows(browser, "breakers")["model"] == ("open", "bad")
     fallbacks = _table(browser, "fallbacks-table")
     assert set(fallbacks) == {"model_error", "model_unavailable"} and sum(map(int, fallbacks.values())) == 10
     assert _table(browser, "served-by-table") == {"gru": "6", "neighbours": "10"}
@@ -186,9 +189,18 @@ def test_operator_view_shows_the_live_artifact_and_a_breaker_that_opens(browser,
     assert [m for m in console(browser) if "/readyz" not in m or "503" not in m] == []
 
 
+def _rows(browser, tbody_id: str) -> dict[str, tuple[str, str]]:
+    """{key: (value cell's text, its class)}, read in one script call: never half a refresh."""
+    script = """const out = {};
+        document.querySelectorAll('#' + arguments[0] + ' tr[data-key]').forEach(function (r) {
+          out[r.dataset.key] = [r.cells[1].textContent, r.cells[1].className];
+        });
+        return out;"""
+    return {k: (v[0], v[1]) for k, v in browser.execute_script(script, tbody_id).items()}
+
+
 def _table(browser, tbody_id: str) -> dict[str, str]:
-    rows = browser.find_elements(By.CSS_SELECTOR, f"#{tbody_id} tr[data-key]")
-    return {r.get_attribute("data-key"): r.find_elements(By.TAG_NAME, "td")[1].text for r in rows}
+    return {k: text for k, (text, _) in _rows(browser, tbody_id).items()}
 
 
 def _breakers(browser) -> dict[str, str]:
