@@ -1,6 +1,6 @@
 # The whole set-up on a fresh machine is one of two commands:
 #   make demo   create .venv, install, run the demo end to end
-#   make test   create .venv, install what tests need (redis-server too), run pytest
+#   make test   create .venv, install what tests need (redis-server, chromium too), run pytest
 PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
@@ -8,7 +8,7 @@ STAMP := $(VENV)/.installed-stamp
 DEMO_DATA := data/demo
 DEMO_REPORTS := reports/demo
 
-.PHONY: demo test bench fuzz soak redis-server clean
+.PHONY: demo test bench fuzz soak redis-server chromium clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -23,8 +23,15 @@ redis-server:
 	  (apt-get update -qq && apt-get install -y -qq redis-server) || \
 	  (sudo apt-get update -qq && sudo apt-get install -y -qq redis-server); }
 
+# The page tests drive Debian's chromium through chromium-driver (never a downloaded browser build).
+chromium:
+	@{ command -v chromium >/dev/null 2>&1 && command -v chromedriver >/dev/null 2>&1; } || { \
+	  echo "chromium or chromedriver not found: installing them from Debian's packages"; \
+	  (apt-get update -qq && apt-get install -y -qq chromium chromium-driver) || \
+	  (sudo apt-get update -qq && sudo apt-get install -y -qq chromium chromium-driver); }
+
 # A crash in native code while tests run prints every thread's Python stack instead of a bare signal.
-test: $(STAMP) redis-server
+test: $(STAMP) redis-server chromium
 	PYTHONFAULTHANDLER=1 $(BIN)/python -m pytest
 
 # A long random schemathesis run against the live OpenAPI document (make test runs a short one).
@@ -56,7 +63,7 @@ demo: $(STAMP)
 	$(BIN)/cairn evaluate --data $(DEMO_DATA)/prepared --scenario $(DEMO_DATA)/raw/scenario.npz \
 	  $(foreach loss,$(DEMO_LOSSES),--checkpoint $(CK)/$(loss)/best.pt) --out $(DEMO_REPORTS)/evaluation.json
 	$(BIN)/cairn export --checkpoint $(CK)/$(DEMO_BEST)/best.pt --data $(DEMO_DATA)/prepared \
-	  --name garden-gru --version demo --overwrite --metrics $(DEMO_REPORTS)/evaluation.json
+	  --name garden-gru --version demo --overwrite --metrics $(DEMO_REPORTS)/evaluation.json --names $(DEMO_DATA)/raw/catalogue.csv
 	# The exported graph through the same evaluation: it must agree with the PyTorch model above.
 	$(BIN)/cairn evaluate --data $(DEMO_DATA)/prepared --recommenders '' --artifact model_store/garden-gru/demo \
 	  --bootstrap 200 --out $(DEMO_REPORTS)/evaluation-onnx.json
@@ -66,8 +73,9 @@ demo: $(STAMP)
 	  echo; echo "Starting the service on model_store/garden-gru/demo (memory store). In another terminal:"; \
 	  echo "  curl -s -X POST localhost:8000/v1/sessions/visit-1/clicks -H 'content-type: application/json' -d '{\"item_id\": \"$$item\", \"count\": 5}'"; \
 	  echo "  curl -s localhost:8000/v1/sessions/visit-1/recommendations"; \
+	  echo "The shop: http://127.0.0.1:8000/shop/   Operator view: http://127.0.0.1:8000/operator/"; \
 	  echo "OpenAPI page: http://127.0.0.1:8000/docs   Stop with Ctrl-C."; echo; \
-	  $(BIN)/cairn serve --artifacts model_store --artifact-name garden-gru --artifact-version demo; \
+	  CAIRN_PAGES=true $(BIN)/cairn serve --artifacts model_store --artifact-name garden-gru --artifact-version demo; \
 	fi
 
 bench: $(STAMP)

@@ -62,6 +62,9 @@ class Settings(BaseSettings):
     # worker holds at most max_connections connections at once (more are answered 503 at once).
     body_timeout_s: float = Field(5.0, gt=0, le=300)
     max_connections: int = Field(1000, ge=1, le=100_000)
+    # The demo shop (/shop/) and operator view (/operator/) pages; off: not even mounted, so the API
+    # serves exactly as without them.
+    pages: bool = False
 
     # Sessions.
     history_length: int = Field(20, ge=1, le=200)  # clicks kept per session (replayed on a model switch)

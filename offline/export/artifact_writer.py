@@ -201,8 +201,13 @@ def export_artifact(
     regulariser: float = 20.0,
     metrics: dict | None = None,
     overwrite: bool = False,
+    names: dict[str, str] | None = None,
 ) -> Path:
-    """Write `<store>/<name>/<version>/` from a training checkpoint and the data it was trained on."""
+    """Write `<store>/<name>/<version>/` from a training checkpoint and the data it was trained on.
+
+    `names` (item id -> display name) goes into the artifact for the items the model knows; a
+    catalogue lists items the prepared data may have dropped, and those are left out.
+    """
     checkpoint, data = Path(checkpoint), Path(data)
     if neighbours < 1:
         raise ArtifactError(f"neighbours must be at least 1, got {neighbours}")
@@ -250,6 +255,7 @@ def export_artifact(
             "neighbour_table": {"kind": "item-knn", "neighbours": neighbours, "regulariser": regulariser},
         },
         overwrite=overwrite,
+        item_names={i: names[i] for i in prepared.item_ids if i in names} if names else None,
     )
 
 

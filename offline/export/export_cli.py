@@ -2,11 +2,15 @@
 
     cairn export --checkpoint checkpoints/gru.pt --data data/demo/prepared --name garden [--version V]
     cairn export --random --items 40000 --name bench       (random weights: benchmarks, service tests)
+
+`--names` copies display names (a CSV with `item_id` and `name` columns, such as the demo's
+catalogue.csv) into the artifact's optional item_names.json, for the demo shop page.
 """
 
 from __future__ import annotations
 
 import argparse
+import csv
 import json
 from pathlib import Path
 
@@ -56,6 +60,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument("--metrics", type=Path, metavar="FILE", help="offline metrics (JSON, e.g. `cairn evaluate` output) to record")
     parser.add_argument("--overwrite", action="store_true", help="replace an artifact of the same name and version")
+    parser.add_argument(
+        "--names", type=Path, metavar="CSV", help="item display names to include (CSV with item_id and name columns, e.g. the demo's catalogue.csv)"
+    )
     random = parser.add_argument_group("with --random")
     random.add_argument("--items", type=_positive_int, metavar="N", help="number of items (default: 40000)")
     random.add_argument("--hidden-size", type=_positive_int, metavar="H", help="GRU state and embedding size (default: 100)")
@@ -69,8 +76,8 @@ def run(args: argparse.Namespace) -> int:
     version = args.version or default_version()
     random_only = {"--items": args.items, "--hidden-size": args.hidden_size, "--layers": args.layers, "--seed": args.seed}
     if args.random:
-        if args.data is not None or args.metrics is not None:
-            raise InputDataError("--data and --metrics describe a trained model; --random takes neither")
+        if args.data is not None or args.metrics is not None or args.names is not None:
+            raise InputDataError("--data, --metrics and --names describe a trained model; --random takes none of them")
         path = write_random_artifact(
             args.artifacts,
             args.name,
@@ -98,6 +105,7 @@ def run(args: argparse.Namespace) -> int:
             regulariser=args.knn_regulariser,
             metrics=_read_metrics(args.metrics) if args.metrics is not None else None,
             overwrite=args.overwrite,
+            names=read_names(args.names) if args.names is not None else None,
         )
     print(f"wrote {path}")
     return 0
@@ -113,3 +121,18 @@ def _read_metrics(path: Path) -> dict:
     if not isinstance(metrics, dict):
         raise InputDataError(f"{path}: metrics must be a JSON object, got {type(metrics).__name__}")
     return metrics
+
+
+def read_names(path: Path) -> dict[str, str]:
+    """{item id: name} from a CSV with `item_id` and `name` columns (other columns are ignored)."""
+    try:
+        with open(path, newline="", encoding="utf-8") as f:
+            reader = csv.DictReader(f)
+            missing = [c for c in ("item_id", "name") if c not in (reader.fieldnames or [])]
+            if missing:
+                raise InputDataError(f"{path}: no {' or '.join(missing)} column; --names needs item_id and name")
+            return {row["item_id"]: row["name"] for row in reader if row["item_id"] and row["name"]}
+    except FileNotFoundError:
+        raise InputDataError(f"{path}: no names file here") from None
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputDataError(f"{path}: not a readable CSV names file ({exc})") from exc

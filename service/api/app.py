@@ -106,6 +106,10 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
     app.add_middleware(EdgeMiddleware, metrics=metrics, store_kind=settings.store_kind, body_timeout_s=settings.body_timeout_s)
     install_handlers(app)
     app.include_router(router)
+    if settings.pages:
+        from service.api.pages import install_pages  # imported only when on: the API alone loads none of it
+
+        install_pages(app, metrics)
     return app
 
 

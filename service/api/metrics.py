@@ -81,6 +81,10 @@ class Counter(_Family):
     def value(self, labels: tuple[str, ...] = ()) -> float:
         return self._values.get(labels, 0.0)
 
+    def snapshot(self) -> dict[tuple[str, ...], float]:
+        """A copy of every labelled value (for the operator page's summary; not the click path)."""
+        return dict(self._values)
+
     def lines(self) -> Iterable[str]:
         for labels, value in sorted(self._values.items()):
             yield f"{self.name}{_labels(self.labelnames, labels)} {_number(value)}"
@@ -126,6 +130,10 @@ class Histogram(_Family):
     def count(self, labels: tuple[str, ...] = ()) -> int:
         series = self._series.get(labels)
         return 0 if series is None else int(sum(series[:-1]))
+
+    def snapshot(self) -> dict[tuple[str, ...], list[float]]:
+        """A copy of each series: per-bucket counts (not cumulative, +Inf last), then the sum."""
+        return {labels: list(series) for labels, series in self._series.items()}
 
     def lines(self) -> Iterable[str]:
         for labels, series in sorted(self._series.items()):

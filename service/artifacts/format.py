@@ -6,6 +6,8 @@ Layout: `<store>/<name>/<version>/` holding
     item_ids.json    list of item ids (strings), index order: the model's item vocabulary
     neighbours.npz   item-KNN table: items int32 [n_items, K] (-1 pads), scores float32 [n_items, K]
     popularity.npy   float32 [n_items], training click counts
+    item_names.json  optional: {item id: display name} for some or all items (the demo shop's page
+                     shows them); listed in `files` and checked like the others when present
     manifest.json    format, name, version, created_at, data_fingerprint, model, hyperparameters,
                      metrics, files {file name: SHA-256 hex}, manifest_sha256
 
@@ -43,6 +45,7 @@ STEP_GRAPH = "step.onnx"
 ITEM_IDS = "item_ids.json"
 NEIGHBOURS = "neighbours.npz"
 POPULARITY = "popularity.npy"
+ITEM_NAMES = "item_names.json"
 REQUIRED_FILES = (STEP_GRAPH, ITEM_IDS, NEIGHBOURS, POPULARITY)
 _WRITER_FIELDS = frozenset({"format", "name", "version", "created_at", "files", "manifest_sha256"})
 _UNSET_DIGEST = "0" * 64
@@ -76,6 +79,7 @@ class Artifact:
     neighbour_scores: np.ndarray  # float32 [n_items, K]
     popularity: np.ndarray  # float32 [n_items]
     item_index: dict[str, int] = field(repr=False, default_factory=dict)
+    item_names: dict[str, str] = field(repr=False, default_factory=dict)  # empty when the artifact has no names
 
     @property
     def name(self) -> str:
@@ -114,8 +118,10 @@ def write_artifact(
     popularity: np.ndarray,
     manifest_fields: dict[str, Any],
     overwrite: bool = False,
+    item_names: dict[str, str] | None = None,
 ) -> Path:
-    """Write one artifact atomically; returns its folder."""
+    """Write one artifact atomically; returns its folder. `item_names` (id -> display name, for
+    items of `item_ids` only) adds the optional item_names.json."""
     _check_name(name, "name")
     _check_name(version, "version")
     reserved = sorted(set(manifest_fields) & _WRITER_FIELDS)
@@ -123,6 +129,9 @@ def write_artifact(
         raise ArtifactError(f"manifest fields {reserved} are written by write_artifact itself")
     neighbour_items, neighbour_scores, popularity = np.asarray(neighbour_items), np.asarray(neighbour_scores), np.asarray(popularity)
     _check_tables(len(item_ids), neighbour_items, neighbour_scores, popularity, f"artifact {name}/{version}")
+    if item_names:
+        _check_names(item_names, set(map(str, item_ids)), f"artifact {name}/{version}")
+    files = (*REQUIRED_FILES, ITEM_NAMES) if item_names else REQUIRED_FILES
     target = Path(store) / name / version
     if target.exists() and not overwrite:
         raise ArtifactError(f"{target} exists already; choose another version (--version) or replace it (--overwrite)")
@@ -133,13 +142,15 @@ def write_artifact(
         (tmp / ITEM_IDS).write_text(json.dumps([str(i) for i in item_ids]), encoding="utf-8")
         np.savez(tmp / NEIGHBOURS, items=neighbour_items.astype(np.int32), scores=neighbour_scores.astype(np.float32))
         np.save(tmp / POPULARITY, popularity.astype(np.float32))
+        if item_names:
+            (tmp / ITEM_NAMES).write_text(json.dumps(item_names, ensure_ascii=False, sort_keys=True), encoding="utf-8")
         manifest = {
             "format": FORMAT,
             "name": name,
             "version": version,
             "created_at": datetime.now(timezone.utc).isoformat(timespec="milliseconds"),
             **manifest_fields,
-            "files": {f: sha256_file(tmp / f) for f in REQUIRED_FILES},
+            "files": {f: sha256_file(tmp / f) for f in files},
             "manifest_sha256": _UNSET_DIGEST,
         }
         (tmp / MANIFEST).write_bytes(_sealed_manifest(manifest))
@@ -207,6 +218,8 @@ def load_artifact(path: Path) -> Artifact:
         with np.load(path / NEIGHBOURS) as z:
             n_items_arr, n_scores = z["items"], z["scores"]
         popularity = np.load(path / POPULARITY)
+        # verify_artifact checked every file `files` lists; names are read only when listed there.
+        item_names = json.loads((path / ITEM_NAMES).read_text(encoding="utf-8")) if ITEM_NAMES in manifest["files"] else {}
     except (OSError, ValueError, KeyError) as exc:
         raise ArtifactError(f"{path}: unreadable artifact file ({exc})") from exc
     if not isinstance(item_ids, list) or not all(isinstance(i, str) for i in item_ids):
@@ -219,6 +232,8 @@ def load_artifact(path: Path) -> Artifact:
     if model_items is not None and model_items != n:
         raise ArtifactError(f"{path}: manifest says the model scores {model_items} items, {ITEM_IDS} has {n}")
     _check_tables(n, n_items_arr, n_scores, popularity, str(path))
+    if item_names:
+        _check_names(item_names, set(item_ids), str(path / ITEM_NAMES))
     return Artifact(
         path=path,
         manifest=manifest,
@@ -227,6 +242,7 @@ def load_artifact(path: Path) -> Artifact:
         neighbour_scores=n_scores.astype(np.float32),
         popularity=popularity.astype(np.float32),
         item_index={item: i for i, item in enumerate(item_ids)},
+        item_names=item_names,
     )
 
 
@@ -279,6 +295,14 @@ def _check_tables(n: int, neighbour_items: np.ndarray, neighbour_scores: np.ndar
         raise ArtifactError(f"{where}: popularity has shape {popularity.shape}, expected ({n},)")
     if neighbour_items.size and (neighbour_items.min() < -1 or neighbour_items.max() >= n):
         raise ArtifactError(f"{where}: neighbour indices must be -1 (padding) or 0..{n - 1}")
+
+
+def _check_names(item_names: Any, item_ids: set[str], where: str) -> None:
+    if not isinstance(item_names, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in item_names.items()):
+        raise ArtifactError(f"{where}: item names must map item id strings to name strings")
+    stray = sorted(set(item_names) - item_ids)
+    if stray:
+        raise ArtifactError(f"{where}: names for {len(stray)} item(s) the artifact does not have, e.g. {stray[0]!r}")
 
 
 def _fsync_path(path: Path) -> None:

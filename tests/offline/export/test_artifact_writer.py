@@ -340,3 +340,28 @@ def test_export_cli(trained, tmp_path: Path, capsys) -> None:
     with pytest.raises(SystemExit) as exit_info:  # argparse: --random and --checkpoint exclude each other
         cairn(["export", "--random", "--checkpoint", str(checkpoint), "--name", "g"])
     assert exit_info.value.code == 2
+
+
+def test_export_names_from_a_catalogue_csv(trained, tmp_path: Path, capsys) -> None:
+    _, checkpoint, data_dir, data = trained
+    catalogue = tmp_path / "catalogue.csv"
+    # A catalogue as `cairn demo-data` writes it: more items than the prepared data kept, and a
+    # name with a comma (quoted, RFC 4180).
+    rows = ["item_id,name,category", *(f"{i},Seed tray {i},propagation" for i in data.item_ids[:100]), 'gone-1,"Rake, wide",tools']
+    catalogue.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    store = tmp_path / "store"
+    args = ["export", "--checkpoint", str(checkpoint), "--data", str(data_dir), "--artifacts", str(store), "--name", "garden"]
+    assert cairn([*args, "--version", "n1", "--names", str(catalogue)]) == 0
+    names = load_artifact(store / "garden" / "n1").item_names
+    assert names == {i: f"Seed tray {i}" for i in data.item_ids[:100]}  # the 20 unnamed items show their ids; gone-1 is left out
+    capsys.readouterr()
+
+    (tmp_path / "bad.csv").write_text("id,title\nplant-1,Rake\n", encoding="utf-8")
+    for bad, says in (
+        ([*args, "--version", "n2", "--names", str(tmp_path / "bad.csv")], "no item_id or name column"),
+        ([*args, "--version", "n2", "--names", str(tmp_path / "nope.csv")], "nope.csv: no names file"),
+        (["export", "--random", "--artifacts", str(store), "--name", "g", "--names", str(catalogue)], "--random takes none of them"),
+    ):
+        assert cairn(bad) == 2
+        err = capsys.readouterr().err
+        assert says in err and err.count("\n") == 1, err
