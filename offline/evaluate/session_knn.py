@@ -197,13 +197,13 @@ class SessionKNN:
         v = self.visit_matrix(history)  # [n, n_items]
         # Candidates: sessions in the truncated postings of the visit's items, the M most recent per row.
         reach = (v.astype(bool).astype(np.float64) @ self._xt).tocsr()  # [n, S], > 0 where a session shares an item
-        rows = np.repeat(np.arange(v.shape[0]), np.diff(reach.indptr))
-        sessions = reach.indices.astype(np.int64)
-        order = np.lexsort((-sessions, rows))
-        rows, sessions = rows[order], sessions[order]
-        place = np.arange(len(rows)) - np.searchsorted(rows, rows)
-        keep = place < self.index.candidates
-        rows, sessions = rows[keep], sessions[keep]
+        reach.sort_indices()  # sessions ascending within each row: the M most recent are the row's last M
+        lengths = np.diff(reach.indptr)
+        take = np.minimum(lengths, self.index.candidates)
+        rows = np.repeat(np.arange(v.shape[0]), take)
+        starts = np.repeat(reach.indptr[1:] - take, take)
+        offsets = np.arange(len(rows)) - np.repeat(np.cumsum(take) - take, take)
+        sessions = reach.indices[starts + offsets].astype(np.int64)
         if not len(rows):
             return rows, sessions, np.zeros(0)
         dots = np.asarray(self._x[sessions].multiply(v[rows]).sum(axis=1)).ravel()  # [P]
