@@ -26,43 +26,17 @@ sessions are resolved in favour of the more recent one.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 from scipy import sparse
 
 from offline.data.dataset import SessionSplit
 from offline.evaluate.baselines import click_counts, popularity_tiebreak
+from service.runtime.session_knn import WEIGHTINGS, SessionIndex, visit_weights  # noqa: F401 (shared with the service)
 
-WEIGHTINGS = ("none", "linear")
 # Published defaults recalled as k = 100 neighbours from M = 500 candidates (from memory).
 DEFAULT_NEIGHBOURS = 100
 DEFAULT_CANDIDATES = 500
 DEFAULT_WEIGHTING = "linear"
-
-
-@dataclass(frozen=True)
-class SessionIndex:
-    """The training sessions as the scorer and the service need them (see `session_index`).
-
-    session_items CSR over sessions: the distinct items of session j are
-        items[session_indptr[j]:session_indptr[j + 1]]
-    item_sessions CSR over items: the (at most M) most recent sessions containing item i, most recent first
-    """
-
-    session_indptr: np.ndarray  # int64 [S + 1]
-    session_items: np.ndarray  # int32 [nnz], sorted within each session
-    item_indptr: np.ndarray  # int64 [n_items + 1]
-    item_sessions: np.ndarray  # int32 [<= n_items * M]
-    candidates: int  # M
-
-    @property
-    def n_sessions(self) -> int:
-        return len(self.session_indptr) - 1
-
-    @property
-    def n_items(self) -> int:
-        return len(self.item_indptr) - 1
 
 
 def session_index(split: SessionSplit, n_items: int, candidates: int) -> SessionIndex:
@@ -98,16 +72,6 @@ def occurrence_matrix(split: SessionSplit, n_items: int) -> sparse.csr_matrix:
     x.data[:] = 1.0
     x.sort_indices()
     return x
-
-
-def visit_weights(clicks: np.ndarray, weighting: str) -> tuple[np.ndarray, np.ndarray]:
-    """(distinct items, weights) of one visit, clicks oldest first; see the module docstring."""
-    clicks = np.asarray(clicks, dtype=np.int64)
-    length = len(clicks)
-    position_weight = np.ones(length) if weighting == "none" else np.arange(1, length + 1) / max(length, 1)
-    # the latest click of each item: np.unique on the reversed clicks finds it first
-    items, first_in_reversed = np.unique(clicks[::-1], return_index=True)
-    return items, position_weight[::-1][first_in_reversed]
 
 
 class SessionKNN:
