@@ -6,8 +6,12 @@ Layout: `<store>/<name>/<version>/` holding
     item_ids.json    list of item ids (strings), index order: the model's item vocabulary
     neighbours.npz   item-KNN table: items int32 [n_items, K] (-1 pads), scores float32 [n_items, K]
     popularity.npy   float32 [n_items], training click counts
+    sessions.npz     optional: the session-KNN index (service/runtime/session_knn.py, `SessionIndex`):
+                     session_indptr, session_items, item_indptr, item_sessions; its parameters
+                     (neighbours, candidates, weighting) in the manifest's `session_knn`
     manifest.json    format, name, version, created_at, data_fingerprint, model, hyperparameters,
-                     metrics, files {file name: SHA-256 hex}, manifest_sha256
+                     metrics, serving_defaults {exclude_seen}, files {file name: SHA-256 hex},
+                     manifest_sha256
 
 step.onnx I/O:
     inputs   items int64 [B]; hidden float32 [L, B, H]; top_n int64 [1]
@@ -36,6 +40,7 @@ from typing import Any
 import numpy as np
 
 from service.errors import ArtifactError
+from service.runtime.session_knn import WEIGHTINGS, SessionIndex
 
 FORMAT = "cairn-artifact/1"
 MANIFEST = "manifest.json"
@@ -43,6 +48,7 @@ STEP_GRAPH = "step.onnx"
 ITEM_IDS = "item_ids.json"
 NEIGHBOURS = "neighbours.npz"
 POPULARITY = "popularity.npy"
+SESSIONS = "sessions.npz"  # optional
 REQUIRED_FILES = (STEP_GRAPH, ITEM_IDS, NEIGHBOURS, POPULARITY)
 _WRITER_FIELDS = frozenset({"format", "name", "version", "created_at", "files", "manifest_sha256"})
 _UNSET_DIGEST = "0" * 64
@@ -76,6 +82,20 @@ class Artifact:
     neighbour_scores: np.ndarray  # float32 [n_items, K]
     popularity: np.ndarray  # float32 [n_items]
     item_index: dict[str, int] = field(repr=False, default_factory=dict)
+    session_index: SessionIndex | None = field(repr=False, default=None)  # None: this artifact cannot serve session-knn
+
+    @property
+    def session_knn(self) -> dict[str, Any]:
+        """{"neighbours": k, "candidates": M, "weighting": ...} of the session index (empty without one)."""
+        value = self.manifest.get("session_knn")
+        return value if isinstance(value, dict) else {}
+
+    @property
+    def exclude_seen(self) -> bool:
+        """The serving default for requests that do not say: the evaluation's choice, else True."""
+        defaults = self.manifest.get("serving_defaults")
+        value = defaults.get("exclude_seen") if isinstance(defaults, dict) else None
+        return value if isinstance(value, bool) else True
 
     @property
     def name(self) -> str:
@@ -114,8 +134,10 @@ def write_artifact(
     popularity: np.ndarray,
     manifest_fields: dict[str, Any],
     overwrite: bool = False,
+    session_index: SessionIndex | None = None,
 ) -> Path:
-    """Write one artifact atomically; returns its folder."""
+    """Write one artifact atomically; returns its folder. With `session_index`, manifest_fields must
+    hold its parameters as `session_knn` ({"neighbours", "candidates", "weighting"})."""
     _check_name(name, "name")
     _check_name(version, "version")
     reserved = sorted(set(manifest_fields) & _WRITER_FIELDS)
@@ -123,6 +145,10 @@ def write_artifact(
         raise ArtifactError(f"manifest fields {reserved} are written by write_artifact itself")
     neighbour_items, neighbour_scores, popularity = np.asarray(neighbour_items), np.asarray(neighbour_scores), np.asarray(popularity)
     _check_tables(len(item_ids), neighbour_items, neighbour_scores, popularity, f"artifact {name}/{version}")
+    files = list(REQUIRED_FILES)
+    if session_index is not None:
+        _check_session_index(len(item_ids), session_index, manifest_fields.get("session_knn"), f"artifact {name}/{version}")
+        files.append(SESSIONS)
     target = Path(store) / name / version
     if target.exists() and not overwrite:
         raise ArtifactError(f"{target} exists already; choose another version or pass overwrite")
@@ -133,13 +159,15 @@ def write_artifact(
         (tmp / ITEM_IDS).write_text(json.dumps([str(i) for i in item_ids]), encoding="utf-8")
         np.savez(tmp / NEIGHBOURS, items=neighbour_items.astype(np.int32), scores=neighbour_scores.astype(np.float32))
         np.save(tmp / POPULARITY, popularity.astype(np.float32))
+        if session_index is not None:
+            np.savez(tmp / SESSIONS, **session_index.arrays())
         manifest = {
             "format": FORMAT,
             "name": name,
             "version": version,
             "created_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
             **manifest_fields,
-            "files": {f: sha256_file(tmp / f) for f in REQUIRED_FILES},
+            "files": {f: sha256_file(tmp / f) for f in files},
             "manifest_sha256": _UNSET_DIGEST,
         }
         (tmp / MANIFEST).write_bytes(_sealed_manifest(manifest))
@@ -212,6 +240,20 @@ def load_artifact(path: Path) -> Artifact:
     if model_items is not None and model_items != n:
         raise ArtifactError(f"{path}: manifest says the model scores {model_items} items, {ITEM_IDS} has {n}")
     _check_tables(n, n_items_arr, n_scores, popularity, str(path))
+    session_index = None
+    if SESSIONS in manifest["files"]:
+        try:
+            with np.load(path / SESSIONS) as z:
+                session_index = SessionIndex(
+                    session_indptr=z["session_indptr"].astype(np.int64),
+                    session_items=z["session_items"].astype(np.int32),
+                    item_indptr=z["item_indptr"].astype(np.int64),
+                    item_sessions=z["item_sessions"].astype(np.int32),
+                    candidates=int(manifest.get("session_knn", {}).get("candidates", 0)) if isinstance(manifest.get("session_knn"), dict) else 0,
+                )
+        except (OSError, ValueError, KeyError) as exc:
+            raise ArtifactError(f"{path / SESSIONS}: unreadable session index ({exc})") from exc
+        _check_session_index(n, session_index, manifest.get("session_knn"), str(path))
     return Artifact(
         path=path,
         manifest=manifest,
@@ -220,6 +262,7 @@ def load_artifact(path: Path) -> Artifact:
         neighbour_scores=n_scores.astype(np.float32),
         popularity=popularity.astype(np.float32),
         item_index={item: i for i, item in enumerate(item_ids)},
+        session_index=session_index,
     )
 
 
@@ -271,6 +314,24 @@ def _check_tables(n: int, neighbour_items: np.ndarray, neighbour_scores: np.ndar
         raise ArtifactError(f"{where}: popularity has shape {popularity.shape}, expected ({n},)")
     if neighbour_items.size and (neighbour_items.min() < -1 or neighbour_items.max() >= n):
         raise ArtifactError(f"{where}: neighbour indices must be -1 (padding) or 0..{n - 1}")
+
+
+def _check_session_index(n: int, index: SessionIndex, params: Any, where: str) -> None:
+    """A session index that cannot send the service out of bounds, and its parameters."""
+    ok = isinstance(params, dict)
+    neighbours, candidates, weighting = (params.get("neighbours"), params.get("candidates"), params.get("weighting")) if ok else (None,) * 3
+    if not (isinstance(neighbours, int) and neighbours >= 1 and isinstance(candidates, int) and candidates >= 1 and weighting in WEIGHTINGS):
+        raise ArtifactError(f"{where}: session_knn needs neighbours >= 1, candidates >= 1 and a weighting of {WEIGHTINGS}, got {params!r}")
+    for indptr, values, rows, bound, what in (
+        (index.session_indptr, index.session_items, None, n, "session_items"),
+        (index.item_indptr, index.item_sessions, n, index.n_sessions, "item_sessions"),
+    ):
+        if indptr.ndim != 1 or len(indptr) < 1 or indptr[0] != 0 or indptr[-1] != len(values) or (np.diff(indptr) < 0).any():
+            raise ArtifactError(f"{where}: session index {what} has a bad pointer array")
+        if rows is not None and len(indptr) != rows + 1:
+            raise ArtifactError(f"{where}: session index covers {len(indptr) - 1} items, the artifact has {rows}")
+        if len(values) and (values.min() < 0 or values.max() >= bound):
+            raise ArtifactError(f"{where}: session index {what} points outside 0..{bound - 1}")
 
 
 def _fsync_path(path: Path) -> None:
