@@ -33,8 +33,9 @@ from offline.evaluate.ranking_metrics import (
 )
 from offline.evaluate.scorer import SessionScorer
 
-# The baselines a GRU must beat for its verdict line: the strongest sequential simple models.
-VERDICT_BASELINES = ("markov", "item-knn")
+# The baselines a GRU must beat for its verdict line: the strongest sequential simple models
+# (the full decision, over every simple recommender and with the cost per click, is decision.py).
+VERDICT_BASELINES = ("markov", "item-knn", "session-knn")
 # Pending (session, item) entries of the top-k lists before they are deduplicated.
 _INCIDENCE_COMPACT_AT = 1 << 22
 

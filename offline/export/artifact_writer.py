@@ -294,6 +294,7 @@ def write_random_artifact(
     neighbours: int = 20,
     seed: int = 0,
     overwrite: bool = False,
+    exclude_seen: bool = True,
 ) -> Path:
     """An artifact with random weights and tables, for benchmarks and service tests.
 
@@ -342,6 +343,7 @@ def write_random_artifact(
             "metrics": {},
             "neighbour_table": {"kind": "random", "neighbours": neighbours},
             "session_knn": {"neighbours": 100, "candidates": sessions.candidates, "weighting": "linear"},
+            "serving_defaults": {"exclude_seen": exclude_seen},
         },
         overwrite=overwrite,
         session_index=sessions,
