@@ -52,7 +52,7 @@ def test_evaluate_tunes_chooses_and_reports(prepared: Path, tmp_path: Path, caps
     report = json.loads((out / "evaluation.json").read_text())  # strict JSON: no NaN
     assert "session-knn" in report and "recall@20" in report["session-knn"]
     decision = report["decision"]
-    assert decision["session_knn"]["tuned"] is True and len(decision["session_knn"]["trials"]) == 18
+    assert decision["session_knn"]["tuned"] is True and len(decision["session_knn"]["trials"]) == 8
     assert decision["exclude_seen"]["choice"] == "auto" and isinstance(decision["exclude_seen"]["value"], bool)
     assert decision["serving_defaults"] == {"exclude_seen": decision["exclude_seen"]["value"]}
     assert set(decision["serving_cost"]) == {"pop", "spop", "markov", "item-knn", "session-knn"}
@@ -95,3 +95,31 @@ def test_bad_decision_options_exit_2(prepared: Path, capsys: pytest.CaptureFixtu
         assert main(["evaluate", "--data", str(prepared), *argv]) == 2
         err = capsys.readouterr().err
         assert len(err.strip().splitlines()) == 1 and message in err
+
+
+def test_the_validation_sample_keeps_whole_sessions_in_order() -> None:
+    from offline.evaluate.tuning import validation_sample
+
+    split = random_split(5, 50, 30)
+    sample = validation_sample(split, max_sessions=10, seed=1)
+    assert sample.n_sessions == 10
+    originals = {tuple(s.tolist()) for s in split.sessions()}
+    assert all(tuple(s.tolist()) in originals and len(s) >= 2 for s in sample.sessions())
+    assert validation_sample(split, max_sessions=1000).n_sessions == int((split.lengths() >= 2).sum())
+
+
+def test_the_training_curve_comes_from_the_epoch_checkpoints(tmp_path: Path) -> None:
+    from offline.evaluate.report import plot_training
+    from offline.evaluate.training_curve import validation_curve
+    from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint
+
+    model = NextClickGRU(GRUConfig(n_items=10, embedding_size=4, hidden_size=4))
+    for epoch, mrr in ((1, 0.11), (2, 0.17), (3, 0.16)):
+        save_checkpoint(tmp_path / f"epoch-{epoch:03d}.pt", model, {"epoch": epoch, "valid": {"mrr@20": mrr, "recall@20": 2 * mrr, "events": 9}})
+    save_checkpoint(tmp_path / "best.pt", model, {"epoch": 2, "valid": {"mrr@20": 0.17}})
+    (tmp_path / "epoch-004.pt").write_bytes(b"not a checkpoint")  # a damaged file leaves a gap, not a failure
+    curve = validation_curve(tmp_path / "best.pt")
+    assert curve == [{"epoch": 1, "mrr@20": 0.11, "recall@20": 0.22}, {"epoch": 2, "mrr@20": 0.17, "recall@20": 0.34},
+                     {"epoch": 3, "mrr@20": 0.16, "recall@20": 0.32}]  # fmt: skip
+    png = plot_training({"training": {"gru-top1-max": curve}})
+    assert mpimg.imread(io.BytesIO(png), format="png").shape[0] > 100
