@@ -67,7 +67,7 @@ def decide(results: Mapping[str, Result], costs: Mapping[str, ClickCost], budget
     added = cost_of[challenger].p99_ms - cost_of[strongest].p99_ms if len(cost_of) == 2 else None
     out["added_p99_ms"] = added
     challenger_p99 = cost_of[challenger].p99_ms if challenger in cost_of else None
-    fits = challenger_p99 is not None and challenger_p99 <= budget_ms
+    fits = None if challenger_p99 is None else challenger_p99 <= budget_ms  # None: not measured
     out["fits_budget"] = fits
     wins = lo > 0
     loses = hi < 0
@@ -83,7 +83,9 @@ def decide(results: Mapping[str, Result], costs: Mapping[str, ClickCost], budget
         if challenger_p99 is not None and added is not None
         else "its cost per click was not measured"
     )
-    if wins and fits:
+    if wins and fits is None:
+        rec = f"serve {challenger} if its cost fits your budget: {lift_text}, but {cost_text}"
+    elif wins and fits:
         rec = f"serve {challenger}: {lift_text}, and {cost_text}, within the {budget_ms:g} ms budget"
     elif wins:
         rec = f"serve {simple_pick}{note}: {lift_text}, but {cost_text}, over the {budget_ms:g} ms budget"
@@ -96,7 +98,7 @@ def decide(results: Mapping[str, Result], costs: Mapping[str, ClickCost], budget
         f"best: {best}; strongest simple recommender: {strongest}",
         f"{challenger} vs {strongest}: Recall@{k} {_pct(lifts[metric]['value'])} (95% CI {_pct(lo)} to {_pct(hi)}), "
         f"MRR@{k} {_pct(lifts[mrr]['value'])} (95% CI {_pct(lifts[mrr]['ci95'][0])} to {_pct(lifts[mrr]['ci95'][1])})",
-        f"cost per click: {cost_text}; budget {budget_ms:g} ms p99: {'fits' if fits else 'does not fit'}",
+        f"cost per click: {cost_text}; budget {budget_ms:g} ms p99: {'not measured' if fits is None else 'fits' if fits else 'does not fit'}",
         f"recommendation: {rec}",
     ]
     return out

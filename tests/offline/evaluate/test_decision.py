@@ -89,3 +89,9 @@ def test_cost_per_click_counts_every_click_after_the_warm_up() -> None:
     test = split(3)
     cost = measure(*scorer_clicker(Table(np.random.default_rng(0).random((N, N)), "t")), test, 50, "scorer")
     assert cost.clicks == 50 and 0 < cost.p50_ms <= cost.p99_ms
+
+
+def test_an_unmeasured_cost_is_said_not_assumed() -> None:
+    v = decide(results(0.6), {}, budget_ms=25)
+    assert v["fits_budget"] is None and v["added_p99_ms"] is None
+    assert "not measured" in v["recommendation"] and "not measured" in v["lines"][2]

@@ -123,3 +123,21 @@ def test_the_training_curve_comes_from_the_epoch_checkpoints(tmp_path: Path) -> 
                      {"epoch": 3, "mrr@20": 0.16, "recall@20": 0.32}]  # fmt: skip
     png = plot_training({"training": {"gru-top1-max": curve}})
     assert mpimg.imread(io.BytesIO(png), format="png").shape[0] > 100
+
+
+def test_a_report_with_a_gru_verdict_renders_every_plot(tmp_path: Path) -> None:
+    from offline.evaluate.decision import build_decision
+    from tests.offline.evaluate.test_decision import costs, results
+
+    rs = results(0.6)
+    settings = {"split": "test", "catalogue_items": 40, "exclude_seen": {"choice": "on", "value": True, "validation_recall": None}, "session_knn": None}
+    decision = build_decision(rs, costs(3.0), 25.0, 100, 0, settings, training={"gru-top1-max": [{"epoch": 1, "mrr@20": 0.1}, {"epoch": 2, "mrr@20": 0.2}]})
+    report = {**{n: r.to_json() for n, r in rs.items()}, "decision": decision}
+    json.dumps(report, allow_nan=False)  # strict JSON
+    page = write_report(tmp_path / "r", report)
+    html = page.read_text()
+    assert "serve gru-top1-max" in html and "95% CI" in html
+    images = re.findall(r'src="data:image/png;base64,([^"]+)"', html)
+    assert len(images) == 5  # Recall@k, lift, lift by group, worth-it, training
+    for data in images:
+        assert mpimg.imread(io.BytesIO(base64.b64decode(data)), format="png").ndim == 3
