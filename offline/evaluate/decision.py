@@ -79,7 +79,8 @@ def decide(results: Mapping[str, Result], costs: Mapping[str, ClickCost], budget
     note = "" if simple_pick == strongest else f" ({strongest} is not a recommender the service runs; the strongest it runs is {simple_pick})"
     lift_text = f"{challenger}'s Recall@{k} lift over {strongest} is {_pct(lifts[metric]['value'])} (95% CI {_pct(lo)} to {_pct(hi)})"
     cost_text = (
-        f"{challenger} costs {challenger_p99:.2f} ms p99 per click ({'+' if (added or 0) >= 0 else ''}{added:.2f} ms over {strongest})"
+        f"{challenger} costs {challenger_p99:.2f} ms p99 per click "
+        + (f"({added:.2f} ms more than {strongest})" if added >= 0 else f"({-added:.2f} ms less than {strongest})")
         if challenger_p99 is not None and added is not None
         else "its cost per click was not measured"
     )
