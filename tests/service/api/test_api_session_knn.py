@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import httpx
 import numpy as np
 
 from offline.evaluate.session_knn import SessionKNN
