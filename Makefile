@@ -61,7 +61,9 @@ demo: $(STAMP)
 	  $(BIN)/cairn train --data $(DEMO_DATA)/prepared --out $(CK)/$$loss --loss $$loss $(DEMO_TRAIN_FLAGS) || exit 1; \
 	done
 	$(BIN)/cairn evaluate --data $(DEMO_DATA)/prepared --scenario $(DEMO_DATA)/raw/scenario.npz \
-	  $(foreach loss,$(DEMO_LOSSES),--checkpoint $(CK)/$(loss)/best.pt) --out $(DEMO_REPORTS)/evaluation.json
+	  $(foreach loss,$(DEMO_LOSSES),--checkpoint $(CK)/$(loss)/best.pt) --tune --exclude-seen auto \
+	  --out $(DEMO_REPORTS)/evaluation.json --report $(DEMO_REPORTS)
+	@echo "The decision, with its plots: $(DEMO_REPORTS)/report.html"
 	$(BIN)/cairn export --checkpoint $(CK)/$(DEMO_BEST)/best.pt --data $(DEMO_DATA)/prepared \
 	  --name garden-gru --version demo --overwrite --metrics $(DEMO_REPORTS)/evaluation.json --names $(DEMO_DATA)/raw/catalogue.csv
 	# The exported graph through the same evaluation: it must agree with the PyTorch model above.
@@ -85,6 +87,7 @@ bench: $(STAMP)
 	$(BIN)/python -m bench.service --out reports/bench/service.json
 	$(BIN)/python -m bench.side_by_side --out reports/bench/side_by_side.json
 	$(BIN)/python -m bench.resilience --out reports/bench/resilience.json
+	$(BIN)/python -m bench.session_knn --out reports/bench/session_knn.json
 	$(MAKE) demo SERVE=0
 	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
 

@@ -136,7 +136,9 @@ def create_app(variant: str, artifact_dir: Path, checkpoint: Path | None) -> Fas
         visit["items"].append(index)
         count = body.count or DEFAULT_COUNT
         # The service leaves out its stored history (history_length clicks before this one) and this click.
-        seen = frozenset(visit["items"][-(HISTORY_LENGTH + 1) :]) if body.exclude_seen else frozenset()
+        # A request that does not say follows the artifact's serving default, as the service does.
+        exclude_seen = state.artifact.exclude_seen if body.exclude_seen is None else body.exclude_seen
+        seen = frozenset(visit["items"][-(HISTORY_LENGTH + 1) :]) if exclude_seen else frozenset()
         top_n = min(state.artifact.n_items, count + len(seen))
         items, scores = state.ranker(visit, index, top_n, seen)
         ranking = without_seen(items, scores, seen, count)

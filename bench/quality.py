@@ -15,7 +15,7 @@ from pathlib import Path
 
 from bench.reporting import write_report
 
-BASELINES = ("pop", "spop", "markov", "item-knn")
+BASELINES = ("pop", "spop", "markov", "item-knn", "session-knn")
 
 
 def summarise(report: dict, metric: str = "recall@20") -> dict:

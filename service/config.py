@@ -28,6 +28,7 @@ class RecommenderKind(StrEnum):
     GRU = "gru"
     NEIGHBOURS = "neighbours"
     POPULARITY = "popularity"
+    SESSION_KNN = "session-knn"  # needs an artifact with a session index (written by `cairn export`)
 
 
 RECOMMENDERS = tuple(k.value for k in RecommenderKind)
@@ -41,7 +42,7 @@ class Settings(BaseSettings):
     model_config = SettingsConfigDict(env_prefix=ENV_PREFIX, extra="forbid", frozen=True)
 
     # Which recommender answers, and from which artifact.
-    recommender: Literal["gru", "neighbours", "popularity"] = "gru"
+    recommender: Literal["gru", "neighbours", "popularity", "session-knn"] = "gru"
     artifacts: Path = Path("model_store")  # folder of <name>/<version>/ artifacts
     artifact_name: str | None = None  # default: the only name in the store
     artifact_version: str | None = None  # default: that name's newest version

@@ -1,7 +1,11 @@
-"""`cairn evaluate`: measure recommenders on held-out sessions and compare each GRU with the baselines.
+"""`cairn evaluate`: measure recommenders on held-out sessions and decide which one to serve.
 
-Prints one table (rows: recommenders; columns: each metric with its 95% interval), then one verdict
-line per GRU, and writes the same numbers as JSON (keyed by recommender name).
+Prints one table (rows: recommenders; columns: each metric with its 95% interval), one verdict line
+per GRU, then the decision (offline/evaluate/decision.py): the strongest simple recommender, the
+best one's lift over it with its paired interval, the p99 cost per click and the recommendation.
+Writes the same numbers as JSON: one entry per recommender (keyed by name) and `decision` (the
+choices made on the validation split, costs per click, breakdowns, the Recall@k curves, the
+verdict). With --report DIR it also writes the report (report.html, report.md, plots).
 """
 
 from __future__ import annotations
@@ -16,11 +20,17 @@ from pathlib import Path
 
 from service.errors import ArtifactError, EvaluateOptionError
 from offline.evaluate.baselines import ItemKNN, Markov, Popularity, SessionPopularity, click_counts
+from offline.evaluate.session_knn import DEFAULT_CANDIDATES, DEFAULT_NEIGHBOURS, DEFAULT_WEIGHTING, WEIGHTINGS, SessionKNN
 from offline.data.dataset import PreparedData
 from offline.evaluate.evaluation import Result, evaluate, format_table, results_json, verdict_lines
+from offline.evaluate.decision import build_decision
 from offline.evaluate.scorer import SessionScorer
+from offline.evaluate.serving_cost import click_costs
+from offline.evaluate.training_curve import validation_curve
+from offline.evaluate.tuning import choose_exclude_seen, tune_session_knn
 
-BASELINES = ("pop", "spop", "markov", "item-knn")
+BASELINES = ("pop", "spop", "markov", "item-knn", "session-knn")
+EXCLUDE_SEEN = ("on", "off", "auto")
 DEFAULT_RECOMMENDERS = ",".join(BASELINES)
 
 
@@ -41,6 +51,14 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--artifact", type=Path, nargs="+", action="extend", default=[], metavar="PATH", help="model artifacts (ONNX) from `cairn export`")
     parser.add_argument("--knn-neighbours", default="100", metavar="N", help="neighbours kept per item by item-knn (default 100)")
     parser.add_argument("--knn-regulariser", default="20", metavar="L", help="item-knn support regulariser lambda (default 20)")
+    parser.add_argument("--sknn-neighbours", default=str(DEFAULT_NEIGHBOURS), metavar="K", help=f"session-knn: neighbour sessions k (default {DEFAULT_NEIGHBOURS})")
+    parser.add_argument("--sknn-candidates", default=str(DEFAULT_CANDIDATES), metavar="M", help=f"session-knn: most recent candidate sessions M (default {DEFAULT_CANDIDATES})")
+    parser.add_argument("--sknn-weighting", choices=WEIGHTINGS, default=DEFAULT_WEIGHTING, help=f"session-knn: weights of the visit's clicks, linear = recent clicks weigh more (default {DEFAULT_WEIGHTING})")
+    parser.add_argument("--tune", action="store_true", help="choose session-knn's k, M and weighting on the validation split (overrides the --sknn-* values)")
+    parser.add_argument("--exclude-seen", choices=EXCLUDE_SEEN, default="off", help="rank the visit's clicked items last for every recommender, as the service does; auto: choose on the validation split (default off)")
+    parser.add_argument("--p99-budget-ms", default="25", metavar="MS", help="page budget for one click's p99 in the verdict (default 25)")
+    parser.add_argument("--cost-clicks", default="2000", metavar="N", help="clicks timed per recommender for its cost per click (default 2000; 0: not timed)")
+    parser.add_argument("--report", type=Path, metavar="DIR", help="also write the report there: report.html, report.md, plots (PNG) and evaluation.json")
     parser.add_argument("--bootstrap", default="1000", metavar="N", help="bootstrap resamples of the sessions (default 1000)")
     parser.add_argument("--seed", default="0", metavar="N", help="seed of the bootstrap resamples (default 0)")
     parser.add_argument("--out", type=Path, metavar="FILE", help="JSON report (default DIR/evaluation-<split>.json)")
@@ -53,12 +71,25 @@ def run(args: argparse.Namespace) -> int:
     regulariser = _number("--knn-regulariser", args.knn_regulariser, minimum=0.0)
     bootstrap = _integer("--bootstrap", args.bootstrap, minimum=1)
     seed = _integer("--seed", args.seed, minimum=0)
+    sknn = {
+        "neighbours": _integer("--sknn-neighbours", args.sknn_neighbours, minimum=1),
+        "candidates": _integer("--sknn-candidates", args.sknn_candidates, minimum=1),
+        "weighting": args.sknn_weighting,
+    }
+    budget_ms = _number("--p99-budget-ms", args.p99_budget_ms, minimum=0.0)
+    cost_clicks = _integer("--cost-clicks", args.cost_clicks, minimum=0)
     if not names and not args.scenario and not args.checkpoint and not args.artifact:
         raise EvaluateOptionError("nothing to evaluate: give --recommenders, --scenario, --checkpoint or --artifact")
 
     data = PreparedData.load(args.data)
     split = data.split(args.split)
     counts = click_counts(data.train, data.n_items)
+    k_main = 20 if 20 in ks else ks[0]
+    tuning: list[dict] = []
+    if args.tune and "session-knn" in names:
+        started = time.perf_counter()
+        sknn, tuning = tune_session_knn(data.train, data.valid, data.n_items, counts, k_main, exclude_seen=args.exclude_seen == "on")
+        print(f"tuned session-knn on the validation split in {time.perf_counter() - started:.1f} s: {sknn}", file=sys.stderr)
 
     scorers: list[Callable[[], SessionScorer]] = []
     if args.scenario is not None:
@@ -68,36 +99,84 @@ def run(args: argparse.Namespace) -> int:
         "spop": lambda: SessionPopularity(counts),
         "markov": lambda: Markov.fit(data.train, data.n_items),
         "item-knn": lambda: ItemKNN.fit(data.train, data.n_items, neighbours=neighbours, regulariser=regulariser),
+        "session-knn": lambda: SessionKNN.fit(data.train, data.n_items, **sknn),
     }
     scorers += [fits[name] for name in names]
     scorers += [(lambda p=p: _lazy("offline.evaluate.gru_scorer", "load_torch_scorer")(p)) for p in args.checkpoint]
     scorers += [(lambda p=p: _lazy("offline.evaluate.onnx_scorer", "load_onnx_scorer")(p)) for p in args.artifact]
 
-    results: dict[str, Result] = {}
+    built: list[SessionScorer] = []
     for build in scorers:
-        started = time.perf_counter()
         scorer = build()
         if scorer.n_items != data.n_items:
             raise ArtifactError(f"{scorer.name} scores {scorer.n_items} items but {args.data} has {data.n_items}")
-        result = evaluate(scorer, split, ks, popularity=counts, bootstrap=bootstrap, seed=seed)
+        built.append(scorer)
+    exclude_seen, seen_table = args.exclude_seen == "on", None
+    if args.exclude_seen == "auto":
+        started = time.perf_counter()
+        exclude_seen, seen_table = choose_exclude_seen([s for s in built if s.name != "oracle"] or built, data.valid, counts, k_main)
+        print(f"chose exclude-seen {'on' if exclude_seen else 'off'} on the validation split in {time.perf_counter() - started:.1f} s", file=sys.stderr)
+
+    results: dict[str, Result] = {}
+    by_name: dict[str, SessionScorer] = {}
+    for scorer in built:
+        started = time.perf_counter()
+        result = evaluate(scorer, split, ks, popularity=counts, bootstrap=bootstrap, seed=seed, exclude_seen=exclude_seen)
         result.name = _unique(scorer.name, results)
         results[result.name] = result
+        by_name[result.name] = scorer
         print(f"evaluated {result.name} in {time.perf_counter() - started:.1f} s", file=sys.stderr)
+
+    costs = {}
+    if cost_clicks:
+        started = time.perf_counter()
+        costs = click_costs(by_name, data, split, counts, cost_clicks, exclude_seen, neighbours, regulariser)
+        print(f"timed {len(costs)} recommenders per click in {time.perf_counter() - started:.1f} s", file=sys.stderr)
+    decision = build_decision(
+        results, costs, budget_ms, bootstrap, seed,
+        settings={
+            "split": args.split,
+            "catalogue_items": data.n_items,
+            "exclude_seen": {"choice": args.exclude_seen, "value": exclude_seen, "validation_recall": seen_table},
+            "session_knn": {**sknn, "tuned": bool(tuning), "trials": tuning} if "session-knn" in names else None,
+        },
+        training={name: validation_curve(p) for name, p in zip(_gru_names(results, args.checkpoint), args.checkpoint)},
+    )  # fmt: skip
 
     first = next(iter(results.values()))
     print(f"{args.split} split: {first.n_sessions} sessions, {first.n_events} target clicks, {data.n_items} items")
     print(format_table(results))
     for line in verdict_lines(results):
         print(line)
+    print(f"exclude-seen: {'on' if exclude_seen else 'off'} ({args.exclude_seen}) for every recommender")
+    for name, cost in costs.items():
+        print(f"cost per click, {name}: p50 {cost.p50_ms:.3f} ms, p99 {cost.p99_ms:.3f} ms ({cost.how}, {cost.clicks} clicks)")
+    for line in decision["verdict"].get("lines", []):
+        print(line)
 
     out = args.out if args.out is not None else Path(args.data) / f"evaluation-{args.split}.json"
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(json.dumps(results_json(results), indent=2) + "\n", encoding="utf-8")
+        report = {**results_json(results), "decision": decision}
+        out.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
     except OSError as exc:
         raise EvaluateOptionError(f"--out {out}: cannot write the report ({exc.strerror or exc})") from exc
     print(f"wrote {out}")
+    if args.report is not None:
+        from offline.evaluate.report import write_report
+
+        try:
+            page = write_report(args.report, report)
+        except OSError as exc:
+            raise EvaluateOptionError(f"--report {args.report}: cannot write the report ({exc.strerror or exc})") from exc
+        print(f"wrote {page}")
     return 0
+
+
+def _gru_names(results: dict[str, Result], checkpoints: list[Path]) -> list[str]:
+    """Result names of the checkpoints, in order (they follow the oracle and the baselines)."""
+    grus = [n for n in results if n.startswith("gru") and not n.endswith("-onnx") and "-onnx-" not in n]
+    return grus[: len(checkpoints)]
 
 
 def parse_ks(values: list[str]) -> tuple[int, ...]:

@@ -21,6 +21,7 @@ from tqdm import tqdm
 
 from service.errors import InputDataError
 from offline.data.dataset import SessionSplit
+from offline.evaluate.breakdowns import GroupSums, popularity_groups
 from offline.evaluate.next_clicks import iterate_events, target_ranks
 from offline.evaluate.ranking_metrics import (
     bootstrap_weights,
@@ -32,8 +33,9 @@ from offline.evaluate.ranking_metrics import (
 )
 from offline.evaluate.scorer import SessionScorer
 
-# The baselines a GRU must beat for its verdict line: the strongest sequential simple models.
-VERDICT_BASELINES = ("markov", "item-knn")
+# The baselines a GRU must beat for its verdict line: the strongest sequential simple models
+# (the full decision, over every simple recommender and with the cost per click, is decision.py).
+VERDICT_BASELINES = ("markov", "item-knn", "session-knn")
 # Pending (session, item) entries of the top-k lists before they are deduplicated.
 _INCIDENCE_COMPACT_AT = 1 << 22
 
@@ -62,6 +64,8 @@ class Result:
     bootstrap: int
     seed: int
     metrics: dict[str, Metric] = field(default_factory=dict)
+    groups: GroupSums | None = None  # per-session sums of the breakdowns and the Recall@k curve (breakdowns.py)
+    exclude_seen: bool = False
 
     @property
     def n_events(self) -> int:
@@ -92,10 +96,14 @@ def evaluate(
     bootstrap: int = 1000,
     seed: int = 0,
     progress: bool | None = None,
+    exclude_seen: bool = False,
 ) -> Result:
     """Measure `scorer` on every session of `split` with two or more clicks.
 
-    popularity: training clicks per item (or shares), [n_items], for click_share@k.
+    popularity: training clicks per item (or shares), [n_items], for click_share@k and the
+    head/torso/tail groups.
+    exclude_seen: rank the items the visit has already clicked last, as the service leaves them
+    out of its lists (the same rule for every recommender; a repeat click is then a miss).
     progress: a tqdm bar on stderr; None shows it only when stderr is a terminal.
     """
     ks = _check_ks(ks)
@@ -115,13 +123,15 @@ def evaluate(
     columns = tuple(f"{m}@{k}" for k in ks for m in ("recall", "mrr", "click_share"))
     sums = np.zeros((split.n_sessions, len(columns)), dtype=np.float64)  # per split session
     incidence = _TopListIncidence(n_items)
+    groups = GroupSums(split.n_sessions, popularity_groups(np.asarray(popularity, dtype=np.float64)))
     kmax = max(ks)
     show = sys.stderr.isatty() if progress is None else progress
     bar = tqdm(total=int((lengths[evaluated] - 1).sum()), desc=scorer.name, unit="event", file=sys.stderr, disable=not show)
 
     for batch in iterate_events(scorer, split, batch_size):
-        ranks = target_ranks(batch.scores, batch.targets)  # [m]
-        top = top_k_items(batch.scores, kmax)  # [m, kk], best first
+        scores = _without_seen(batch.scores, batch.sessions, batch.positions, split) if exclude_seen else batch.scores
+        ranks = target_ranks(scores, batch.targets)  # [m]
+        top = top_k_items(scores, kmax)  # [m, kk], best first
         pop_cumulative = np.cumsum(shares[top], axis=1)  # [m, kk]
         values = np.empty((len(ranks), len(columns)), dtype=np.float64)  # [m, columns]
         for i, k in enumerate(ks):
@@ -132,6 +142,7 @@ def evaluate(
             values[:, 3 * i + 2] = pop_cumulative[:, kk - 1] / kk
         sums[batch.sessions] += values  # one event per session in a batch: no repeated rows
         incidence.add(batch.sessions, top)
+        groups.add(batch.sessions, batch.positions, batch.targets, ranks)
         bar.update(len(ranks))
     bar.close()
 
@@ -146,9 +157,23 @@ def evaluate(
         incidence=incidence.matrices(ks, evaluated, split.n_sessions),
         bootstrap=int(bootstrap),
         seed=int(seed),
+        groups=groups.select(evaluated),
+        exclude_seen=bool(exclude_seen),
     )
     result.metrics = _metrics_with_intervals(result)
     return result
+
+
+def _without_seen(scores: np.ndarray, sessions: np.ndarray, positions: np.ndarray, split: SessionSplit) -> np.ndarray:
+    """A copy of `scores` [m, n_items] with the items each visit clicked before its target at -inf.
+
+    A copy: scorers own the buffer they return and may build the next scores on it.
+    """
+    out = np.array(scores, dtype=scores.dtype, copy=True)
+    rows = np.repeat(np.arange(len(sessions)), positions)  # event m has positions[m] clicks before it
+    within = np.arange(len(rows)) - np.repeat(np.cumsum(positions) - positions, positions)
+    out[rows, split.items[np.repeat(split.offsets[sessions], positions) + within]] = -np.inf
+    return out
 
 
 def lift(result_a: Result, result_b: Result, metric: str) -> tuple[float, tuple[float, float]]:

@@ -207,6 +207,9 @@ def export_artifact(
 
     `names` (item id -> display name) goes into the artifact for the items the model knows; a
     catalogue lists items the prepared data may have dropped, and those are left out.
+    From `metrics` (the JSON of `cairn evaluate`), its `decision` part supplies the session-KNN
+    parameters (as tuned) and the exclude-seen choice, which become the artifact's session index and
+    serving default; without one, the published session-KNN defaults and exclude_seen = true.
     """
     checkpoint, data = Path(checkpoint), Path(data)
     if neighbours < 1:
@@ -232,10 +235,24 @@ def export_artifact(
 
     # Imported here: baselines pulls in scipy, which nothing else in the export needs.
     from offline.evaluate.baselines import ItemKNN
+    from offline.evaluate.session_knn import DEFAULT_CANDIDATES, DEFAULT_NEIGHBOURS, DEFAULT_WEIGHTING, session_index
+
+    decision = (metrics or {}).get("decision") if isinstance((metrics or {}).get("decision"), dict) else {}
+    tuned = decision.get("session_knn") if isinstance(decision.get("session_knn"), dict) else {}
+    sknn = {
+        "neighbours": int(tuned.get("neighbours", DEFAULT_NEIGHBOURS)),
+        "candidates": int(tuned.get("candidates", DEFAULT_CANDIDATES)),
+        "weighting": str(tuned.get("weighting", DEFAULT_WEIGHTING)),
+    }
+    defaults = decision.get("serving_defaults") if isinstance(decision.get("serving_defaults"), dict) else {}
+    exclude_seen = defaults.get("exclude_seen", True)
+    if not isinstance(exclude_seen, bool):
+        raise InputDataError(f"the metrics' decision.serving_defaults.exclude_seen must be true or false, got {exclude_seen!r}")
 
     knn = ItemKNN.fit(prepared.train, prepared.n_items, neighbours=neighbours, regulariser=regulariser)
     neighbour_items, neighbour_scores = knn.neighbour_table()  # int32 [n_items, K] (-1 pads), float32 [n_items, K]
     popularity = np.bincount(prepared.train.items, minlength=prepared.n_items).astype(np.float32)  # [n_items]
+    sessions = session_index(prepared.train, prepared.n_items, sknn["candidates"])
 
     hyperparameters = extra.get("hyperparameters", {})
     return write_artifact(
@@ -251,12 +268,24 @@ def export_artifact(
             "data_fingerprint": fingerprint,
             "model": _model_fields(model.config),
             "hyperparameters": _jsonable(hyperparameters, "the checkpoint's hyperparameters"),
-            "metrics": _jsonable(metrics or {}, "the metrics"),
+            # the rows and the verdict; the breakdowns and curves stay in the report
+            "metrics": _jsonable(_without_details(metrics or {}), "the metrics"),
             "neighbour_table": {"kind": "item-knn", "neighbours": neighbours, "regulariser": regulariser},
+            "session_knn": sknn,
+            "serving_defaults": {"exclude_seen": exclude_seen},
         },
         overwrite=overwrite,
         item_names={i: names[i] for i in prepared.item_ids if i in names} if names else None,
+        session_index=sessions,
     )
+
+
+def _without_details(metrics: dict) -> dict:
+    decision = metrics.get("decision")
+    if not isinstance(decision, dict):
+        return metrics
+    kept = {k: decision[k] for k in ("verdict", "serving_defaults", "session_knn", "exclude_seen") if k in decision}
+    return {**metrics, "decision": kept}
 
 
 def write_random_artifact(
@@ -270,6 +299,7 @@ def write_random_artifact(
     seed: int = 0,
     overwrite: bool = False,
     item_ids: list[str] | None = None,
+    exclude_seen: bool = True,
 ) -> Path:
     """An artifact with random weights and tables, for benchmarks and service tests (item ids
     sku-000000... unless given).
@@ -301,6 +331,7 @@ def write_random_artifact(
     table_scores = np.zeros((n_items, neighbours), dtype=np.float32)
     table_items[:, :k], table_scores[:, :k] = items, scores
     popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
+    sessions = _random_session_index(n_items, popularity, rng)
 
     return write_artifact(
         store,
@@ -317,9 +348,28 @@ def write_random_artifact(
             "hyperparameters": {"random_seed": seed},
             "metrics": {},
             "neighbour_table": {"kind": "random", "neighbours": neighbours},
+            "session_knn": {"neighbours": 100, "candidates": sessions.candidates, "weighting": "linear"},
+            "serving_defaults": {"exclude_seen": exclude_seen},
         },
         overwrite=overwrite,
+        session_index=sessions,
     )
+
+
+def _random_session_index(n_items: int, popularity: np.ndarray, rng: np.random.Generator, candidates: int = 500):
+    """A session-KNN index over random sessions (5 per item, at most a million; 1-8 clicks drawn by
+    popularity), so a random artifact costs the served session-KNN what a real one of its size does."""
+    from offline.data.dataset import SessionSplit
+    from offline.evaluate.session_knn import session_index
+
+    n_sessions = min(5 * n_items, 1_000_000)
+    lengths = rng.integers(1, 9, size=n_sessions)
+    p = popularity.astype(np.float64)
+    p /= p.sum()
+    items = rng.choice(n_items, size=int(lengths.sum()), p=p).astype(np.int32)
+    offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+    split = SessionSplit(items=items, offsets=offsets, times=np.zeros(len(items), dtype=np.int64))
+    return session_index(split, n_items, candidates)
 
 
 def _jsonable(value: Any, what: str) -> Any:

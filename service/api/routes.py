@@ -136,7 +136,7 @@ async def get_recommendations(
     request: Request,
     service: ServiceDep,
     count: Annotated[int | None, Query(ge=COUNT_MIN, le=COUNT_MAX)] = None,
-    exclude_seen: bool = True,
+    exclude_seen: bool | None = None,
     budget_ms: Annotated[int | None, Query(ge=BUDGET_MIN, le=BUDGET_MAX)] = None,
 ) -> Response:
     settings = service.settings

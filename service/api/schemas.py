@@ -57,7 +57,9 @@ class ClickRequest(BaseModel):
     item_id: ItemId = Field(description="the clicked item; an integer is taken as its decimal string")
     event_id: EventId | None = Field(None, description="client id of this click; a replayed one is not applied twice")
     count: Count | None = None
-    exclude_seen: StrictBool = Field(True, description="leave out items the visit has clicked")
+    exclude_seen: StrictBool | None = Field(
+        None, description="leave out items the visit has clicked; unset: the artifact's serving default (true unless its evaluation chose otherwise)"
+    )
     budget_ms: BudgetMs | None = None
 
     @field_validator("item_id", "event_id", mode="after")
@@ -74,7 +76,7 @@ class ScoredItem(BaseModel):
 class RecommendationAnswer(BaseModel):
     session_id: str
     items: list[ScoredItem]
-    served_by: str = Field(description="gru, neighbours or popularity")
+    served_by: str = Field(description="gru, session-knn, neighbours or popularity")
     artifact: str = Field(description="name/version of the artifact that answered")
     fallback_reason: str | None = Field(
         description=(
@@ -97,8 +99,8 @@ class ServingChoiceBody(BaseModel):
 
     name: Annotated[str, StringConstraints(strict=True, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")]
     version: Annotated[str, StringConstraints(strict=True, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")]
-    recommender: Annotated[str, StringConstraints(strict=True, pattern=r"^(gru|neighbours|popularity)$")] | None = Field(
-        None, description="gru, neighbours or popularity; unset: keep the current one"
+    recommender: Annotated[str, StringConstraints(strict=True, pattern=r"^(gru|neighbours|popularity|session-knn)$")] | None = Field(
+        None, description="gru, neighbours, popularity or session-knn; unset: keep the current one"
     )
 
 

@@ -1,6 +1,6 @@
 """`cairn switch`: choose what a running service serves (or roll back), without a hand-written curl.
 
-    cairn switch NAME/VERSION [--recommender gru|neighbours|popularity] [--url http://127.0.0.1:8000]
+    cairn switch NAME/VERSION [--recommender gru|neighbours|popularity|session-knn] [--url http://127.0.0.1:8000]
 
 It calls the admin route `PUT /v1/serving` with the bearer token from CAIRN_ADMIN_TOKEN (read through
 the settings object, like every other setting). The default URL is the one `cairn serve` listens on

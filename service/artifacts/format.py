@@ -8,8 +8,12 @@ Layout: `<store>/<name>/<version>/` holding
     popularity.npy   float32 [n_items], training click counts
     item_names.json  optional: {item id: display name} for some or all items (the demo shop's page
                      shows them); listed in `files` and checked like the others when present
+    sessions.npz     optional: the session-KNN index (service/runtime/session_knn.py, `SessionIndex`):
+                     session_indptr, session_items, item_indptr, item_sessions; its parameters
+                     (neighbours, candidates, weighting) in the manifest's `session_knn`
     manifest.json    format, name, version, created_at, data_fingerprint, model, hyperparameters,
-                     metrics, files {file name: SHA-256 hex}, manifest_sha256
+                     metrics, serving_defaults {exclude_seen}, files {file name: SHA-256 hex},
+                     manifest_sha256
 
 step.onnx I/O:
     inputs   items int64 [B]; hidden float32 [L, B, H]; top_n int64 [1]
@@ -38,6 +42,7 @@ from typing import Any
 import numpy as np
 
 from service.errors import ArtifactError
+from service.runtime.session_knn import WEIGHTINGS, SessionIndex
 
 FORMAT = "cairn-artifact/1"
 MANIFEST = "manifest.json"
@@ -46,6 +51,7 @@ ITEM_IDS = "item_ids.json"
 NEIGHBOURS = "neighbours.npz"
 POPULARITY = "popularity.npy"
 ITEM_NAMES = "item_names.json"
+SESSIONS = "sessions.npz"  # optional
 REQUIRED_FILES = (STEP_GRAPH, ITEM_IDS, NEIGHBOURS, POPULARITY)
 _WRITER_FIELDS = frozenset({"format", "name", "version", "created_at", "files", "manifest_sha256"})
 _UNSET_DIGEST = "0" * 64
@@ -80,6 +86,20 @@ class Artifact:
     popularity: np.ndarray  # float32 [n_items]
     item_index: dict[str, int] = field(repr=False, default_factory=dict)
     item_names: dict[str, str] = field(repr=False, default_factory=dict)  # empty when the artifact has no names
+    session_index: SessionIndex | None = field(repr=False, default=None)  # None: this artifact cannot serve session-knn
+
+    @property
+    def session_knn(self) -> dict[str, Any]:
+        """{"neighbours": k, "candidates": M, "weighting": ...} of the session index (empty without one)."""
+        value = self.manifest.get("session_knn")
+        return value if isinstance(value, dict) else {}
+
+    @property
+    def exclude_seen(self) -> bool:
+        """The serving default for requests that do not say: the evaluation's choice, else True."""
+        defaults = self.manifest.get("serving_defaults")
+        value = defaults.get("exclude_seen") if isinstance(defaults, dict) else None
+        return value if isinstance(value, bool) else True
 
     @property
     def name(self) -> str:
@@ -119,9 +139,11 @@ def write_artifact(
     manifest_fields: dict[str, Any],
     overwrite: bool = False,
     item_names: dict[str, str] | None = None,
+    session_index: SessionIndex | None = None,
 ) -> Path:
     """Write one artifact atomically; returns its folder. `item_names` (id -> display name, for
-    items of `item_ids` only) adds the optional item_names.json."""
+    items of `item_ids` only) adds the optional item_names.json. With `session_index`, manifest_fields
+    must hold its parameters as `session_knn` ({"neighbours", "candidates", "weighting"})."""
     _check_name(name, "name")
     _check_name(version, "version")
     reserved = sorted(set(manifest_fields) & _WRITER_FIELDS)
@@ -129,9 +151,13 @@ def write_artifact(
         raise ArtifactError(f"manifest fields {reserved} are written by write_artifact itself")
     neighbour_items, neighbour_scores, popularity = np.asarray(neighbour_items), np.asarray(neighbour_scores), np.asarray(popularity)
     _check_tables(len(item_ids), neighbour_items, neighbour_scores, popularity, f"artifact {name}/{version}")
+    files = list(REQUIRED_FILES)
     if item_names:
         _check_names(item_names, set(map(str, item_ids)), f"artifact {name}/{version}")
-    files = (*REQUIRED_FILES, ITEM_NAMES) if item_names else REQUIRED_FILES
+        files.append(ITEM_NAMES)
+    if session_index is not None:
+        _check_session_index(len(item_ids), session_index, manifest_fields.get("session_knn"), f"artifact {name}/{version}")
+        files.append(SESSIONS)
     target = Path(store) / name / version
     if target.exists() and not overwrite:
         raise ArtifactError(f"{target} exists already; choose another version (--version) or replace it (--overwrite)")
@@ -144,6 +170,8 @@ def write_artifact(
         np.save(tmp / POPULARITY, popularity.astype(np.float32))
         if item_names:
             (tmp / ITEM_NAMES).write_text(json.dumps(item_names, ensure_ascii=False, sort_keys=True), encoding="utf-8")
+        if session_index is not None:
+            np.savez(tmp / SESSIONS, **session_index.arrays())
         manifest = {
             "format": FORMAT,
             "name": name,
@@ -234,6 +262,20 @@ def load_artifact(path: Path) -> Artifact:
     _check_tables(n, n_items_arr, n_scores, popularity, str(path))
     if item_names:
         _check_names(item_names, set(item_ids), str(path / ITEM_NAMES))
+    session_index = None
+    if SESSIONS in manifest["files"]:
+        try:
+            with np.load(path / SESSIONS) as z:
+                session_index = SessionIndex(
+                    session_indptr=z["session_indptr"].astype(np.int64),
+                    session_items=z["session_items"].astype(np.int32),
+                    item_indptr=z["item_indptr"].astype(np.int64),
+                    item_sessions=z["item_sessions"].astype(np.int32),
+                    candidates=int(manifest.get("session_knn", {}).get("candidates", 0)) if isinstance(manifest.get("session_knn"), dict) else 0,
+                )
+        except (OSError, ValueError, KeyError) as exc:
+            raise ArtifactError(f"{path / SESSIONS}: unreadable session index ({exc})") from exc
+        _check_session_index(n, session_index, manifest.get("session_knn"), str(path))
     return Artifact(
         path=path,
         manifest=manifest,
@@ -243,6 +285,7 @@ def load_artifact(path: Path) -> Artifact:
         popularity=popularity.astype(np.float32),
         item_index={item: i for i, item in enumerate(item_ids)},
         item_names=item_names,
+        session_index=session_index,
     )
 
 
@@ -303,6 +346,22 @@ def _check_names(item_names: Any, item_ids: set[str], where: str) -> None:
     stray = sorted(set(item_names) - item_ids)
     if stray:
         raise ArtifactError(f"{where}: names for {len(stray)} item(s) the artifact does not have, e.g. {stray[0]!r}")
+def _check_session_index(n: int, index: SessionIndex, params: Any, where: str) -> None:
+    """A session index that cannot send the service out of bounds, and its parameters."""
+    ok = isinstance(params, dict)
+    neighbours, candidates, weighting = (params.get("neighbours"), params.get("candidates"), params.get("weighting")) if ok else (None,) * 3
+    if not (isinstance(neighbours, int) and neighbours >= 1 and isinstance(candidates, int) and candidates >= 1 and weighting in WEIGHTINGS):
+        raise ArtifactError(f"{where}: session_knn needs neighbours >= 1, candidates >= 1 and a weighting of {WEIGHTINGS}, got {params!r}")
+    for indptr, values, rows, bound, what in (
+        (index.session_indptr, index.session_items, None, n, "session_items"),
+        (index.item_indptr, index.item_sessions, n, index.n_sessions, "item_sessions"),
+    ):
+        if indptr.ndim != 1 or len(indptr) < 1 or indptr[0] != 0 or indptr[-1] != len(values) or (np.diff(indptr) < 0).any():
+            raise ArtifactError(f"{where}: session index {what} has a bad pointer array")
+        if rows is not None and len(indptr) != rows + 1:
+            raise ArtifactError(f"{where}: session index covers {len(indptr) - 1} items, the artifact has {rows}")
+        if len(values) and (values.min() < 0 or values.max() >= bound):
+            raise ArtifactError(f"{where}: session index {what} points outside 0..{bound - 1}")
 
 
 def _fsync_path(path: Path) -> None:

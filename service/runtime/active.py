@@ -37,6 +37,7 @@ from service.errors import ArtifactError, CairnError, ModelNotReadyError, Settin
 from service.runtime.batching import StepBatcher
 from service.runtime.onnx_step import OnnxStep
 from service.runtime.recommenders import GruRecommender, NeighbourRecommender, PopularityRecommender, Recommender
+from service.runtime.session_knn import SessionKnnRecommender
 from service.store.base import SessionStore
 
 log = logging.getLogger("cairn.service")
@@ -52,7 +53,7 @@ ModelWrapper = Callable[[Recommender], Recommender]
 class ModelChoice:
     name: str
     version: str
-    recommender: str  # gru | neighbours | popularity
+    recommender: str  # gru | neighbours | popularity | session-knn
     # When a switch chose this (epoch seconds); 0.0 for the choice a worker was configured with. Of
     # two choices the one switched to last wins, so workers agree whatever order they learn them in.
     switched_at: float = field(default=0.0, compare=False)
@@ -93,6 +94,11 @@ class LoadedModel:
         self.item_ids = artifact.item_ids  # index -> id
         self.popularity = PopularityRecommender(artifact.popularity)
         self.neighbours = NeighbourRecommender(artifact.neighbour_items, artifact.neighbour_scores, self.popularity)
+        self.exclude_seen = artifact.exclude_seen  # the default for requests that do not say
+        self.session_knn: SessionKnnRecommender | None = None
+        if artifact.session_index is not None:
+            params = artifact.session_knn
+            self.session_knn = SessionKnnRecommender(artifact.session_index, self.popularity, params["neighbours"], params["weighting"])
         self.batcher = StepBatcher(step, max_batch=max_batch)
         self._gru = GruRecommender(self.batcher)
         self.gru: Recommender = self._gru  # what the click path calls; `wrap` may put a test double around it
@@ -175,6 +181,11 @@ def resolve_choices(settings: Settings) -> list[ModelChoice]:
     return [ModelChoice(name, a.version, settings.recommender) for a in reversed(good)]
 
 
+def _check_can_serve(model: LoadedModel, choice: ModelChoice) -> None:
+    if choice.recommender == "session-knn" and model.session_knn is None:
+        raise ArtifactError(f"{choice.tag} has no session index, so it cannot serve session-knn (export it again with this cairn)")
+
+
 def artifact_path(settings: Settings, name: str, version: str) -> Path:
     return Path(settings.artifacts) / name / version
 
@@ -243,6 +254,7 @@ class ActiveModel:
         async with self._lock:
             old = self._current
             if old is not None and old[0].tag == choice.tag:
+                _check_can_serve(old[0], choice)
                 if before_swap is not None:
                     await before_swap()
                 self._current = (old[0], choice)  # same artifact (another recommender, or none): nothing to load
@@ -258,6 +270,11 @@ class ActiveModel:
                 self.load_results[choice.tag] = None
                 if self._wrap_model is not None:
                     model.wrap(self._wrap_model)
+                try:
+                    _check_can_serve(model, choice)
+                except ArtifactError:
+                    await model.close()
+                    raise
                 model.start()
                 if before_swap is not None:
                     try:

@@ -58,7 +58,7 @@ _NO_SEEN: frozenset[int] = frozenset()
 class Answer:
     item_ids: list[str]
     scores: list[float]
-    served_by: str  # gru | neighbours | popularity
+    served_by: str  # gru | session-knn | neighbours | popularity
     artifact: str  # "name/version" of the artifact that answered
     fallback_reason: str | None
     sequence: int  # clicks the visit has applied; 0 when the click is not known to be recorded
@@ -130,10 +130,11 @@ class Visits:
         item_id: str,
         event_id: str | None,
         count: int,
-        exclude_seen: bool,
+        exclude_seen: bool | None,
         budget_s: float,
         timing: Timing,
     ) -> Answer:
+        """exclude_seen None: the serving artifact's default (its evaluation's choice)."""
         deadline = timing.started + budget_s
         try:
             async with self._locks.hold(session_id, deadline if self.gate.guarded else None):
@@ -167,7 +168,7 @@ class Visits:
         except _LockWaitExpired:
             return self._without_visit(item_id, count, exclude_seen, "deadline", "no")
 
-    async def current(self, session_id: str, count: int, exclude_seen: bool, budget_s: float, timing: Timing) -> Answer:
+    async def current(self, session_id: str, count: int, exclude_seen: bool | None, budget_s: float, timing: Timing) -> Answer:
         deadline = timing.started + budget_s
         model, choice = self.active.current
         try:
@@ -196,12 +197,14 @@ class Visits:
         item_id: str,
         event_id: str | None,
         count: int,
-        exclude_seen: bool,
+        exclude_seen: bool | None,
         deadline: float,
         timing: Timing,
     ) -> tuple[SessionState, Answer]:
         history = state.items if state is not None else ()
         index = model.index_of(item_id)
+        if exclude_seen is None:
+            exclude_seen = model.exclude_seen
         seen = frozenset(model.known_indices((*history, item_id))) if exclude_seen else _NO_SEEN
         # What the new state keeps of the GRU: unchanged unless the GRU ran on this click.
         hidden = state.hidden if state is not None else None
@@ -232,6 +235,9 @@ class Visits:
             if reason is not None:
                 ranking, served_by = self._fallback(model, index, count, seen)
                 hidden = previous = tag = None  # the next request rebuilds the state by replay
+        elif kind is RecommenderKind.SESSION_KNN:
+            ranking, served_by, reason = await self._session_knn(model, (*history, item_id), index, count, seen, True, deadline, timing)
+            hidden = previous = tag = None  # the GRU did not see this click
         else:
             ranking, served_by = self._fallback(model, index if kind is RecommenderKind.NEIGHBOURS else -1, count, seen)
             hidden = previous = tag = None  # the GRU did not see this click
@@ -259,10 +265,12 @@ class Visits:
         kind: RecommenderKind,
         state: SessionState | None,
         count: int,
-        exclude_seen: bool,
+        exclude_seen: bool | None,
         deadline: float,
         timing: Timing,
     ) -> Answer:
+        if exclude_seen is None:
+            exclude_seen = model.exclude_seen
         if state is None or not state.items:
             reason = None if kind is RecommenderKind.POPULARITY else "no_history"
             return self._answer(model, model.popularity.top(count), "popularity", reason, 0 if state is None else state.sequence)
@@ -271,6 +279,9 @@ class Visits:
         if last < 0:
             ranking, served_by = self._fallback(model, self._last_known(model, state.items), count, seen)
             reason = None if kind is RecommenderKind.POPULARITY else "unknown_item"
+            return self._answer(model, ranking, served_by, reason, state.sequence)
+        if kind is RecommenderKind.SESSION_KNN:
+            ranking, served_by, reason = await self._session_knn(model, state.items, last, count, seen, False, deadline, timing)
             return self._answer(model, ranking, served_by, reason, state.sequence)
         if kind is not RecommenderKind.GRU:
             ranking, served_by = self._fallback(model, last if kind is RecommenderKind.NEIGHBOURS else -1, count, seen)
@@ -291,6 +302,29 @@ class Visits:
                 return self._answer(model, ran[1], "gru", None, state.sequence)
         ranking, served_by = self._fallback(model, last, count, seen)
         return self._answer(model, ranking, served_by, reason, state.sequence)
+
+    async def _session_knn(
+        self, model: LoadedModel, items: tuple[str, ...], last: int, count: int, seen: frozenset[int], saves: bool, deadline: float, timing: Timing
+    ) -> tuple[Ranking, str, str | None]:
+        """Session-KNN over the visit's recent clicks (the stored history), through the model's gate:
+        (ranking, served_by, fallback reason); the neighbour table when it cannot answer."""
+        knn = model.session_knn
+        if knn is None:  # the switch refuses such a pair; a model swapped under a request falls back
+            ranking, served_by = self._fallback(model, last, count, seen)
+            return ranking, served_by, "model_unavailable"
+        admission = self._admit(1, saves, deadline)
+        reason = admission if isinstance(admission, str) else None
+        if reason is None:
+            visit = model.known_indices(items)
+
+            async def recommend() -> tuple[None, Ranking]:
+                return None, knn.recommend(visit, count, seen)
+
+            ran, reason = await self.gate.run(recommend, admission, timing)
+            if ran is not None:
+                return ran[1], "session-knn", None
+        ranking, served_by = self._fallback(model, last, count, seen)
+        return ranking, served_by, reason
 
     # -- guards ---------------------------------------------------------------------------------
 
@@ -317,9 +351,11 @@ class Visits:
 
     # -- helpers --------------------------------------------------------------------------------
 
-    def _without_visit(self, item_id: str, count: int, exclude_seen: bool, reason: str, recorded: str) -> Answer:
+    def _without_visit(self, item_id: str, count: int, exclude_seen: bool | None, reason: str, recorded: str) -> Answer:
         """The clicked item's neighbours (popularity for an unknown item); the click not known to be stored."""
         model, _ = self.active.current
+        if exclude_seen is None:
+            exclude_seen = model.exclude_seen
         index = model.index_of(item_id)
         seen = frozenset(model.known_indices((item_id,))) if exclude_seen else _NO_SEEN
         ranking, served_by = self._fallback(model, index, count, seen)

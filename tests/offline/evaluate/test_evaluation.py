@@ -180,7 +180,7 @@ def test_verdict_lines_compare_each_gru_with_the_strongest_sequential_baseline()
     assert table.splitlines()[0].split()[:3] == ["recommender", "recall@20", "mrr@20"]
     assert len(table.splitlines()) == 2 + 4
     assert verdict_lines({"gru-weak": results["gru-weak"]}) == [
-        "gru-weak: no markov or item-knn result with the same cut-off to compare with"
+        "gru-weak: no markov or item-knn or session-knn result with the same cut-off to compare with"
     ]
 
 
@@ -229,8 +229,8 @@ def test_cairn_evaluate_end_to_end(prepared: Path, tmp_path: Path, capsys: pytes
     rc = main(["evaluate", "--data", str(prepared), "--k", "20", "5", "--bootstrap", "50", "--out", str(out)])
     assert rc == 0
     report = json.loads(out.read_text())
-    assert list(report) == ["pop", "spop", "markov", "item-knn"]
-    for name, entry in report.items():
+    assert list(report) == ["pop", "spop", "markov", "item-knn", "session-knn", "decision"]
+    for name, entry in ((n, e) for n, e in report.items() if n != "decision"):
         for k in (20, 5):
             for m in ("recall", "mrr", "coverage", "click_share"):
                 metric = entry[f"{m}@{k}"]
@@ -244,7 +244,7 @@ def test_cairn_evaluate_on_the_validation_split_with_default_report(prepared: Pa
     rc = main(["evaluate", "--data", str(prepared), "--split", "valid", "--recommenders", "pop,markov", "--bootstrap", "20"])
     assert rc == 0
     report = json.loads((prepared / "evaluation-valid.json").read_text())
-    assert list(report) == ["pop", "markov"]
+    assert list(report) == ["pop", "markov", "decision"]
 
 
 @pytest.mark.parametrize(
