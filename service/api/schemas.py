@@ -71,6 +71,7 @@ class RecommendationAnswer(BaseModel):
     elapsed_ms: float
     sequence: int = Field(description="clicks this visit has applied; 0 with store_unavailable or deadline: this click was not recorded")
     duplicate: bool = Field(False, description="true when the click's event_id was applied before; nothing was applied now")
+    arm: str | None = Field(None, description="the visit's experiment arm; present only while an experiment runs (CAIRN_EXPERIMENT)")
 
 
 class ServingChoiceBody(BaseModel):
@@ -81,6 +82,9 @@ class ServingChoiceBody(BaseModel):
     recommender: Annotated[str, StringConstraints(strict=True, pattern=r"^(gru|neighbours|popularity)$")] | None = Field(
         None, description="gru, neighbours or popularity; unset: keep the current one"
     )
+    arm: Annotated[str, StringConstraints(strict=True, pattern=r"^[A-Za-z0-9][A-Za-z0-9_-]{0,31}$")] | None = Field(
+        None, description="while an experiment runs: the arm to switch (required then); without one: leave it out"
+    )
 
 
 class ServingAnswer(BaseModel):
@@ -88,6 +92,7 @@ class ServingAnswer(BaseModel):
     version: str
     recommender: str
     artifact: str = Field(description="name/version, as answers carry it")
+    arm: str | None = Field(None, description="the experiment arm switched; present only while an experiment runs")
 
 
 class ArtifactEntry(BaseModel):

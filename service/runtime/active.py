@@ -159,9 +159,11 @@ class ActiveModel:
         store: SessionStore,
         wrap_model: ModelWrapper | None = None,
         on_replaced: Callable[[str], None] | None = None,
+        slot: str = "",
     ) -> None:
         self.settings = settings
         self.store = store
+        self.slot = slot  # an experiment arm's name: its choice is shared under its own key
         self._wrap_model = wrap_model
         self._on_replaced = on_replaced
         self._follow_failing = False  # the last poll of the shared choice failed (logged once, not every poll)
@@ -194,7 +196,7 @@ class ActiveModel:
         if publish:
 
             async def before_swap() -> None:
-                await self.store.save_active_model(choice.to_bytes())
+                await self.store.save_active_model(choice.to_bytes(), self.slot)
 
         await self._install(choice, before_swap)
         if publish:
@@ -251,7 +253,7 @@ class ActiveModel:
 
     async def adopt_shared(self) -> None:
         """Switch to the choice kept in the store if it differs from ours (one poll of `follow`)."""
-        raw = await self.store.load_active_model()
+        raw = await self.store.load_active_model(self.slot)
         now = asyncio.get_running_loop().time()
         if raw is None or (self._refused is not None and self._refused[0] == raw and now < self._refused[1] + RETRY_REFUSED_S):
             return

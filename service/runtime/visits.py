@@ -37,6 +37,7 @@ from service.resilience.guarded_store import GuardedStore
 from service.resilience.guards import Guards
 from service.resilience.model_gate import Admission, ModelGate
 from service.runtime.active import ActiveModel, LoadedModel
+from service.runtime.arms import Arms
 from service.runtime.recommenders import GruState, Ranking
 from service.runtime.timing import Timing
 from service.store.base import SessionStore
@@ -58,6 +59,7 @@ class Answer:
     fallback_reason: str | None
     sequence: int  # clicks the visit has applied; 0 with store_unavailable or deadline: this click was not recorded
     duplicate: bool = False
+    arm: str | None = None  # the visit's experiment arm; None without an experiment
 
 
 class _LockWaitExpired(Exception):
@@ -107,6 +109,7 @@ class Visits:
         event_memory: int,
         guards: Guards | None = None,
         recent: RecentWrites | None = None,
+        arms: Arms | None = None,
     ) -> None:
         self.store = GuardedStore(store, guards)
         self.gate = ModelGate(guards)
@@ -115,6 +118,13 @@ class Visits:
         self.event_memory = event_memory
         self.recent = recent  # this process's last writes: a click may skip the store's read
         self._locks = _KeyedLocks()
+        self.arms = arms  # an experiment: each visit is served by its arm's model (service/runtime/arms.py)
+
+    def active_for(self, session_id: str) -> tuple[ActiveModel, str | None]:
+        """The model serving this visit and its experiment arm (None without an experiment)."""
+        if self.arms is None:
+            return self.active, None
+        return self.arms.for_session(session_id)
 
     async def click(
         self,
@@ -127,6 +137,22 @@ class Visits:
         timing: Timing,
     ) -> Answer:
         deadline = timing.started + budget_s
+        active, arm = self.active_for(session_id)
+        answer = await self._click(active, session_id, item_id, event_id, count, exclude_seen, deadline, timing)
+        answer.arm = arm
+        return answer
+
+    async def _click(
+        self,
+        active: ActiveModel,
+        session_id: str,
+        item_id: str,
+        event_id: str | None,
+        count: int,
+        exclude_seen: bool,
+        deadline: float,
+        timing: Timing,
+    ) -> Answer:
         try:
             async with self._locks.hold(session_id, deadline if self.gate.guarded else None):
                 recent = self.recent
@@ -136,7 +162,7 @@ class Visits:
                     if raw is None:
                         raw = await self.store.load(session_id, deadline, timing)
                     state = self._decode(raw)
-                    model, choice = self.active.current
+                    model, choice = active.current
                     kind = RecommenderKind(choice.recommender)
                     if event_id is not None and state is not None and event_id in state.event_ids:
                         answer = await self._current(model, kind, state, count, exclude_seen, deadline, timing)
@@ -154,19 +180,23 @@ class Visits:
             # With the guards on, the store breaker logs outages as they start and end; one line per
             # request would flood the log while one lasts.
             (log.debug if self.store.guarded else log.warning)("session store unavailable, answering without the visit: %s", exc)
-            return self._without_visit(item_id, count, exclude_seen, "store_unavailable")
+            return self._without_visit(active, item_id, count, exclude_seen, "store_unavailable")
         except _LockWaitExpired:
-            return self._without_visit(item_id, count, exclude_seen, "deadline")
+            return self._without_visit(active, item_id, count, exclude_seen, "deadline")
 
     async def current(self, session_id: str, count: int, exclude_seen: bool, budget_s: float, timing: Timing) -> Answer:
         deadline = timing.started + budget_s
-        model, choice = self.active.current
+        active, arm = self.active_for(session_id)
+        model, choice = active.current
         try:
             state = self._decode(await self.store.load(session_id, deadline, timing))
         except StoreError as exc:
             (log.debug if self.store.guarded else log.warning)("session store unavailable, answering without the visit: %s", exc)
-            return self._answer(model, model.popularity.top(count), "popularity", "store_unavailable", 0)
-        return await self._current(model, RecommenderKind(choice.recommender), state, count, exclude_seen, deadline, timing)
+            answer = self._answer(model, model.popularity.top(count), "popularity", "store_unavailable", 0)
+        else:
+            answer = await self._current(model, RecommenderKind(choice.recommender), state, count, exclude_seen, deadline, timing)
+        answer.arm = arm
+        return answer
 
     async def forget(self, session_id: str, budget_s: float, timing: Timing) -> None:
         """Delete the visit; StoreError when the store cannot (the caller answers 503)."""
@@ -305,9 +335,9 @@ class Visits:
 
     # -- helpers --------------------------------------------------------------------------------
 
-    def _without_visit(self, item_id: str, count: int, exclude_seen: bool, reason: str) -> Answer:
+    def _without_visit(self, active: ActiveModel, item_id: str, count: int, exclude_seen: bool, reason: str) -> Answer:
         """The clicked item's neighbours (popularity for an unknown item), the click not recorded."""
-        model, _ = self.active.current
+        model, _ = active.current
         index = model.index_of(item_id)
         seen = frozenset(model.known_indices((item_id,))) if exclude_seen else _NO_SEEN
         ranking, served_by = self._fallback(model, index, count, seen)
