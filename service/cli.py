@@ -28,6 +28,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "experiment": ("offline.online.experiment_cli", "an online experiment's verdict: `report` from the click events"),
     "loadtest": ("loadtest.loadtest_cli", "replay held-out visits against the service and judge the page budget"),
     "capacity": ("loadtest.capacity_cli", "find the highest rate per core that meets the budget"),
+    "simulate": ("loadtest.simulate_cli", "a short online experiment on the demo shop: simulated visitors, GRU vs a simple arm"),
 }
 
 

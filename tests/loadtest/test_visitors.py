@@ -121,3 +121,22 @@ def test_visitors_through_the_http_service_make_an_experiment_report(tmp_path: P
     assert sum(a.visits for a in report.arms) == 120
     assert {e["served_by"] for e in batch.events if e["arm"] == "pop"} == {"popularity"}
     assert not report.sample_ratio.mismatch
+
+
+def test_cairn_simulate_runs_the_experiment_and_prints_both_verdicts(tmp_path: Path, model_store: Path, artifact_path: Path, capsys) -> None:
+    from service.cli import main as cairn
+
+    scenario_file = tmp_path / "scenario.npz"
+    _tiny_scenario(load_artifact(artifact_path).item_ids).save(scenario_file)
+    offline = tmp_path / "evaluation.json"
+    offline.write_text(json.dumps({"gru-bpr-max": {"recall@20": {"value": 0.5}}, "item-knn": {"recall@20": {"value": 0.4}}}))
+    code = cairn([
+        "simulate", "--scenario", str(scenario_file), "--artifact", "demo/v1", "--artifacts", str(model_store),
+        "--visits", "60", "--count", "5", "--out", str(tmp_path / "online"), "--offline-report", str(offline),
+    ])  # fmt: skip
+    out = capsys.readouterr().out
+    assert code == 0, out
+    assert "60 simulated visits" in out and "offline (Recall@20, held-out day): gru-bpr-max 0.5000 vs item-knn 0.4000" in out
+    assert "agreement:" in out
+    saved = json.loads((tmp_path / "online" / "report" / "experiment.json").read_text())
+    assert [a["arm"] for a in saved["arms"]] == ["neighbours", "gru"] and sum(a["visits"] for a in saved["arms"]) == 60
