@@ -34,10 +34,10 @@ from service.api.schemas import (
     SESSION_ID_CHARS,
     SESSION_ID_MAX,
     SESSION_ID_PATTERN,
-    ServingAnswer,
     ClickRequest,
     ErrorAnswer,
     ServingChoiceBody,
+    SwitchAnswer,
     ArtifactsAnswer,
     RecommendationAnswer,
 )
@@ -206,7 +206,8 @@ async def get_artifacts(service: ServiceDep) -> dict[str, Any]:
 
 @router.put(
     "/v1/serving",
-    response_model=ServingAnswer,
+    response_model=SwitchAnswer,
+    response_model_exclude_none=True,  # `arm` only while an experiment runs
     responses={code: {"model": ErrorAnswer} for code in (401, 403, 404, 409, 422, 503)},
     summary="Choose what serves: the artifact (and recommender), at run time",
     tags=["artifacts"],

@@ -92,6 +92,9 @@ class ServingAnswer(BaseModel):
     version: str
     recommender: str
     artifact: str = Field(description="name/version, as answers carry it")
+
+
+class SwitchAnswer(ServingAnswer):
     arm: str | None = Field(None, description="the experiment arm switched; present only while an experiment runs")
 
 
