@@ -8,7 +8,7 @@ STAMP := $(VENV)/.installed-stamp
 DEMO_DATA := data/demo
 DEMO_REPORTS := reports/demo
 
-.PHONY: demo test bench redis-server clean
+.PHONY: demo demo-online test bench redis-server clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -56,9 +56,16 @@ demo: $(STAMP)
 	  echo; echo "Starting the service on model_store/garden-gru/demo (memory store). In another terminal:"; \
 	  echo "  curl -s -X POST localhost:8000/v1/sessions/visit-1/clicks -H 'content-type: application/json' -d '{\"item_id\": \"$$item\", \"count\": 5}'"; \
 	  echo "  curl -s localhost:8000/v1/sessions/visit-1/recommendations"; \
-	  echo "OpenAPI page: http://127.0.0.1:8000/docs   Stop with Ctrl-C."; echo; \
-	  $(BIN)/cairn serve --artifacts model_store --artifact-name garden-gru --artifact-version demo; \
+	  echo "OpenAPI page: http://127.0.0.1:8000/docs   Stop with Ctrl-C. Click events go to $(DEMO_DATA)/events."; echo; \
+	  CAIRN_EVENTS=$(DEMO_DATA)/events $(BIN)/cairn serve --artifacts model_store --artifact-name garden-gru --artifact-version demo; \
 	fi
+
+# After `make demo`: a short online experiment, GRU vs the neighbour table (item-KNN), with simulated
+# visitors through the real service; prints the experiment's verdict beside the offline one.
+DEMO_VISITS ?= 1500
+demo-online: $(STAMP)
+	$(BIN)/cairn simulate --scenario $(DEMO_DATA)/raw/scenario.npz --artifact garden-gru/demo \
+	  --visits $(DEMO_VISITS) --offline-report $(DEMO_REPORTS)/evaluation.json --out $(DEMO_REPORTS)/online
 
 bench: $(STAMP)
 	$(BIN)/python -m bench.ingest --out reports/bench/ingest.json
@@ -67,6 +74,7 @@ bench: $(STAMP)
 	$(BIN)/python -m bench.service --out reports/bench/service.json
 	$(BIN)/python -m bench.side_by_side --out reports/bench/side_by_side.json
 	$(BIN)/python -m bench.resilience --out reports/bench/resilience.json
+	$(BIN)/python -m bench.events --out reports/bench/events.json
 	$(MAKE) demo SERVE=0
 	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
 
