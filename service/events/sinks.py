@@ -43,6 +43,16 @@ class EventSink(Protocol):
     async def close(self) -> None: ...
 
 
+def check_folder(folder: Path) -> None:
+    """Create the events folder if needed; EventSinkError when it cannot be created or written."""
+    try:
+        Path(folder).mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise EventSinkError(f"CAIRN_EVENTS={str(folder)!r}: cannot create the folder ({exc.strerror})") from None
+    if not os.access(folder, os.W_OK):
+        raise EventSinkError(f"CAIRN_EVENTS={str(folder)!r}: the folder is not writable")
+
+
 class FolderSink:
     kind = "folder"
 
@@ -55,12 +65,7 @@ class FolderSink:
         self._hour = ""
         self._size = 0
         self._n = 0
-        try:
-            self.folder.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise EventSinkError(f"CAIRN_EVENTS={str(folder)!r}: cannot create the folder ({exc.strerror})") from None
-        if not os.access(self.folder, os.W_OK):
-            raise EventSinkError(f"CAIRN_EVENTS={str(folder)!r}: the folder is not writable")
+        check_folder(self.folder)
 
     async def write(self, lines: list[bytes]) -> None:
         payload = b"\n".join(lines) + b"\n"

@@ -149,3 +149,35 @@ def test_a_bad_experiment_file_stops_start_up_with_one_line(settings_for, tmp_pa
 
     with pytest.raises(Exception, match="no artifact shop/v9"):
         asyncio.run(start())
+
+
+@pytest.mark.parametrize(
+    "declaration, message",
+    [
+        ({"name": "x"}, "salt=None"),
+        (_declaration(a=("shop/v1", "gru", 0.5), b=("shop/v9", "gru", 0.5)), "arm 'b': no artifact shop/v9"),
+        (_declaration(a=("shop/v1", "gru", 0.5), b=("shop/v0-broken", "gru", 0.5)), "arm 'b': artifact shop/v0-broken cannot be served"),
+    ],
+)
+def test_cairn_serve_refuses_a_bad_experiment_in_one_line(declaration, message, model_store: Path, tmp_path: Path, monkeypatch, capsys) -> None:
+    from service.cli import main as cairn
+
+    path = tmp_path / "exp.json"
+    path.write_text(json.dumps(declaration), encoding="utf-8")
+    monkeypatch.setenv("CAIRN_EXPERIMENT", str(path))
+    monkeypatch.setenv("CAIRN_ARTIFACTS", str(model_store))
+    assert cairn(["serve", "--port", "1"]) == 2
+    err = capsys.readouterr().err
+    assert message in err and len(err.strip().splitlines()) == 1 and "Traceback" not in err
+
+
+def test_cairn_serve_refuses_an_events_folder_it_cannot_create(model_store: Path, tmp_path: Path, monkeypatch, capsys) -> None:
+    from service.cli import main as cairn
+
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    monkeypatch.setenv("CAIRN_EVENTS", str(blocker / "events"))
+    monkeypatch.setenv("CAIRN_ARTIFACTS", str(model_store))
+    monkeypatch.setenv("CAIRN_ARTIFACT_NAME", "shop")
+    assert cairn(["serve", "--port", "1"]) == 2
+    assert "CAIRN_EVENTS=" in capsys.readouterr().err
