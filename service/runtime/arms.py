@@ -4,7 +4,8 @@ Each arm loads its own artifact (arms naming the same artifact still load it onc
 one arm never touches another). An arm is switched like the single model is (`PUT /v1/serving`
 with `"arm"`, or `cairn switch --arm`): the new artifact is loaded and verified first, one that
 fails leaves the arm as it was, and with Redis the arm's choice is shared under its own key
-(`<prefix>active-model:<arm>`), which every worker follows. The arm a visit belongs to never
+(`<prefix>active-model:arm:<experiment>:<arm>`), which every worker follows; a restarted worker
+serves the arm's last switch, and a new experiment (another name) starts from its declaration. The arm a visit belongs to never
 changes (service/events/experiment.py); only what serves the arm does.
 """
 
@@ -30,7 +31,7 @@ class Arms:
     ) -> None:
         self.experiment = experiment
         self.models: dict[str, ActiveModel] = {
-            arm.name: ActiveModel(settings, store, wrap_model=wrap_model, on_replaced=on_replaced, slot=f"arm:{arm.name}")
+            arm.name: ActiveModel(settings, store, wrap_model=wrap_model, on_replaced=on_replaced, slot=f"arm:{experiment.name}:{arm.name}")
             for arm in experiment.arms
         }
         self._by_name = {arm.name: arm for arm in experiment.arms}

@@ -181,3 +181,29 @@ def test_cairn_serve_refuses_an_events_folder_it_cannot_create(model_store: Path
     monkeypatch.setenv("CAIRN_ARTIFACT_NAME", "shop")
     assert cairn(["serve", "--port", "1"]) == 2
     assert "CAIRN_EVENTS=" in capsys.readouterr().err
+
+
+def test_an_arm_switch_reaches_every_worker_and_survives_a_restart(serve, settings_for, redis_url: str, sid, tmp_path: Path, token: str) -> None:
+    import time
+
+    path = tmp_path / "exp.json"
+    path.write_text(json.dumps(_declaration(gru=("shop/v1", "gru", 0.5), pop=("shop/v1", "popularity", 0.5))), encoding="utf-8")
+    exp = load_experiment(path)
+    prefix = f"{sid('arms')}:"
+    settings = settings_for(redis_url, experiment=path, redis_prefix=prefix, model_poll_s=0.05)
+    gru_visit = next(s for s in (sid("g") for _ in range(100)) if exp.assign(s).name == "gru")
+    pop_visit = next(s for s in (sid("p") for _ in range(100)) if exp.assign(s).name == "pop")
+
+    def artifact_of(c, session: str) -> str:
+        return c.post(f"/v1/sessions/{session}/clicks", json={"item_id": "sku-000005"}).json()["artifact"]
+
+    with serve(settings) as a, serve(settings) as b, a.client() as ca, b.client() as cb:
+        r = ca.put("/v1/serving", json={"name": "shop", "version": "v2", "arm": "gru"}, headers={"authorization": f"Bearer {token}"})
+        assert r.status_code == 200
+        deadline = time.monotonic() + 5
+        while artifact_of(cb, gru_visit) != "shop/v2":
+            assert time.monotonic() < deadline, "worker b did not follow the arm switch"
+            time.sleep(0.05)
+        assert artifact_of(cb, pop_visit) == "shop/v1"  # the other arm is untouched
+    with serve(settings) as again, again.client() as c:
+        assert artifact_of(c, gru_visit) == "shop/v2" and artifact_of(c, pop_visit) == "shop/v1"
