@@ -34,6 +34,9 @@ def test_shares_within_binomial_bounds_for_100k_ids() -> None:
         # 1 - 1e-6 interval from the binomial quantile function (scipy.stats.binom.interval).
         low, high = binom.interval(1 - 1e-6, n, share)
         assert low <= counts[name] <= high, (name, counts[name], low, high)
+        # The same bound by the normal approximation to the binomial (de Moivre-Laplace):
+        # |count - n p| <= z sqrt(n p (1 - p)), z = 4.89 for a two-sided 1e-6 (standard normal quantile).
+        assert abs(counts[name] - n * share) <= 4.89 * (n * share * (1 - share)) ** 0.5
 
 
 def test_assignment_is_stable_and_depends_on_the_salt() -> None:
