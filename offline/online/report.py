@@ -71,11 +71,12 @@ class Difference:
     @property
     def verdict(self) -> str:
         lo, hi = self.ci
+        change = f"hit rate {self.difference:+.4f} against {self.control} (95% CI {lo:+.4f} to {hi:+.4f}; {self.relative:+.1%})"
         if lo > 0:
-            return f"{self.arm} wins: its hit rate is higher than {self.control}'s by {self.difference:+.4f} [{lo:+.4f}, {hi:+.4f}] ({self.relative:+.1%})"
+            return f"{self.arm} wins: {change}"
         if hi < 0:
-            return f"{self.arm} loses: its hit rate is lower than {self.control}'s by {self.difference:+.4f} [{lo:+.4f}, {hi:+.4f}] ({self.relative:+.1%})"
-        return f"no clear difference between {self.arm} and {self.control}: {self.difference:+.4f} [{lo:+.4f}, {hi:+.4f}] includes 0"
+            return f"{self.arm} loses: {change}"
+        return f"no clear difference: {self.arm} {change}, an interval that includes 0"
 
 
 @dataclass
