@@ -42,6 +42,7 @@ class EventLog:
         self._wake = asyncio.Event()
         self._task: asyncio.Task | None = None
         self._failing = False
+        self._dropped_logged = 0
 
     def record(self, event: tuple[Any, ...]) -> None:
         buffer = self._buffer
@@ -71,6 +72,9 @@ class EventLog:
 
     async def flush(self) -> bool:
         """Write everything buffered; False when the sink refused (the events stay for the next try)."""
+        if self.dropped != self._dropped_logged:  # once per flush at most, not once per click
+            log.warning("event buffer full: %d click events dropped so far (CAIRN_EVENTS_BUFFER=%d)", self.dropped, self.capacity)
+            self._dropped_logged = self.dropped
         if self._buffer:
             taken, self._buffer = self._buffer, []
             dumps = json.dumps
