@@ -8,7 +8,7 @@ STAMP := $(VENV)/.installed-stamp
 DEMO_DATA := data/demo
 DEMO_REPORTS := reports/demo
 
-.PHONY: demo test bench fuzz soak redis-server chromium clean
+.PHONY: demo demo-online test bench fuzz soak redis-server chromium clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -76,9 +76,16 @@ demo: $(STAMP)
 	  echo "  curl -s -X POST localhost:8000/v1/sessions/visit-1/clicks -H 'content-type: application/json' -d '{\"item_id\": \"$$item\", \"count\": 5}'"; \
 	  echo "  curl -s localhost:8000/v1/sessions/visit-1/recommendations"; \
 	  echo "The shop: http://127.0.0.1:8000/shop/   Operator view: http://127.0.0.1:8000/operator/"; \
-	  echo "OpenAPI page: http://127.0.0.1:8000/docs   Stop with Ctrl-C."; echo; \
-	  CAIRN_PAGES=true $(BIN)/cairn serve --artifacts model_store --artifact-name garden-gru --artifact-version demo; \
+	  echo "OpenAPI page: http://127.0.0.1:8000/docs   Stop with Ctrl-C. Click events go to $(DEMO_DATA)/events."; echo; \
+	  CAIRN_PAGES=true CAIRN_EVENTS=$(DEMO_DATA)/events $(BIN)/cairn serve --artifacts model_store --artifact-name garden-gru --artifact-version demo; \
 	fi
+
+# After `make demo`: a short online experiment, GRU vs the neighbour table (item-KNN), with simulated
+# visitors through the real service; prints the experiment's verdict beside the offline one.
+DEMO_VISITS ?= 1500
+demo-online: $(STAMP)
+	$(BIN)/cairn simulate --scenario $(DEMO_DATA)/raw/scenario.npz --artifact garden-gru/demo \
+	  --visits $(DEMO_VISITS) --offline-report $(DEMO_REPORTS)/evaluation.json --out $(DEMO_REPORTS)/online
 
 bench: $(STAMP)
 	$(BIN)/python -m bench.ingest --out reports/bench/ingest.json
@@ -88,6 +95,7 @@ bench: $(STAMP)
 	$(BIN)/python -m bench.side_by_side --out reports/bench/side_by_side.json
 	$(BIN)/python -m bench.resilience --out reports/bench/resilience.json
 	$(BIN)/python -m bench.session_knn --out reports/bench/session_knn.json
+	$(BIN)/python -m bench.events --out reports/bench/events.json
 	$(MAKE) demo SERVE=0
 	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
 

@@ -24,8 +24,11 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "artifacts": ("service.artifacts.artifacts_cli", "list and verify the artifacts in the artifacts folder"),
     "serve": ("service.api.serve_cli", "run the HTTP recommendation service"),
     "switch": ("service.api.switch_cli", "choose what a running service serves (artifact, recommender)"),
+    "events": ("offline.online.events_cli", "the service's click events: `export` them as a click log for `cairn prepare`"),
+    "experiment": ("offline.online.experiment_cli", "an online experiment's verdict: `report` from the click events"),
     "loadtest": ("loadtest.loadtest_cli", "replay held-out visits against the service and judge the page budget"),
     "capacity": ("loadtest.capacity_cli", "find the highest rate per core that meets the budget"),
+    "simulate": ("loadtest.simulate_cli", "a short online experiment on the demo shop: simulated visitors, GRU vs a simple arm"),
 }
 
 

@@ -122,6 +122,20 @@ class Settings(BaseSettings):
     redis_pool_timeout_s: float = Field(0.5, gt=0, le=60)  # wait for a free pooled connection
     redis_prefix: str = Field("cairn:", pattern=r"^[A-Za-z0-9:._-]{0,32}$")
 
+    # Click events (service/events): "off", a folder (JSON Lines, one file per worker, rotated by
+    # size and by hour) or a redis:// URL (one stream, `<prefix>events`, trimmed approximately).
+    # A click only appends to a bounded in-process buffer; a background task writes batches every
+    # `events_flush_s`; a full buffer drops events and counts them (cairn_events_dropped_total).
+    events: str = "off"
+    events_buffer: int = Field(50_000, ge=1, le=10_000_000)  # events a worker holds unwritten at most
+    events_flush_s: float = Field(0.5, gt=0, le=60)  # how often the writer flushes: a kill loses at most this much
+    events_file_mb: float = Field(64.0, gt=0, le=100_000)  # folder sink: a file is closed past this size (and each hour)
+    events_stream_max: int = Field(10_000_000, ge=1000)  # Redis sink: stream length kept (approximately, MAXLEN ~)
+    events_key: SecretStr | None = None  # set: session ids in events are keyed-hash pseudonyms (HMAC-SHA256)
+    # An experiment (service/events/experiment.py): path of a TOML or JSON file naming the arms;
+    # each visit's arm comes from a keyed hash of its session id. Unset: no experiment.
+    experiment: Path | None = None
+
     @field_validator("session_store")
     @classmethod
     def _store_kind(cls, value: str) -> str:
@@ -131,6 +145,24 @@ class Settings(BaseSettings):
             cluster_nodes(value)  # raises ValueError naming what is wrong
             return value
         raise ValueError("use 'memory', a redis://host:port/db URL or redis-cluster://host:port,host:port,...")
+
+    @field_validator("events")
+    @classmethod
+    def _events_sink(cls, value: str) -> str:
+        if value.startswith(CLUSTER_SCHEMES) or value.startswith("unix://"):
+            raise ValueError("use 'off', a folder or a redis://host:port/db URL (a single Redis, not a cluster)")
+        if value.strip() == "":
+            raise ValueError("use 'off', a folder or a redis://host:port/db URL")
+        return value
+
+    @field_validator("events_key")
+    @classmethod
+    def _events_key_strength(cls, value: SecretStr | None) -> SecretStr | None:
+        if value is None or value.get_secret_value() == "":
+            return None
+        if len(value.get_secret_value()) < _MIN_TOKEN:
+            raise ValueError(f"shorter than {_MIN_TOKEN} characters; use a long random key")
+        return value
 
     @field_validator("artifact_name", "artifact_version")
     @classmethod
@@ -164,6 +196,13 @@ class Settings(BaseSettings):
                 "use a redis:// store or one worker"
             )
         return self
+
+    @property
+    def events_kind(self) -> str:
+        """off, redis or folder."""
+        if self.events == "off":
+            return "off"
+        return "redis" if self.events.startswith(("redis://", "rediss://")) else "folder"
 
     @property
     def store_kind(self) -> str:
@@ -243,7 +282,7 @@ def _one_line(exc: ValidationError, overrides: dict[str, Any], flags: dict[str, 
             continue
         name = flags[field] if field in overrides and field in flags else f"{ENV_PREFIX}{field.upper()}"
         value = overrides.get(field, err.get("input"))
-        shown = "<hidden>" if field == "admin_token" else repr(redacted(value) if field == "session_store" and isinstance(value, str) else value)
+        shown = "<hidden>" if field in ("admin_token", "events_key") else repr(redacted(value) if field in ("session_store", "events") and isinstance(value, str) else value)
         parts.append(f"{name}={shown}: {msg}")
     return "; ".join(parts) or "invalid settings"
 

@@ -9,6 +9,8 @@ CairnError                 base of everything cairn raises on purpose
  │    └── StoreWriteUnknownError  a write was sent but no answer came: it may or may not have landed
  ├── StepError             ONNX Runtime failed running a model step
  ├── ModelNotReadyError    a request arrived before the first artifact was loaded
+ ├── EventSinkError        the click event sink (CAIRN_EVENTS) cannot be opened, written or read
+ ├── ExperimentError       an experiment declaration (CAIRN_EXPERIMENT) or event log that cannot be used
  ├── ScenarioError         a demo-scenario parameter that cannot be used (offline/demo)
  ├── TrainingError         training settings that cannot work together, or a run that diverged (offline/model)
  ├── EvaluateOptionError   a `cairn evaluate` option with a value that cannot be used (offline/evaluate)
@@ -52,6 +54,14 @@ class StepError(CairnError):
 
 class ModelNotReadyError(CairnError):
     """A request arrived before the service loaded its first artifact."""
+
+
+class EventSinkError(CairnError):
+    """The click event sink cannot be opened, written or read (names the folder or redacted URL)."""
+
+
+class ExperimentError(CairnError):
+    """An experiment declaration or an event log the experiment tools cannot use (names file, field, value)."""
 
 
 class ScenarioError(CairnError):

@@ -30,8 +30,13 @@ from service.api.logs import configure_logging
 from service.config import Settings, load_settings
 from service.errors import CairnError, StoreError
 from service.resilience.guards import Guards
+from service.events.event import Pseudonyms
+from service.events.experiment import load_experiment
+from service.events.log import EventLog
+from service.events.sinks import open_sink
 from service.resilience.loop_lag import LoopLag
 from service.runtime.active import ActiveModel, ModelChoice, ModelWrapper, resolve_choices
+from service.runtime.arms import Arms
 from service.runtime.tasks import stop_task
 from service.runtime.visits import Visits
 from service.store.base import SessionStore, open_store
@@ -55,41 +60,60 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         session_store = store if store is not None else open_store(settings)
         guards = Guards(settings, on_change=metrics.breaker_changed)
-        active = ActiveModel(settings, session_store, wrap_model=wrap_model, on_replaced=guards.model_replaced)
+        experiment = load_experiment(settings.experiment) if settings.experiment is not None else None
+        arms = None
+        if experiment is not None:
+            arms = Arms(experiment, settings, session_store, wrap_model=wrap_model, on_replaced=guards.model_replaced)
+            active = arms.models[experiment.arms[0].name]  # the first arm answers /v1/artifacts and /readyz
+        else:
+            active = ActiveModel(settings, session_store, wrap_model=wrap_model, on_replaced=guards.model_replaced)
         follower: asyncio.Task | None = None
         lag_task: asyncio.Task | None = None
         loop_lag = LoopLag() if guards.enabled else None
+        events: EventLog | None = None
         # The memory store is its own cache; a shared store's reads are worth saving.
         recent = None
         if session_store.kind != "memory" and settings.state_cache_entries > 0:
             recent = RecentWrites(settings.state_cache_entries, settings.session_ttl_s)
         try:
-            candidates = await asyncio.to_thread(resolve_choices, settings)
-            shared = await _shared_choice(session_store)
-            if shared is not None and shared not in candidates:
-                candidates.insert(0, shared)
-            await _open_first(active, candidates)
+            if arms is not None:
+                await arms.open(lambda slot: _shared_choice(session_store, slot))
+            else:
+                candidates = await asyncio.to_thread(resolve_choices, settings)
+                shared = await _shared_choice(session_store)
+                if shared is not None and shared not in candidates:
+                    candidates.insert(0, shared)
+                await _open_first(active, candidates)
+            sink = open_sink(settings)
+            if sink is not None:
+                events = EventLog(sink, settings.events_buffer, settings.events_flush_s)
+                events.start()
+            key = settings.events_key
             service = Service(
                 settings=settings,
                 store=session_store,
                 active=active,
                 visits=Visits(
-                    session_store, active, settings.history_length, settings.event_memory, guards, recent,
+                    session_store, active, settings.history_length, settings.event_memory, guards, recent, arms,
                     loop_lag=loop_lag, probe_after_s=settings.latency_probe_s,
                 ),  # fmt: skip
                 metrics=metrics,
                 guards=guards,
+                events=events,
+                pseudonyms=Pseudonyms(None if key is None else key.get_secret_value().encode()),
             )
             metrics.registry.on_collect(lambda: _collect(service))
             app.state.service = service
             if loop_lag is not None:
                 lag_task = asyncio.get_running_loop().create_task(loop_lag.run(), name="cairn-loop-lag")
             if session_store.kind != "memory":
-                follower = asyncio.get_running_loop().create_task(active.follow(), name="cairn-model-follower")
+                follow = arms.follow() if arms is not None else active.follow()
+                follower = asyncio.get_running_loop().create_task(follow, name="cairn-model-follower")
             model, choice = active.current
             log.info(
-                "ready: %s (%s), %s store, guards %s, default budget %d ms",
+                "ready: %s (%s), %s store, guards %s, default budget %d ms, events %s%s",
                 choice.tag, choice.recommender, session_store.kind, "on" if guards.enabled else "off", settings.default_budget_ms,
+                settings.events_kind, "" if experiment is None else f", experiment {experiment.name} ({len(experiment.arms)} arms)",
             )  # fmt: skip
             yield
         finally:
@@ -97,7 +121,12 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
                 await stop_task(follower)  # a single cancel can be lost inside a Redis call
             if lag_task is not None:
                 await stop_task(lag_task)
-            await active.close()
+            if events is not None:
+                await events.close()  # requests have ended (uvicorn drains them first): write what is buffered
+            if arms is not None:
+                await arms.close()  # the arms' models, `active` among them
+            else:
+                await active.close()
             await session_store.close()
 
     app = FastAPI(title="cairn", version=__version__, description=DESCRIPTION, lifespan=lifespan)
@@ -126,9 +155,9 @@ async def _open_first(active: ActiveModel, candidates: list[ModelChoice]) -> Non
             log.error("cannot serve %s (%s); trying %s", choice.tag, exc, candidates[i + 1].tag)
 
 
-async def _shared_choice(store: SessionStore) -> ModelChoice | None:
+async def _shared_choice(store: SessionStore, slot: str = "") -> ModelChoice | None:
     try:
-        raw = await store.load_active_model()
+        raw = await store.load_active_model(slot)
     except StoreError as exc:
         log.warning("session store not reachable at start (%s); serving the configured model", exc)
         return None
@@ -148,6 +177,17 @@ def _collect(service: Service) -> None:
         return
     model, choice = service.active.current
     m.active_model.set((choice.name, choice.version, choice.recommender), 1.0)
+    events = service.events
+    if events is not None:
+        m.events_dropped.set_total((), float(events.dropped))
+        m.events_written.set_total((), float(events.written))
+    arms = service.visits.arms
+    if arms is not None:
+        m.arm_serving.clear()
+        for arm, arm_active in arms.models.items():
+            if arm_active.ready:
+                arm_choice = arm_active.current[1]
+                m.arm_serving.set((arm, arm_choice.name, arm_choice.version, arm_choice.recommender), 1.0)
     m.gru_batches.set((), float(model.batcher.batches))
     m.gru_batched_clicks.set((), float(model.batcher.clicks))
     recent = service.visits.recent

@@ -9,6 +9,8 @@ from fastapi import Depends, Request
 
 from service.api.metrics import ServiceMetrics
 from service.config import Settings
+from service.events.event import Pseudonyms
+from service.events.log import EventLog
 from service.resilience.guards import Guards
 from service.runtime.active import ActiveModel
 from service.runtime.visits import Visits
@@ -23,6 +25,8 @@ class Service:
     visits: Visits
     metrics: ServiceMetrics
     guards: Guards
+    events: EventLog | None = None  # the click event log; None with CAIRN_EVENTS=off
+    pseudonyms: Pseudonyms | None = None  # session ids as events keep them
 
 
 async def get_service(request: Request) -> Service:

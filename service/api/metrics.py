@@ -85,6 +85,10 @@ class Counter(_Family):
         """A copy of every labelled value (for the operator page's summary; not the click path)."""
         return dict(self._values)
 
+    def set_total(self, labels: tuple[str, ...], total: float) -> None:
+        """Copy a total counted elsewhere (it only grows there) in before a scrape."""
+        self._values[labels] = total
+
     def lines(self) -> Iterable[str]:
         for labels, value in sorted(self._values.items()):
             yield f"{self.name}{_labels(self.labelnames, labels)} {_number(value)}"
@@ -213,6 +217,21 @@ class ServiceMetrics:
         )
         self.latency_estimate: Gauge = add(
             Gauge("cairn_latency_estimate_seconds", "The running high quantile of one call that the budget check uses, by part (model step, store call).", ("part",))
+        )
+
+        # Click events and experiment arms (service/events).
+        self.events_dropped: Counter = add(
+            Counter("cairn_events_dropped_total", "Click events dropped because this worker's event buffer was full.")
+        )
+        self.events_written: Counter = add(Counter("cairn_events_written_total", "Click events the event sink acknowledged."))
+        self.arm_duration: Histogram = add(
+            Histogram("cairn_arm_recommendation_duration_seconds", "Time to answer with recommendations, by experiment arm and the recommender that answered.", ("arm", "served_by"))
+        )
+        self.arm_fallbacks: Counter = add(
+            Counter("cairn_arm_fallbacks_total", "Answers not given by the arm's recommender, by arm and reason.", ("arm", "reason"))
+        )
+        self.arm_serving: Gauge = add(
+            Gauge("cairn_arm_serving_info", "1 for the artifact and recommender each experiment arm serves.", ("arm", "name", "version", "recommender"))
         )
 
     def breaker_changed(self, name: str, old: BreakerState, new: BreakerState) -> None:

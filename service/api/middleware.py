@@ -158,5 +158,10 @@ class EdgeMiddleware:
             reason = state.get("fallback_reason")
             if reason is not None:
                 m.fallbacks.inc((reason,))
+            arm = state.get("arm")
+            if arm is not None:
+                m.arm_duration.observe((arm, served_by), total)
+                if reason is not None:
+                    m.arm_fallbacks.inc((arm, reason))
         if timing.store_s > 0:
             m.store_duration.observe((self.store_kind,), timing.store_s)

@@ -34,10 +34,10 @@ from service.api.schemas import (
     SESSION_ID_CHARS,
     SESSION_ID_MAX,
     SESSION_ID_PATTERN,
-    ServingAnswer,
     ClickRequest,
     ErrorAnswer,
     ServingChoiceBody,
+    SwitchAnswer,
     ArtifactsAnswer,
     RecommendationAnswer,
 )
@@ -78,6 +78,8 @@ def note_answer(state: dict[str, Any], answer: Answer) -> None:
     """Note what answered in the request's state, which the edge middleware records once."""
     state["served_by"] = answer.served_by
     state["fallback_reason"] = answer.fallback_reason
+    if answer.arm is not None:
+        state["arm"] = answer.arm
 
 
 def answer_json(session_id: str, answer: Answer, timing: Timing) -> bytes:
@@ -93,6 +95,8 @@ def answer_json(session_id: str, answer: Answer, timing: Timing) -> bytes:
         "duplicate": answer.duplicate,
         "recorded": answer.recorded,
     }
+    if answer.arm is not None:  # only while an experiment runs: answers without one stay as they were
+        body["arm"] = answer.arm
     return json.dumps(body, separators=(",", ":")).encode()
 
 
@@ -100,7 +104,7 @@ async def record_click(service: Service, session_id: str, click: ClickRequest, t
     """A validated click, recorded: what `POST /v1/sessions/{session_id}/clicks` does (also from
     the click fast path, service/api/fast_click.py)."""
     settings = service.settings
-    return await service.visits.click(
+    answer = await service.visits.click(
         session_id,
         click.item_id,
         click.event_id,
@@ -109,6 +113,15 @@ async def record_click(service: Service, session_id: str, click: ClickRequest, t
         (click.budget_ms or settings.default_budget_ms) / 1e3,
         timing,
     )
+    events = service.events
+    if events is not None:
+        # A tuple in the order of service/events/event.FIELDS; the writer task makes it JSON.
+        events.record((
+            time.time(), service.pseudonyms(session_id), answer.sequence, click.item_id, answer.item_ids,
+            answer.served_by, answer.fallback_reason, answer.artifact, answer.arm,
+            round((time.perf_counter() - timing.started) * 1e3, 3), click.event_id, answer.duplicate,
+        ))  # fmt: skip
+    return answer
 
 
 @router.post(
@@ -222,7 +235,8 @@ async def _workers(service: Service) -> list[dict[str, Any]]:
 
 @router.put(
     "/v1/serving",
-    response_model=ServingAnswer,
+    response_model=SwitchAnswer,
+    response_model_exclude_none=True,  # `arm` only while an experiment runs
     responses={code: {"model": ErrorAnswer} for code in (400, 401, 403, 404, 409, 413, 422, 503)},
     summary="Choose what serves: the artifact (and recommender), at run time",
     tags=["artifacts"],
@@ -243,10 +257,18 @@ async def put_serving(
         body = ServingChoiceBody.model_validate_json(await request.body())
     except ValidationError as exc:
         raise RequestValidationError([{**e, "loc": ("body", *e["loc"])} for e in exc.errors(include_url=False)]) from None
-    _, current = service.active.current
+    active = service.active
+    arms = service.visits.arms
+    if arms is not None:
+        if body.arm is None or body.arm not in arms.models:
+            raise ApiError(422, "invalid_request", f"an experiment runs: name the arm to switch ({', '.join(arms.models)})", "arm")
+        active = arms.models[body.arm]
+    elif body.arm is not None:
+        raise ApiError(422, "invalid_request", "no experiment runs: leave out 'arm'", "arm")
+    _, current = active.current
     choice = ModelChoice(body.name, body.version, body.recommender or current.recommender)
     try:
-        await service.active.switch(choice)
+        await active.switch(choice)
     except ArtifactError as exc:
         if not (service.settings.artifacts / choice.name / choice.version).is_dir():
             raise ApiError(404, "unknown_artifact", f"no artifact {choice.tag} in the artifacts folder", "version") from exc
@@ -257,7 +279,10 @@ async def put_serving(
         raise ApiError(503, "store_unavailable", message) from exc
     except CairnError as exc:
         raise ApiError(422, "invalid_request", str(exc), "recommender") from exc
-    return _active_answer(choice)
+    answer = _active_answer(choice)
+    if body.arm is not None:
+        answer["arm"] = body.arm
+    return answer
 
 
 @router.get("/healthz", summary="The process is alive", tags=["operations"])

@@ -92,6 +92,7 @@ class RecommendationAnswer(BaseModel):
         description="is this click in the session store: yes; no (nothing written; a GET records nothing); "
         "unknown (the write was sent, its answer did not come in time: retry with the same event_id)"
     )
+    arm: str | None = Field(None, description="the visit's experiment arm; present only while an experiment runs (CAIRN_EXPERIMENT)")
 
 
 class ServingChoiceBody(BaseModel):
@@ -102,6 +103,9 @@ class ServingChoiceBody(BaseModel):
     recommender: Annotated[str, StringConstraints(strict=True, pattern=r"^(gru|neighbours|popularity|session-knn)$")] | None = Field(
         None, description="gru, neighbours, popularity or session-knn; unset: keep the current one"
     )
+    arm: Annotated[str, StringConstraints(strict=True, pattern=r"^[A-Za-z0-9][A-Za-z0-9_-]{0,31}$")] | None = Field(
+        None, description="while an experiment runs: the arm to switch (required then); without one: leave it out"
+    )
 
 
 class ServingAnswer(BaseModel):
@@ -109,6 +113,10 @@ class ServingAnswer(BaseModel):
     version: str
     recommender: str
     artifact: str = Field(description="name/version, as answers carry it")
+
+
+class SwitchAnswer(ServingAnswer):
+    arm: str | None = Field(None, description="the experiment arm switched; present only while an experiment runs")
 
 
 class ArtifactEntry(BaseModel):

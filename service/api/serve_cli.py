@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import importlib.util
 import socket
+from pathlib import Path
 
 from service.api.logs import configure_logging
 from service.config import RECOMMENDERS, Settings, export_environment, load_settings
@@ -64,11 +65,28 @@ def preflight(settings: Settings) -> None:
     from service.runtime.active import artifact_path, resolve_choice
     from service.store.base import open_store
 
-    choice = resolve_choice(settings)
-    try:
-        verify_artifact(artifact_path(settings, choice.name, choice.version))
-    except ArtifactError as exc:
-        raise SettingsError(f"artifact {choice.tag} cannot be served: {exc}") from exc
+    if settings.experiment is not None:
+        # The arms name their artifacts; CAIRN_ARTIFACT_* are not used while an experiment runs.
+        from service.events.experiment import load_experiment
+
+        for arm in load_experiment(settings.experiment).arms:
+            path = artifact_path(settings, arm.artifact_name, arm.artifact_version)
+            if not path.is_dir():
+                raise SettingsError(f"CAIRN_EXPERIMENT: arm {arm.name!r}: no artifact {arm.artifact} in {str(settings.artifacts)!r}")
+            try:
+                verify_artifact(path)
+            except ArtifactError as exc:
+                raise SettingsError(f"CAIRN_EXPERIMENT: arm {arm.name!r}: artifact {arm.artifact} cannot be served: {exc}") from exc
+    else:
+        choice = resolve_choice(settings)
+        try:
+            verify_artifact(artifact_path(settings, choice.name, choice.version))
+        except ArtifactError as exc:
+            raise SettingsError(f"artifact {choice.tag} cannot be served: {exc}") from exc
+    if settings.events_kind == "folder":
+        from service.events.sinks import check_folder
+
+        check_folder(Path(settings.events))
     for name, path in (("--tls-certfile", settings.tls_certfile), ("--tls-keyfile", settings.tls_keyfile)):
         if path is not None and not path.is_file():
             raise SettingsError(f"{name} {str(path)!r}: no such file")

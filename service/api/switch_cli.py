@@ -1,6 +1,6 @@
 """`cairn switch`: choose what a running service serves (or roll back), without a hand-written curl.
 
-    cairn switch NAME/VERSION [--recommender gru|neighbours|popularity|session-knn] [--url http://127.0.0.1:8000]
+    cairn switch NAME/VERSION [--recommender gru|neighbours|popularity|session-knn] [--arm ARM] [--url http://127.0.0.1:8000]
 
 It calls the admin route `PUT /v1/serving` with the bearer token from CAIRN_ADMIN_TOKEN (read through
 the settings object, like every other setting). The default URL is the one `cairn serve` listens on
@@ -25,6 +25,7 @@ TIMEOUT_S = 30.0  # a switch loads and verifies the artifact before it answers
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("artifact", metavar="NAME/VERSION", help="the artifact to serve, as listed by `cairn artifacts`")
     parser.add_argument("--recommender", choices=RECOMMENDERS, help="which recommender answers (default: the one serving now)")
+    parser.add_argument("--arm", help="while an experiment runs: the arm to switch")
     parser.add_argument("--url", help="the service's base URL (default: http://CAIRN_HOST:CAIRN_PORT)")
 
 
@@ -42,6 +43,8 @@ def run(args: argparse.Namespace) -> int:
     body = {"name": name, "version": version}
     if args.recommender is not None:
         body["recommender"] = args.recommender
+    if args.arm is not None:
+        body["arm"] = args.arm
     request = urllib.request.Request(
         f"{url}/v1/serving",
         data=json.dumps(body).encode(),
@@ -60,5 +63,6 @@ def run(args: argparse.Namespace) -> int:
     except (urllib.error.URLError, OSError) as exc:
         reason = getattr(exc, "reason", exc)
         raise CairnError(f"--url {url}: no answer ({reason})") from None
-    print(f"now serving {answer['artifact']} with {answer['recommender']}")
+    arm = f" in arm {answer['arm']}" if answer.get("arm") else ""
+    print(f"now serving {answer['artifact']} with {answer['recommender']}{arm}")
     return 0

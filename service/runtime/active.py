@@ -199,9 +199,11 @@ class ActiveModel:
         store: SessionStore,
         wrap_model: ModelWrapper | None = None,
         on_replaced: Callable[[str], None] | None = None,
+        slot: str = "",
     ) -> None:
         self.settings = settings
         self.store = store
+        self.slot = slot  # an experiment arm's name: its choice is shared under its own key
         self._wrap_model = wrap_model
         self._on_replaced = on_replaced
         self._follow_failing = False  # the last poll of the shared choice failed (logged once, not every poll)
@@ -238,7 +240,7 @@ class ActiveModel:
             choice = dataclasses.replace(choice, switched_at=time.time())
 
             async def publish_choice() -> None:
-                await self.store.save_active_model(choice.to_bytes())
+                await self.store.save_active_model(choice.to_bytes(), self.slot)
 
             before_swap = publish_choice
         await self._install(choice, before_swap)
@@ -312,16 +314,16 @@ class ActiveModel:
         worker whose choice is newer than the stored one (the store lost it, say a Redis restarted
         without persistence, and a restarted worker wrote its configured choice) writes its own back.
         Then it reports what it serves, for the listing."""
-        raw = await self.store.load_active_model()
+        raw = await self.store.load_active_model(self.slot)
         mine = self._current[1] if self._current is not None else None
         now = asyncio.get_running_loop().time()
         if raw is None:
             if mine is not None:
-                await self.store.save_active_model(mine.to_bytes())
+                await self.store.save_active_model(mine.to_bytes(), self.slot)
         elif not (self._refused is not None and self._refused[0] == raw and now < self._refused[1] + RETRY_REFUSED_S):
             choice = ModelChoice.from_bytes(raw)
             if mine is not None and mine.supersedes(choice):
-                await self.store.save_active_model(mine.to_bytes())
+                await self.store.save_active_model(mine.to_bytes(), self.slot)
             elif mine is None or mine != choice or mine.switched_at != choice.switched_at:
                 try:
                     await self._install(choice)
@@ -336,7 +338,7 @@ class ActiveModel:
             return
         choice = self._current[1]
         value = {"artifact": choice.tag, "recommender": choice.recommender, "switched_at": choice.switched_at, "seen_at": time.time()}
-        await self.store.report_serving(WORKER, json.dumps(value).encode())
+        await self.store.report_serving(WORKER + (f"/{self.slot}" if self.slot else ""), json.dumps(value).encode())
 
     async def follow(self) -> None:
         """Poll the shared choice until cancelled; store trouble is logged (once per outage) and retried at the next poll."""

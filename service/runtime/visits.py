@@ -42,6 +42,7 @@ from service.resilience.guards import Guards
 from service.resilience.loop_lag import LoopLag
 from service.resilience.model_gate import Admission, ModelGate
 from service.runtime.active import ActiveModel, LoadedModel
+from service.runtime.arms import Arms
 from service.runtime.recommenders import GruState, Ranking
 from service.runtime.timing import Timing
 from service.store.base import SessionStore
@@ -64,6 +65,7 @@ class Answer:
     sequence: int  # clicks the visit has applied; 0 when the click is not known to be recorded
     duplicate: bool = False
     recorded: str = "yes"  # yes | no | unknown: is this click in the session store (see the module docstring)
+    arm: str | None = None  # the visit's experiment arm; None without an experiment
 
 
 class _LockWaitExpired(Exception):
@@ -113,6 +115,7 @@ class Visits:
         event_memory: int,
         guards: Guards | None = None,
         recent: RecentWrites | None = None,
+        arms: Arms | None = None,
         loop_lag: LoopLag | None = None,
         probe_after_s: float = 1.0,
     ) -> None:
@@ -123,6 +126,13 @@ class Visits:
         self.event_memory = event_memory
         self.recent = recent  # this process's last writes: a click may skip the store's read
         self._locks = _KeyedLocks()
+        self.arms = arms  # an experiment: each visit is served by its arm's model (service/runtime/arms.py)
+
+    def active_for(self, session_id: str) -> tuple[ActiveModel, str | None]:
+        """The model serving this visit and its experiment arm (None without an experiment)."""
+        if self.arms is None:
+            return self.active, None
+        return self.arms.for_session(session_id)
 
     async def click(
         self,
@@ -136,6 +146,22 @@ class Visits:
     ) -> Answer:
         """exclude_seen None: the serving artifact's default (its evaluation's choice)."""
         deadline = timing.started + budget_s
+        active, arm = self.active_for(session_id)
+        answer = await self._click(active, session_id, item_id, event_id, count, exclude_seen, deadline, timing)
+        answer.arm = arm
+        return answer
+
+    async def _click(
+        self,
+        active: ActiveModel,
+        session_id: str,
+        item_id: str,
+        event_id: str | None,
+        count: int,
+        exclude_seen: bool,
+        deadline: float,
+        timing: Timing,
+    ) -> Answer:
         try:
             async with self._locks.hold(session_id, deadline if self.gate.guarded else None):
                 recent = self.recent
@@ -145,7 +171,7 @@ class Visits:
                     if raw is None:
                         raw = await self.store.load(session_id, deadline, timing)
                     state = self._decode(raw)
-                    model, choice = self.active.current
+                    model, choice = active.current
                     kind = RecommenderKind(choice.recommender)
                     if event_id is not None and state is not None and event_id in state.event_ids:
                         answer = await self._current(model, kind, state, count, exclude_seen, deadline, timing)
@@ -164,13 +190,14 @@ class Visits:
             # request would flood the log while one lasts.
             (log.debug if self.store.guarded else log.warning)("session store unavailable, answering without the visit: %s", exc)
             recorded = "unknown" if isinstance(exc, StoreWriteUnknownError) else "no"
-            return self._without_visit(item_id, count, exclude_seen, "store_unavailable", recorded)
+            return self._without_visit(active, item_id, count, exclude_seen, "store_unavailable", recorded)
         except _LockWaitExpired:
-            return self._without_visit(item_id, count, exclude_seen, "deadline", "no")
+            return self._without_visit(active, item_id, count, exclude_seen, "deadline", "no")
 
     async def current(self, session_id: str, count: int, exclude_seen: bool | None, budget_s: float, timing: Timing) -> Answer:
         deadline = timing.started + budget_s
-        model, choice = self.active.current
+        active, arm = self.active_for(session_id)
+        model, choice = active.current
         try:
             state = self._decode(await self.store.load(session_id, deadline, timing))
         except StoreError as exc:
@@ -179,6 +206,7 @@ class Visits:
         else:
             answer = await self._current(model, RecommenderKind(choice.recommender), state, count, exclude_seen, deadline, timing)
         answer.recorded = "no"  # a request without a click records nothing
+        answer.arm = arm
         return answer
 
     async def forget(self, session_id: str, budget_s: float, timing: Timing) -> None:
@@ -351,9 +379,9 @@ class Visits:
 
     # -- helpers --------------------------------------------------------------------------------
 
-    def _without_visit(self, item_id: str, count: int, exclude_seen: bool | None, reason: str, recorded: str) -> Answer:
+    def _without_visit(self, active: ActiveModel, item_id: str, count: int, exclude_seen: bool | None, reason: str, recorded: str) -> Answer:
         """The clicked item's neighbours (popularity for an unknown item); the click not known to be stored."""
-        model, _ = self.active.current
+        model, _ = active.current
         if exclude_seen is None:
             exclude_seen = model.exclude_seen
         index = model.index_of(item_id)

@@ -23,7 +23,7 @@ class MemoryStore:
         self.ttl_s = ttl_s
         self._clock = clock
         self._entries: OrderedDict[str, tuple[bytes, float]] = OrderedDict()  # id -> (value, expires at), LRU first
-        self._active_model: bytes | None = None
+        self._active_model: dict[str, bytes] = {}  # slot ("" or an experiment arm) -> choice
         self._serving: dict[str, bytes] = {}
 
     def __len__(self) -> int:
@@ -56,11 +56,11 @@ class MemoryStore:
     async def delete(self, session_id: str) -> None:
         self._entries.pop(session_id, None)
 
-    async def load_active_model(self) -> bytes | None:
-        return self._active_model
+    async def load_active_model(self, slot: str = "") -> bytes | None:
+        return self._active_model.get(slot)
 
-    async def save_active_model(self, value: bytes) -> None:
-        self._active_model = value
+    async def save_active_model(self, value: bytes, slot: str = "") -> None:
+        self._active_model[slot] = value
 
     async def report_serving(self, worker: str, value: bytes) -> None:
         self._serving[worker] = value

@@ -88,11 +88,11 @@ class RedisCommands:
     async def delete(self, session_id: str) -> None:
         await self._call("DEL", self._client.delete(self.key(session_id)))
 
-    async def load_active_model(self) -> bytes | None:
-        return await self._call("GET", self._client.get(self._active_key))
+    async def load_active_model(self, slot: str = "") -> bytes | None:
+        return await self._call("GET", self._client.get(self._active_key + (f":{slot}" if slot else "")))
 
-    async def save_active_model(self, value: bytes) -> None:
-        await self._call("SET", self._client.set(self._active_key, value))
+    async def save_active_model(self, value: bytes, slot: str = "") -> None:
+        await self._call("SET", self._client.set(self._active_key + (f":{slot}" if slot else ""), value))
 
     async def report_serving(self, worker: str, value: bytes) -> None:
         await self._call("HSET", self._client.hset(self._serving_key, worker, value))
