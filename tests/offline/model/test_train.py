@@ -50,7 +50,7 @@ def ranks_next_click_first(path: Path) -> bool:
 
 def test_train_writes_checkpoints_that_rebuild_a_model_that_learned(data_dir: Path, tmp_path: Path) -> None:
     assert train(data_dir, tmp_path, "--epochs", "2", "--patience", "0", "--loss", "bpr-max") == 0
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["best.pt", "epoch-001.pt", "epoch-002.pt"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["best.pt", "epoch-001.pt", "epoch-002.pt", "training_log.jsonl"]
     model, extra = load_checkpoint(tmp_path / "epoch-002.pt")
     assert isinstance(model, NextClickGRU) and model.config.n_items == 30 and model.config.hidden_size == 16
     hp = extra["hyperparameters"]
