@@ -21,6 +21,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import re
+import shutil
 import statistics
 import sys
 import time
@@ -120,10 +121,12 @@ def main(argv: list[str] | None = None) -> int:
                 rounds[variant].append(result)
                 print(f"round {r + 1} {variant:>3}: {result['clicks']} clicks, p50 {result['p50_ms']:.2f} ms, p99 {result['p99_ms']:.2f} ms")
         written, dropped = uvloop.run(event_counters(ports["on"]))
-    finally:
         stop_all(procs)  # SIGTERM: the events server flushes what it holds
-    answered_on = sum(x["clicks"] for x in rounds["on"]) + warm["on"]
-    in_folder = len(read_events(str(events_dir)).events)
+        answered_on = sum(x["clicks"] for x in rounds["on"]) + warm["on"]
+        in_folder = len(read_events(str(events_dir)).events)
+    finally:
+        stop_all(procs)
+        shutil.rmtree(rig.work, ignore_errors=True)
     summary = {}
     for variant in ("off", "on"):
         summary[variant] = {

@@ -6,7 +6,8 @@ import argparse
 from pathlib import Path
 
 from offline.online.event_source import read_events
-from offline.online.export import click_log, write_click_log
+from offline.online.export import FORMATS, click_log, write_click_log
+from service.errors import EventSinkError
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
@@ -20,6 +21,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    if Path(args.out).suffix.lower() not in FORMATS:  # before reading what may be a large log
+        raise EventSinkError(f"--out {str(args.out)!r}: name a .csv or .parquet file")
     batch = read_events(args.source, args.redis_prefix)
     frame = click_log(batch)
     write_click_log(frame, args.out)

@@ -39,12 +39,12 @@ def test_serve_log_export_prepare_train_switch(tmp_path: Path, capsys) -> None:
     )  # fmt: skip
     rng = np.random.default_rng(5)
     with serve_in_thread(settings) as server, server.client() as c:
-        # Three waves in time, so prepare's time split (test and validation: the last 2 s each) has
-        # sessions in every split.
+        # Three waves in time, so prepare's time split (test and validation: the last 3 s each) has
+        # sessions in every split (the margins hold while the two short waves take under 1 s each).
         sent = _wave(c, rng, 60, 4, "train")
-        time.sleep(2.5)
+        time.sleep(4)
         sent += _wave(c, rng, 8, 3, "valid")
-        time.sleep(2.5)
+        time.sleep(4)
         sent += _wave(c, rng, 8, 3, "test")
         c.post(f"/v1/sessions/{new_id('dup')}/clicks", json={"item_id": "sku-000001", "event_id": "x"})
         c.post(f"/v1/sessions/{new_id('dup')}/clicks", json={"item_id": "sku-000001", "event_id": "x"})
@@ -63,7 +63,7 @@ def test_serve_log_export_prepare_train_switch(tmp_path: Path, capsys) -> None:
         assert cairn([
             "prepare", "--input", str(clicks_csv), "--out", str(prepared), "--session-column", "session_id",
             "--item-column", "item_id", "--time-column", "timestamp", "--min-item-clicks", "1",
-            "--test-days", str(2 / DAY_S), "--valid-days", str(2 / DAY_S),
+            "--test-days", str(3 / DAY_S), "--valid-days", str(3 / DAY_S),
         ]) == 0  # fmt: skip
         report = capsys.readouterr().out
         assert "train" in report

@@ -102,3 +102,20 @@ def test_a_sample_ratio_mismatch_is_loud(tmp_path: Path, capsys) -> None:
 def test_report_errors_are_one_line(tmp_path: Path, capsys) -> None:
     assert cairn(["experiment", "report", "--events", str(tmp_path / "none"), "--out", str(tmp_path / "r")]) == 2
     assert "no such folder" in capsys.readouterr().err
+
+
+def test_the_readme_experiment_declaration_reads(tmp_path: Path) -> None:
+    import re
+
+    from service.events.experiment import load_experiment
+
+    readme = (Path(__file__).resolve().parents[3] / "README.md").read_text(encoding="utf-8")
+    block = re.search(r"`CAIRN_EXPERIMENT=experiment.toml`:\n\n```\n(.*?)```", readme, re.S).group(1)
+    (tmp_path / "experiment.toml").write_text(block, encoding="utf-8")
+    exp = load_experiment(tmp_path / "experiment.toml")
+    assert [a.name for a in exp.arms] == ["neighbours", "gru"] and exp.shares() == {"neighbours": 0.5, "gru": 0.5}
+
+
+def test_export_refuses_an_unknown_format_before_reading(tmp_path: Path, capsys) -> None:
+    assert cairn(["events", "export", "--from", str(tmp_path / "none"), "--out", str(tmp_path / "clicks.txt")]) == 2
+    assert "--out" in capsys.readouterr().err

@@ -48,7 +48,7 @@ def test_folder_sink_holds_every_answered_click_after_shutdown(serve, settings_f
         assert 0 < e["elapsed_ms"] <= a["elapsed_ms"] + 50
 
 
-def test_redis_stream_sink_against_a_real_server(serve, settings_for, sid, redis_url: str) -> None:
+def test_redis_stream_sink_against_a_real_server(serve, settings_for, sid, redis_url: str, tmp_path: Path) -> None:
     settings = settings_for(events=redis_url, events_flush_s=0.05)
     with serve(settings) as server:
         answers = _clicks(server, sid, n_visits=3)
@@ -57,6 +57,15 @@ def test_redis_stream_sink_against_a_real_server(serve, settings_for, sid, redis
     assert sorted(e["item_id"] for e in batch.events) == sorted(
         [str(10 * v + k) for v in range(3) for k in range(4)] + ["1"] * 3
     )
+    # The export reads the stream too: the replays (duplicate) are left out of the click log.
+    import polars as pl
+
+    from service.cli import main as cairn
+
+    out = tmp_path / "clicks.parquet"
+    assert cairn(["events", "export", "--from", redis_url, "--redis-prefix", settings.redis_prefix, "--out", str(out)]) == 0
+    log = pl.read_parquet(out)
+    assert log.height == len(answers) - 3 and set(log["item_id"]) == {str(10 * v + k) for v in range(3) for k in range(4)}
 
 
 def test_stream_is_trimmed_approximately(redis_url: str, sid) -> None:
