@@ -39,10 +39,17 @@ def _command_module(name: str):
     try:
         return importlib.import_module(module_name)
     except ModuleNotFoundError as exc:
-        if exc.name is not None and exc.name.split(".")[0] == module_name.split(".")[0]:
+        missing = (exc.name or "").split(".")[0]
+        if missing == module_name.split(".")[0]:
             raise CairnError(
-                f"`cairn {name}` is not part of this installation (it needs the {module_name.split('.')[0]!r} package; "
+                f"`cairn {name}` is not part of this installation (it needs the {missing!r} package; "
                 "the serving image has `cairn serve` and `cairn artifacts` only)"
+            ) from None
+        if missing and not module_name.startswith("service."):
+            # The workbench's own dependencies (torch, polars, locust, ...) come with the extras.
+            raise CairnError(
+                f"`cairn {name}` needs {missing!r}, which is not part of this installation "
+                "(install cairn with its extras: pip install 'cairn[train,dev]')"
             ) from None
         raise
 

@@ -261,10 +261,11 @@ async def put_serving(
     arms = service.visits.arms
     if arms is not None:
         if body.arm is None or body.arm not in arms.models:
-            raise ApiError(422, "invalid_request", f"an experiment runs: name the arm to switch ({', '.join(arms.models)})", "arm")
+            # A well-formed body that does not fit the service's state (RFC 9110, section 15.5.10: 409).
+            raise ApiError(409, "arm_conflict", f"an experiment runs: name the arm to switch ({', '.join(arms.models)})", "arm")
         active = arms.models[body.arm]
     elif body.arm is not None:
-        raise ApiError(422, "invalid_request", "no experiment runs: leave out 'arm'", "arm")
+        raise ApiError(409, "arm_conflict", "no experiment runs: leave out 'arm'", "arm")
     _, current = active.current
     choice = ModelChoice(body.name, body.version, body.recommender or current.recommender)
     try:

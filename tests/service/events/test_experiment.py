@@ -119,7 +119,7 @@ def test_arms_serve_side_by_side(store: str, serve, settings_for, redis_url: str
         r = c.put("/v1/serving", json={"name": "shop", "version": "v0-broken", "arm": "gru"}, headers=auth)
         assert r.status_code == 409
         r = c.put("/v1/serving", json={"name": "shop", "version": "v2"}, headers=auth)
-        assert r.status_code == 422 and r.json()["field"] == "arm"
+        assert r.status_code == 409 and r.json()["field"] == "arm"
         r = c.put("/v1/serving", json={"name": "shop", "version": "v2", "arm": "gru"}, headers=auth)
         assert r.status_code == 200 and r.json()["arm"] == "gru"
         session = next(s for s in (sid("after") for _ in range(100)) if exp.assign(s).name == "gru")
@@ -134,7 +134,7 @@ def test_answers_carry_no_arm_without_an_experiment(serve, settings_for, sid, to
         body = c.post(f"/v1/sessions/{sid()}/clicks", json={"item_id": "sku-000005"}).json()
         assert "arm" not in body
         r = c.put("/v1/serving", json={"name": "shop", "version": "v1", "arm": "gru"}, headers={"authorization": f"Bearer {token}"})
-        assert r.status_code == 422 and r.json()["field"] == "arm"
+        assert r.status_code == 409 and r.json()["field"] == "arm"
 
 
 def test_a_bad_experiment_file_stops_start_up_with_one_line(settings_for, tmp_path: Path) -> None:
