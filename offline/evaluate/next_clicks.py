@@ -36,10 +36,12 @@ def iterate_events(scorer: SessionScorer, split: SessionSplit, batch_size: int =
         for t in range(int(chunk_len[0]) - 1):
             # Slots whose session is over repeat their last click; their scores are dropped below.
             pos = begins + np.minimum(t, chunk_len - 1)
-            scores = scorer.advance(split.items[pos].astype(np.int64))  # [n, n_items]
             active = chunk_len > t + 1
             if not active.any():
                 break
+            if hasattr(scorer, "needed"):
+                scorer.needed = active  # optional: a scorer may skip the rows whose scores are dropped
+            scores = scorer.advance(split.items[pos].astype(np.int64))  # [n, n_items]
             targets = split.items[begins[active] + t + 1].astype(np.int64)
             yield EventBatch(
                 sessions=chunk[active].astype(np.int64),

@@ -3,7 +3,8 @@
 The evaluator runs a batch of sessions side by side: `begin(n)` starts n empty sessions, then each
 `advance(items)` feeds one click to each of the n sessions and returns the scores of every item as
 the next click, float32 [n, n_items]. Higher is better. Slots whose session has already ended are
-fed a repeat of their last click; their scores are ignored.
+fed a repeat of their last click; their scores are ignored. A scorer with a `needed` attribute is
+told before each `advance` which rows will be read (bool [n]) and may leave the others unscored.
 """
 
 from __future__ import annotations

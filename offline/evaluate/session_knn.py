@@ -106,6 +106,9 @@ class SessionKNN:
         )  # truncated postings
         self._history = np.zeros((0, 0), dtype=np.int64)
         self._out = np.empty((0, self.n_items), dtype=np.float32)
+        # Rows whose scores the caller will read (the evaluator sets it before each click; the
+        # others are left at the popularity order): None scores every row.
+        self.needed: np.ndarray | None = None
 
     @classmethod
     def fit(
@@ -123,12 +126,15 @@ class SessionKNN:
         return {"neighbours": self.neighbours, "candidates": self.index.candidates, "weighting": self.weighting}
 
     def begin(self, n_sessions: int) -> None:
+        self.needed = None  # a mask of the previous batch does not fit this one
         self._history = np.zeros((n_sessions, 0), dtype=np.int64)
         self._out = np.empty((n_sessions, self.n_items), dtype=np.float32)
 
     def advance(self, items: np.ndarray) -> np.ndarray:
         self._history = np.concatenate([self._history, np.asarray(items, dtype=np.int64)[:, None]], axis=1)  # [n, t]
-        rows, cols, values = self.neighbour_scores(self._history)
+        needed = np.arange(len(items)) if self.needed is None else np.flatnonzero(self.needed)
+        rows, cols, values = self.neighbour_scores(self._history[needed])
+        rows = needed[rows]
         out = self._out
         out[:] = self._tiebreak
         if len(rows):

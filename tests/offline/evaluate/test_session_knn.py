@@ -131,3 +131,25 @@ def test_bad_parameters_are_refused() -> None:
         SessionKNN.fit(TRAIN, N_ITEMS, candidates=0)
     with pytest.raises(ValueError, match="weighting"):
         SessionKNN.fit(TRAIN, N_ITEMS, weighting="cubic")
+
+
+def test_skipping_the_rows_the_evaluator_drops_changes_no_result() -> None:
+    from offline.evaluate.evaluation import evaluate
+
+    split, x = random_log(seed=8, n_sessions=200)
+    test, _ = random_log(seed=9, n_sessions=120)
+    counts = np.bincount(split.items, minlength=x.shape[1])
+
+    class EveryRow(SessionKNN):
+        @property
+        def needed(self):  # always None: every row scored
+            return None
+
+        @needed.setter
+        def needed(self, value) -> None:
+            pass
+
+    a = evaluate(SessionKNN.fit(split, x.shape[1], neighbours=5, candidates=30), test, (1, 5, 20), popularity=counts, bootstrap=5, batch_size=16)
+    full = EveryRow(session_index(split, x.shape[1], 30), counts, neighbours=5)
+    b = evaluate(full, test, (1, 5, 20), popularity=counts, bootstrap=5, batch_size=16)
+    np.testing.assert_array_equal(a.sums, b.sums)

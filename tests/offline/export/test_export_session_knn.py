@@ -73,3 +73,25 @@ def test_a_request_without_exclude_seen_follows_the_artifact(tmp_path: Path, sid
     assert second["served_by"] == "session-knn"
     assert {"sku-000001", clicked} & set(kept)  # the default (false) keeps the visit's items in the list
     assert not {"sku-000001", clicked} & {i["item_id"] for i in asked["items"]}  # the request's own choice wins
+
+
+def test_a_session_index_that_points_outside_is_refused(tmp_path: Path) -> None:
+    from service.artifacts.format import write_artifact
+    from service.runtime.session_knn import SessionIndex
+
+    def write(index: SessionIndex, params: dict) -> None:
+        write_artifact(tmp_path, "bad", "v1", b"graph", ["a", "b"], np.full((2, 1), -1), np.zeros((2, 1)), np.ones(2),
+                       {"session_knn": params}, session_index=index)  # fmt: skip
+
+    good = {"neighbours": 5, "candidates": 2, "weighting": "linear"}
+    outside = SessionIndex(np.array([0, 2]), np.array([0, 7], np.int32), np.array([0, 1, 1]), np.array([0], np.int32), 2)
+    with pytest.raises(ArtifactError, match="session_items points outside"):
+        write(outside, good)
+    short = SessionIndex(np.array([0, 2]), np.array([0, 1], np.int32), np.array([0, 1]), np.array([0], np.int32), 2)
+    with pytest.raises(ArtifactError, match="covers 1 items"):
+        write(short, good)
+    sound = SessionIndex(np.array([0, 2]), np.array([0, 1], np.int32), np.array([0, 1, 2]), np.array([0, 0], np.int32), 2)
+    with pytest.raises(ArtifactError, match="weighting"):
+        write(sound, {**good, "weighting": "cubic"})
+    write(sound, good)
+    assert load_artifact(tmp_path / "bad" / "v1").session_index.n_sessions == 1
