@@ -96,6 +96,7 @@ bench: $(STAMP)
 	$(BIN)/python -m bench.service --out reports/bench/service.json
 	$(BIN)/python -m bench.side_by_side --out reports/bench/side_by_side.json
 	$(BIN)/python -m bench.resilience --out reports/bench/resilience.json
+	$(BIN)/python -m bench.metrics_overhead --out reports/bench/metrics_overhead.json
 	$(BIN)/python -m bench.session_knn --out reports/bench/session_knn.json
 	$(BIN)/python -m bench.events --out reports/bench/events.json
 	$(MAKE) demo SERVE=0

@@ -54,7 +54,7 @@ recommendations, which recommender gave them (`served_by`) and why a fallback an
 
 def create_app(settings: Settings, store: SessionStore | None = None, wrap_model: ModelWrapper | None = None) -> FastAPI:
     """The service for `settings`; `store` replaces the one the settings name (tests pass their own)."""
-    metrics = ServiceMetrics()
+    metrics = ServiceMetrics(multiprocess=settings.workers > 1)
 
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -69,6 +69,7 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
             active = ActiveModel(settings, session_store, wrap_model=wrap_model, on_replaced=guards.model_replaced)
         follower: asyncio.Task | None = None
         lag_task: asyncio.Task | None = None
+        collector: asyncio.Task | None = None
         loop_lag = LoopLag() if guards.enabled else None
         events: EventLog | None = None
         # The memory store is its own cache; a shared store's reads are worth saving.
@@ -103,6 +104,9 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
                 pseudonyms=Pseudonyms(None if key is None else key.get_secret_value().encode()),
             )
             metrics.registry.on_collect(lambda: _collect(service))
+            if metrics.registry.multiprocess:
+                # Other workers answer scrapes too: keep this worker's gauges fresh in the shared files.
+                collector = asyncio.get_running_loop().create_task(_collect_every(metrics, COLLECT_S), name="cairn-metrics")
             app.state.service = service
             if loop_lag is not None:
                 lag_task = asyncio.get_running_loop().create_task(loop_lag.run(), name="cairn-loop-lag")
@@ -121,6 +125,9 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
                 await stop_task(follower)  # a single cancel can be lost inside a Redis call
             if lag_task is not None:
                 await stop_task(lag_task)
+            if collector is not None:
+                await stop_task(collector)
+            metrics.registry.worker_exited()
             if events is not None:
                 await events.close()  # requests have ended (uvicorn drains them first): write what is buffered
             if arms is not None:
@@ -168,6 +175,15 @@ async def _shared_choice(store: SessionStore, slot: str = "") -> ModelChoice | N
     except CairnError as exc:
         log.error("ignoring the shared model choice: %s", exc)
         return None
+
+
+COLLECT_S = 1.0  # with several workers, how often each refreshes its gauges in the shared metric files
+
+
+async def _collect_every(metrics: ServiceMetrics, interval_s: float) -> None:
+    while True:
+        await asyncio.sleep(interval_s)
+        metrics.registry.collect_now()
 
 
 def _collect(service: Service) -> None:

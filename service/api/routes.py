@@ -10,6 +10,7 @@ driver messages, no stack traces.
 from __future__ import annotations
 
 import asyncio
+import logging
 import json
 import os
 import time
@@ -48,6 +49,7 @@ from service.runtime.timing import Timing
 from service.runtime.visits import Answer
 
 router = APIRouter()
+log = logging.getLogger("cairn.service")
 _NO_STORE = {"cache-control": "no-store"}
 _bearer = HTTPBearer(auto_error=False, description="CAIRN_ADMIN_TOKEN")
 _ERRORS: dict[int | str, dict[str, Any]] = {code: {"model": ErrorAnswer} for code in (400, 413, 422, 503)}
@@ -336,7 +338,17 @@ def _without_paths(message: str, model_store: PathLike) -> str:
     summary="Prometheus text format 0.0.4",
     tags=["operations"],
     response_class=PlainTextResponse,
-    responses={200: {"content": {CONTENT_TYPE: {"schema": {"type": "string"}}}, "description": "the service's metrics"}},
+    responses={
+        200: {"content": {CONTENT_TYPE: {"schema": {"type": "string"}}}, "description": "the service's metrics"},
+        503: {"model": ErrorAnswer},
+    },
 )
 async def metrics(service: ServiceDep) -> Response:
-    return Response(service.metrics.render(), media_type=CONTENT_TYPE)
+    try:
+        text = service.metrics.render()
+    except (OSError, ValueError, KeyError) as exc:
+        # With several workers the scrape reads the others' metric files, which a worker starting or
+        # stopping at that moment may leave unreadable for an instant: ask for the next scrape.
+        log.warning("metrics could not be read this time: %s", exc)
+        raise ApiError(503, "metrics_unavailable", "the metrics could not be read this time; scrape again") from exc
+    return Response(text, media_type=CONTENT_TYPE)

@@ -10,7 +10,9 @@ from __future__ import annotations
 
 import argparse
 import importlib.util
+import os
 import socket
+import tempfile
 from pathlib import Path
 
 from service.api.logs import configure_logging
@@ -134,5 +136,9 @@ def run(args: argparse.Namespace) -> int:
         uvicorn.run(create_app(settings), **options)
     else:
         export_environment(settings)  # spawned workers rebuild the same settings from it
-        uvicorn.run("service.api.app:app_from_environment", factory=True, workers=settings.workers, **options)
+        # The workers keep their metrics in files of this folder, so that one scrape of any worker
+        # reports the whole service (prometheus-client's multi-process mode reads this variable).
+        with tempfile.TemporaryDirectory(prefix="cairn-metrics-") as folder:
+            os.environ["PROMETHEUS_MULTIPROC_DIR"] = folder
+            uvicorn.run("service.api.app:app_from_environment", factory=True, workers=settings.workers, **options)
     return 0

@@ -36,8 +36,18 @@ def worker_of_each_scrape(url: str, want: int = 2, tries: int = 200) -> dict[str
 
 
 def clicks_served(metrics_text: str) -> int:
-    m = re.search(r'cairn_http_requests_total\{route="/v1/sessions/\{session_id\}/clicks",method="POST",status="200"\} (\d+)', metrics_text)
-    return int(m.group(1)) if m else 0
+    """Clicks answered 200, as one scrape reports them (label order as the exposition writes it)."""
+    total = 0.0
+    for line in metrics_text.splitlines():
+        if line.startswith("cairn_http_requests_total{") and 'route="/v1/sessions/{session_id}/clicks"' in line and 'status="200"' in line:
+            total += float(line.rsplit(" ", 1)[1])
+    return int(total)
+
+
+def clicks_in_access_log(log: str, session: str) -> Counter:
+    """pid -> the visit's clicks that worker answered, from uvicorn's access log lines."""
+    pattern = re.compile(rf"uvicorn\.access\[(\d+)\]: .*\"POST /v1/sessions/{re.escape(session)}/clicks HTTP/1\.1\" 200")
+    return Counter(m.group(1) for m in pattern.finditer(log))
 
 
 @pytest.fixture()
@@ -56,24 +66,27 @@ def two_workers(model_store, redis_url, tmp_path, token):
         CAIRN_ARTIFACT_VERSION="v1",
         CAIRN_ADMIN_TOKEN=token,
         CAIRN_REDIS_PREFIX=f"w{os.getpid()}:",
-        CAIRN_LOG_LEVEL="warning",
+        CAIRN_LOG_LEVEL="info",
+        CAIRN_ACCESS_LOG="true",  # the access log says which worker answered each click
     ):
         yield url
 
 
-def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, sid, token):
+def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, sid, token, tmp_path):
     url = two_workers
     session = sid("w")
-    before = {pid: clicks_served(text) for pid, text in worker_of_each_scrape(url).items()}
     with fresh(url) as c:
+        before = clicks_served(c.get("/metrics").text)
         for n, item in enumerate(CLICKS[:8], start=1):
             answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
             assert answer["sequence"] == n and answer["served_by"] == "gru"
             assert [i["item_id"] for i in answer["items"]] == offline["v1"].top(CLICKS[:n], count=6)[0]
-    after = {pid: clicks_served(text) for pid, text in worker_of_each_scrape(url).items()}
-    served = Counter({pid: after[pid] - before.get(pid, 0) for pid in after})
-    assert sum(served.values()) == 8
-    assert len([pid for pid, n in served.items() if n > 0]) == 2, f"one worker served the whole visit: {served}"
+    # One scrape, of whichever worker answers it, counts the clicks both workers answered.
+    for pid, text in worker_of_each_scrape(url).items():
+        assert clicks_served(text) - before == 8, (pid, clicks_served(text), before)
+    time.sleep(0.3)  # the access log lines are written as the answers go out
+    served = clicks_in_access_log((tmp_path / "serve.log").read_text(), session)
+    assert sum(served.values()) == 8 and len(served) == 2, f"one worker served the whole visit: {served}"
 
     with fresh(url) as c:
         r = c.put("/v1/serving", json={"name": "shop", "version": "v2"}, headers={"authorization": f"Bearer {token}"})

@@ -113,7 +113,7 @@ def test_arms_serve_side_by_side(store: str, serve, settings_for, redis_url: str
         assert seen_arms == {"gru", "pop"}
         metrics = c.get("/metrics").text
         assert 'cairn_arm_recommendation_duration_seconds_count{arm="gru",served_by="gru"}' in metrics
-        assert 'cairn_arm_serving_info{arm="pop",name="shop",version="v2",recommender="popularity"} 1' in metrics
+        assert 'cairn_arm_serving_info{arm="pop",name="shop",recommender="popularity",version="v2"} 1.0' in metrics
         # An arm switch follows the switch's rules: an artifact that fails verification is refused and the arm keeps serving.
         auth = {"authorization": f"Bearer {token}"}
         r = c.put("/v1/serving", json={"name": "shop", "version": "v0-broken", "arm": "gru"}, headers=auth)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import re
 import threading
 import time
 from collections.abc import Iterator
@@ -191,12 +192,17 @@ def start_server(model_store: Path) -> Iterator:
 
 
 def metric(text: str, name: str, **labels: str) -> float:
-    """The value of one sample in a Prometheus text exposition (0 when absent)."""
-    want = ",".join(f'{k}="{v}"' for k, v in labels.items())
-    line_start = f"{name}{{{want}}} " if labels else f"{name} "
+    """The value of one sample in a Prometheus text exposition (0 when absent); labels in any order."""
     for line in text.splitlines():
-        if line.startswith(line_start):
-            return float(line[len(line_start) :])
+        if not line.startswith(name) or line.startswith("#"):
+            continue
+        head, _, value = line.rpartition(" ")
+        sample, _, label_text = head.partition("{")
+        if sample != name:
+            continue
+        found = dict(re.findall(r'([a-zA-Z_][a-zA-Z0-9_]*)="((?:[^"\\]|\\.)*)"', label_text))
+        if found == labels:
+            return float(value)
     return 0.0
 
 
