@@ -80,6 +80,7 @@ def run(args: argparse.Namespace) -> int:
     cost_clicks = _integer("--cost-clicks", args.cost_clicks, minimum=0)
     if not names and not args.scenario and not args.checkpoint and not args.artifact:
         raise EvaluateOptionError("nothing to evaluate: give --recommenders, --scenario, --checkpoint or --artifact")
+    check_paths(args)  # before minutes of fitting, not after
 
     data = PreparedData.load(args.data)
     split = data.split(args.split)
@@ -157,7 +158,7 @@ def run(args: argparse.Namespace) -> int:
     out = args.out if args.out is not None else Path(args.data) / f"evaluation-{args.split}.json"
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
-        report = {**results_json(results), "decision": decision}
+        report = {**results_json(results), "decision": decision, "provenance": provenance(args, data, ks, results, names, sknn, neighbours, regulariser, bootstrap, seed)}
         out.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
     except OSError as exc:
         raise EvaluateOptionError(f"--out {out}: cannot write the report ({exc.strerror or exc})") from exc
@@ -171,6 +172,50 @@ def run(args: argparse.Namespace) -> int:
             raise EvaluateOptionError(f"--report {args.report}: cannot write the report ({exc.strerror or exc})") from exc
         print(f"wrote {page}")
     return 0
+
+
+def check_paths(args: argparse.Namespace) -> None:
+    """Every file and folder named on the command line exists (one line naming the first that does not)."""
+    if not Path(args.data).is_dir():
+        raise EvaluateOptionError(f"--data {args.data}: no such folder (a prepared data set from `cairn prepare`)")
+    for path in args.checkpoint:
+        if not Path(path).is_file():
+            raise EvaluateOptionError(f"--checkpoint {path}: no such file")
+    for path in args.artifact:
+        if not Path(path).is_dir():
+            raise EvaluateOptionError(f"--artifact {path}: no such folder")
+    if args.scenario is not None and not Path(args.scenario).is_file():
+        raise EvaluateOptionError(f"--scenario {args.scenario}: no such file")
+
+
+def provenance(
+    args: argparse.Namespace, data: PreparedData, ks: tuple[int, ...], results: dict[str, Result], names: list[str],
+    sknn: dict, neighbours: int, regulariser: float, bootstrap: int, seed: int,
+) -> dict:  # fmt: skip
+    """What the report is of: the data (and its fingerprint), split, cut-offs, each row's checkpoint or
+    artifact, the baselines' settings, the seed and resamples, and the cairn that made it."""
+    from datetime import datetime, timezone
+
+    from service import __version__
+
+    artifacts = [n for n in results if n.endswith("-onnx") or "-onnx-" in n]
+    return {
+        "data": {"path": str(args.data), "fingerprint": data.fingerprint()},
+        "split": args.split,
+        "k": list(ks),
+        "checkpoints": {name: str(path) for name, path in zip(_gru_names(results, args.checkpoint), args.checkpoint)},
+        "artifacts": {name: str(path) for name, path in zip(artifacts, args.artifact)},
+        "baselines": {
+            "recommenders": names,
+            "item_knn": {"neighbours": neighbours, "regulariser": regulariser},
+            "session_knn": sknn if "session-knn" in names else None,
+        },
+        "scenario": None if args.scenario is None else str(args.scenario),
+        "seed": seed,
+        "bootstrap": bootstrap,
+        "cairn_version": __version__,
+        "created_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    }
 
 
 def _gru_names(results: dict[str, Result], checkpoints: list[Path]) -> list[str]:

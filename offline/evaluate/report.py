@@ -28,7 +28,7 @@ DPI = 110
 
 
 def _rows(report: dict) -> dict[str, dict]:
-    return {n: r for n, r in report.items() if n != "decision" and isinstance(r, dict)}
+    return {n: r for n, r in report.items() if n not in ("decision", "provenance") and isinstance(r, dict)}
 
 
 def _figure() -> tuple:

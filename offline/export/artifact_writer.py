@@ -268,8 +268,8 @@ def export_artifact(
             "data_fingerprint": fingerprint,
             "model": _model_fields(model.config),
             "hyperparameters": _jsonable(hyperparameters, "the checkpoint's hyperparameters"),
-            # the rows and the verdict; the breakdowns and curves stay in the report
-            "metrics": _jsonable(_without_details(metrics or {}), "the metrics"),
+            # this model's own figures, the strongest simple one's beside them, the verdict, provenance
+            "metrics": _jsonable(own_metrics(metrics or {}, checkpoint), "the metrics"),
             "neighbour_table": {"kind": "item-knn", "neighbours": neighbours, "regulariser": regulariser},
             "session_knn": sknn,
             "serving_defaults": {"exclude_seen": exclude_seen},
@@ -280,12 +280,36 @@ def export_artifact(
     )
 
 
-def _without_details(metrics: dict) -> dict:
-    decision = metrics.get("decision")
-    if not isinstance(decision, dict):
-        return metrics
-    kept = {k: decision[k] for k in ("verdict", "serving_defaults", "session_knn", "exclude_seen") if k in decision}
-    return {**metrics, "decision": kept}
+def own_metrics(report: dict, checkpoint: Path) -> dict:
+    """What an artifact records of a `cairn evaluate` report: the exported checkpoint's own row (found
+    by its path in the report's provenance), the strongest simple recommender's row for reference,
+    the verdict, and where the figures come from. InputDataError when the report evaluated other
+    checkpoints only: another model's figures would be recorded as this one's."""
+    if not report:
+        return {}
+    provenance = report.get("provenance") if isinstance(report.get("provenance"), dict) else {}
+    decision = report.get("decision") if isinstance(report.get("decision"), dict) else {}
+    verdict = decision.get("verdict") if isinstance(decision.get("verdict"), dict) else {}
+    out: dict = {"decision": {k: decision[k] for k in ("verdict", "serving_defaults", "session_knn", "exclude_seen") if k in decision}}
+    evaluated = provenance.get("checkpoints") if isinstance(provenance.get("checkpoints"), dict) else {}
+    if evaluated:
+        mine = [name for name, path in evaluated.items() if Path(path).resolve() == Path(checkpoint).resolve()]
+        if not mine:
+            listed = ", ".join(f"{n} ({p})" for n, p in evaluated.items())
+            raise InputDataError(f"--metrics: the report did not evaluate {checkpoint} (it evaluated {listed}); evaluate this checkpoint")
+        out["model"] = {"name": mine[0], **_figures(report.get(mine[0]))}
+    simple = verdict.get("strongest_simple")
+    if isinstance(simple, str) and isinstance(report.get(simple), dict):
+        out["strongest_simple"] = {"name": simple, **_figures(report[simple])}
+    out["provenance"] = {k: provenance[k] for k in ("data", "split", "k", "bootstrap", "seed", "cairn_version", "created_at") if k in provenance}
+    return out
+
+
+def _figures(row: Any) -> dict:
+    """The metric values of one report row, without intervals' details beyond the 95% one."""
+    if not isinstance(row, dict):
+        return {}
+    return {m: v for m, v in row.items() if isinstance(v, dict) and "value" in v}
 
 
 def write_random_artifact(

@@ -14,8 +14,6 @@ from service.artifacts.format import STEP_GRAPH, list_artifacts, load_artifact
 from service.errors import ArtifactError
 
 DEFAULT_STORE = Path("model_store")
-KEY_METRICS = ("recall", "mrr")  # the next-click metrics worth a column; others stay in the manifest
-MAX_METRICS = 4
 
 
 def _add_folder(parser: argparse.ArgumentParser, default: object) -> None:
@@ -55,22 +53,30 @@ def _list(store: Path) -> int:
     if not listings:
         print(f"no artifacts in {store}")
         return 0
-    rows = [("NAME", "VERSION", "CREATED", "METRICS", "STATUS")]
+    rows = [("NAME", "VERSION", "CREATED", "MODEL", "RECALL@20", "MRR@20", "STATUS")]
     for a in listings:
         manifest = a.manifest or {}
-        rows.append(
-            (
-                a.name,
-                a.version,
-                str(manifest.get("created_at", "-")),
-                key_metrics(manifest.get("metrics")) or "-",
-                "OK" if a.problem is None else f"PROBLEM: {a.problem}",
-            )
-        )
-    widths = [max(len(r[i]) for r in rows) for i in range(4)]
+        model, recall, mrr = own_figures(manifest.get("metrics"))
+        created = str(manifest.get("created_at", "-"))[:16]  # to the minute: enough to tell them apart here
+        rows.append((a.name, a.version, created, model, recall, mrr, "OK" if a.problem is None else f"PROBLEM: {a.problem}"))
+    widths = [max(len(r[i]) for r in rows) for i in range(6)]
     for r in rows:
-        print("  ".join(cell.ljust(w) for cell, w in zip(r[:4], widths)) + "  " + r[4])
+        cells = [r[i].ljust(widths[i]) if i < 4 else r[i].rjust(widths[i]) for i in range(6)]
+        print("  ".join(cells) + "  " + r[6])
     return 0
+
+
+def own_figures(metrics: Any) -> tuple[str, str, str]:
+    """(model, Recall@20, MRR@20) the artifact recorded of its own evaluation, "-" where it has none."""
+    model = metrics.get("model") if isinstance(metrics, dict) else None
+    if not isinstance(model, dict):
+        return "-", "-", "-"
+
+    def value(name: str) -> str:
+        entry = model.get(name)
+        return f"{entry['value']:.4f}" if isinstance(entry, dict) and isinstance(entry.get("value"), (int, float)) else "-"
+
+    return str(model.get("name", "-")), value("recall@20"), value("mrr@20")
 
 
 def _verify(path: Path) -> int:
@@ -87,21 +93,3 @@ def _verify(path: Path) -> int:
         f"GRU {step.layers}x{step.hidden_size}, {len(artifact.manifest['files'])} files match their checksums"
     )
     return 0
-
-
-def key_metrics(metrics: Any) -> str:
-    """A short 'name=value' summary of the Recall/MRR figures found anywhere in a metrics object."""
-    flat = _flatten(metrics) if isinstance(metrics, dict) else []
-    picked = [(k, v) for k, v in flat if any(m in k.lower() for m in KEY_METRICS)] or flat
-    return " ".join(f"{k}={v:.4g}" for k, v in picked[:MAX_METRICS])
-
-
-def _flatten(obj: dict, prefix: str = "") -> list[tuple[str, float]]:
-    out: list[tuple[str, float]] = []
-    for key, value in obj.items():
-        name = f"{prefix}{key}"
-        if isinstance(value, dict):
-            out.extend(_flatten(value, name + "."))
-        elif isinstance(value, (int, float)) and not isinstance(value, bool):
-            out.append((name, float(value)))
-    return out

@@ -229,8 +229,17 @@ def test_cairn_evaluate_end_to_end(prepared: Path, tmp_path: Path, capsys: pytes
     rc = main(["evaluate", "--data", str(prepared), "--k", "20", "5", "--bootstrap", "50", "--out", str(out)])
     assert rc == 0
     report = json.loads(out.read_text())
-    assert list(report) == ["pop", "spop", "markov", "item-knn", "session-knn", "decision"]
-    for name, entry in ((n, e) for n, e in report.items() if n != "decision"):
+    assert list(report) == ["pop", "spop", "markov", "item-knn", "session-knn", "decision", "provenance"]
+    # The report says what it is of.
+    from offline.data.dataset import PreparedData
+    from service import __version__
+
+    prov = report["provenance"]
+    assert prov["data"] == {"path": str(prepared), "fingerprint": PreparedData.load(prepared).fingerprint()}
+    assert prov["split"] == "test" and prov["k"] == [20, 5] and prov["bootstrap"] == 50 and prov["seed"] == 0
+    assert prov["baselines"]["item_knn"] == {"neighbours": 100, "regulariser": 20.0} and prov["cairn_version"] == __version__
+    assert prov["checkpoints"] == {} and prov["artifacts"] == {}
+    for name, entry in ((n, e) for n, e in report.items() if n not in ("decision", "provenance")):
         for k in (20, 5):
             for m in ("recall", "mrr", "coverage", "click_share"):
                 metric = entry[f"{m}@{k}"]
@@ -244,7 +253,24 @@ def test_cairn_evaluate_on_the_validation_split_with_default_report(prepared: Pa
     rc = main(["evaluate", "--data", str(prepared), "--split", "valid", "--recommenders", "pop,markov", "--bootstrap", "20"])
     assert rc == 0
     report = json.loads((prepared / "evaluation-valid.json").read_text())
-    assert list(report) == ["pop", "markov", "decision"]
+    assert list(report) == ["pop", "markov", "decision", "provenance"]
+
+
+def test_bad_paths_fail_before_any_work(prepared: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    import time
+
+    for args, named in (
+        (["--checkpoint", str(tmp_path / "nope.pt")], "--checkpoint"),
+        (["--artifact", str(tmp_path / "nowhere")], "--artifact"),
+        (["--scenario", str(tmp_path / "none.npz")], "--scenario"),
+    ):
+        started = time.monotonic()
+        assert main(["evaluate", "--data", str(prepared), "--bootstrap", "20", *args]) == 2
+        err = capsys.readouterr().err
+        assert named in err and "no such" in err and err.count("\n") == 1
+        assert time.monotonic() - started < 2  # nothing was fitted first
+    assert main(["evaluate", "--data", str(tmp_path / "missing")]) == 2
+    assert "--data" in capsys.readouterr().err
 
 
 @pytest.mark.parametrize(

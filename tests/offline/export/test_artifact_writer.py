@@ -194,7 +194,12 @@ def trained(tmp_path: Path) -> tuple[NextClickGRU, Path, Path, PreparedData]:
 
 def test_export_artifact_writes_what_the_model_and_data_say(trained, tmp_path: Path) -> None:
     model, checkpoint, data_dir, data = trained
-    metrics = {"gru": {"recall@20": 0.31, "mrr@20": 0.12}}
+    row = lambda r, m: {"recall@20": {"value": r, "ci95": [r - 0.01, r + 0.01]}, "mrr@20": {"value": m, "ci95": [m - 0.01, m + 0.01]}, "events": 90}  # noqa: E731
+    metrics = {
+        "gru-bpr-max": row(0.31, 0.12), "gru-top1-max": row(0.35, 0.14), "markov": row(0.28, 0.10), "pop": row(0.05, 0.01),
+        "decision": {"verdict": {"strongest_simple": "markov", "recommendation": "serve the GRU"}, "breakdowns": {"big": "stays out"}},
+        "provenance": {"checkpoints": {"gru-top1-max": "elsewhere.pt", "gru-bpr-max": str(checkpoint)}, "split": "test", "seed": 0},
+    }
     path = export_artifact(checkpoint, data_dir, tmp_path / "store", "garden", "v1", neighbours=7, metrics=metrics)
     assert path == tmp_path / "store" / "garden" / "v1"
     manifest = verify_artifact(path)
@@ -203,7 +208,13 @@ def test_export_artifact_writes_what_the_model_and_data_say(trained, tmp_path: P
         "kind": "gru", "n_items": 120, "embedding_size": 16, "hidden_size": 16, "layers": 2, "ff_sizes": [16], "tie_output": True,
     }
     assert manifest["hyperparameters"] == {"loss": "bpr-max", "batch_size": 32}
-    assert manifest["metrics"] == metrics
+    # Its own figures (the row of this checkpoint, not the better one of another), the strongest
+    # simple recommender's beside them, the verdict and where they come from; nothing else.
+    recorded = manifest["metrics"]
+    assert recorded["model"] == {"name": "gru-bpr-max", "recall@20": metrics["gru-bpr-max"]["recall@20"], "mrr@20": metrics["gru-bpr-max"]["mrr@20"]}
+    assert recorded["strongest_simple"]["name"] == "markov" and recorded["strongest_simple"]["recall@20"]["value"] == 0.28
+    assert recorded["decision"] == {"verdict": metrics["decision"]["verdict"]} and recorded["provenance"] == {"split": "test", "seed": 0}
+    assert "gru-top1-max" not in json.dumps(recorded["model"]) and len(json.dumps(recorded)) < 2000
     artifact = load_artifact(path)
     assert artifact.item_ids == data.item_ids
     # Popularity is the training clicks per item, counted here with a plain Python loop.
@@ -313,13 +324,18 @@ def test_export_cli(trained, tmp_path: Path, capsys) -> None:
     _, checkpoint, data_dir, _ = trained
     store = tmp_path / "store"
     metrics = tmp_path / "evaluation.json"
-    metrics.write_text(json.dumps({"recall@20": 0.4}))
+    metrics.write_text(json.dumps({"gru-x": {"recall@20": {"value": 0.4, "ci95": [0.3, 0.5]}}, "provenance": {"checkpoints": {"gru-x": str(checkpoint)}}}))
     args = ["export", "--checkpoint", str(checkpoint), "--data", str(data_dir), "--artifacts", str(store), "--name", "garden"]
     assert cairn([*args, "--knn-neighbours", "4", "--metrics", str(metrics)]) == 0
     (written,) = (store / "garden").iterdir()
     assert re.fullmatch(r"\d{8}T\d{6}", written.name), "default version: a UTC timestamp"
     manifest = verify_artifact(written)
-    assert manifest["metrics"] == {"recall@20": 0.4} and manifest["neighbour_table"]["neighbours"] == 4
+    assert manifest["metrics"]["model"] == {"name": "gru-x", "recall@20": {"value": 0.4, "ci95": [0.3, 0.5]}}
+    assert manifest["neighbour_table"]["neighbours"] == 4
+    other = tmp_path / "other.json"  # a report of another checkpoint: its figures are not this model's
+    other.write_text(json.dumps({"gru-y": {"recall@20": {"value": 0.9, "ci95": [0.8, 1.0]}}, "provenance": {"checkpoints": {"gru-y": "other.pt"}}}))
+    assert cairn([*args, "--version", "v-other", "--metrics", str(other)]) == 2
+    assert f"did not evaluate {checkpoint}" in capsys.readouterr().err
     assert cairn([*args, "--version", written.name]) == 2
     assert "exists already" in capsys.readouterr().err
     assert cairn([*args, "--version", written.name, "--overwrite"]) == 0

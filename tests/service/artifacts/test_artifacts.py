@@ -23,7 +23,7 @@ from service.artifacts.format import (
     verify_artifact,
     write_artifact,
 )
-from service.artifacts.artifacts_cli import key_metrics
+from service.artifacts.artifacts_cli import own_figures
 from service.cli import main as cairn
 from service.errors import ArtifactError
 
@@ -204,7 +204,8 @@ def test_cli_lists_and_verifies(tmp_path: Path, capsys) -> None:
 
     assert cairn(["artifacts", "--artifacts", str(store)]) == 0
     lines = capsys.readouterr().out.splitlines()
-    assert lines[0].split()[:5] == ["NAME", "VERSION", "CREATED", "METRICS", "STATUS"]
+    assert lines[0].split() == ["NAME", "VERSION", "CREATED", "MODEL", "RECALL@20", "MRR@20", "STATUS"]
+    assert max(len(line) for line in lines if "PROBLEM" not in line) < 100  # a narrow table
     assert lines[1].split()[:2] == ["bench", "v1"] and lines[1].rstrip().endswith("OK")
     assert lines[2].split()[:2] == ["bench", "v2"] and "PROBLEM" in lines[2] and "neighbours.npz: checksum mismatch" in lines[2]
 
@@ -254,12 +255,10 @@ def test_verify_cli_opens_the_step_graph(tmp_path: Path, capsys) -> None:
     assert "cannot open the step graph" in capsys.readouterr().err
 
 
-def test_key_metrics_finds_recall_and_mrr_in_nested_reports() -> None:
-    report = {"gru-bpr-max": {"recall@20": 0.61234, "mrr@20": 0.25, "coverage": 0.9}, "events": 1200}
-    assert key_metrics(report) == "gru-bpr-max.recall@20=0.6123 gru-bpr-max.mrr@20=0.25"
-    assert key_metrics({"loss": 1.5, "flag": True}) == "loss=1.5"
-    assert key_metrics({}) == "" and key_metrics(None) == ""
-
+def test_the_listing_shows_the_artifacts_own_model_figures() -> None:
+    metrics = {"model": {"name": "gru-top1-max", "recall@20": {"value": 0.61234, "ci95": [0.6, 0.62]}, "mrr@20": {"value": 0.25, "ci95": [0.2, 0.3]}}}
+    assert own_figures(metrics) == ("gru-top1-max", "0.6123", "0.2500")
+    assert own_figures({}) == ("-", "-", "-") and own_figures(None) == ("-", "-", "-")
 
 def test_a_copied_folder_whose_manifest_names_another_artifact_is_refused(tmp_path: Path) -> None:
     import shutil
