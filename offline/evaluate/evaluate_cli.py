@@ -145,7 +145,7 @@ def run(args: argparse.Namespace) -> int:
     )  # fmt: skip
 
     first = next(iter(results.values()))
-    print(f"{args.split} split: {first.n_sessions} sessions, {first.n_events} target clicks, {data.n_items} items")
+    print(f"{args.split} split: {first.n_sessions:,} sessions, {first.n_events:,} target clicks, {data.n_items:,} items")
     print(format_table(results))
     for line in verdict_lines(results):
         print(line)

@@ -264,8 +264,9 @@ def format_table(results: Mapping[str, Result] | Iterable[Result]) -> str:
 
 
 def _format_value(metric: str):
-    # Popularity shares are often below 1e-3: significant digits, not decimals.
-    return (lambda v: f"{v:.4g}") if metric.startswith("click_share") else (lambda v: f"{v:.4f}")
+    # One format per column: click shares are often below 1e-3, so they get six decimals; the
+    # ratios (recall, MRR, coverage) four.
+    return (lambda v: f"{v:.6f}") if metric.startswith("click_share") else (lambda v: f"{v:.4f}")
 
 
 def _percent(x: float) -> str:
