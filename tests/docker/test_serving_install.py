@@ -89,7 +89,7 @@ def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Pa
     with running_process(
         [str(venv / "bin" / "cairn"), "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "1"],
         log_path=tmp_path / "serve.log", ready=healthy, what="cairn serve in the fresh environment", ignore=(urllib.error.URLError, OSError),
-        poll_s=0.2, env=environment_without_cairn(CAIRN_ARTIFACTS=str(store), CAIRN_RECOMMENDER="gru", CAIRN_SESSION_STORE="memory"),
+        poll_s=0.2, env=environment_without_cairn(CAIRN_ARTIFACTS=str(store), CAIRN_RECOMMENDER="gru", CAIRN_SESSION_STORE="memory", CAIRN_PAGES="true"),
         cwd=tmp_path, group=True,
     ):  # fmt: skip
         body = json.dumps({"item_id": "sku-000007", "count": 3, "exclude_seen": False}).encode()
@@ -102,3 +102,7 @@ def test_serving_requirements_install_fresh_and_serve_without_torch(tmp_path: Pa
         assert answer["session_id"] == "fresh-venv-1"
         assert answer["served_by"] == "gru" and answer["fallback_reason"] is None
         assert len(answer["items"]) == 3
+        # The pages' templates and static files are package data: a plain (non-editable) install carries them.
+        for path, kind in (("/shop/", "text/html"), ("/operator/", "text/html"), ("/pages/static/pages.js", "javascript")):
+            with urllib.request.urlopen(f"{base}{path}", timeout=10) as resp:
+                assert resp.status == 200 and kind in resp.headers["content-type"], path
