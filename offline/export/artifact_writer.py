@@ -30,6 +30,22 @@ import onnx
 from onnx import TensorProto, helper, numpy_helper
 
 from service.artifacts.format import write_artifact
+from service.artifacts.item_vectors import (
+    CANDIDATE_GRAPH_FORMAT,
+    CANDIDATES_FP16,
+    CANDIDATES_INT8,
+    EMBEDDING,
+    FEATURE_GRAPH,
+    FEATURE_GRAPH_FORMAT,
+    FEATURE_ZERO_POINT,
+    INT8_LEVELS,
+    ITEM_BIAS,
+    ITEM_SCALES,
+    ITEM_VECTORS,
+    ITEM_VECTORS_FP16,
+    ITEM_VECTORS_INT8,
+    item_vectors_manifest,
+)
 from service.errors import ArtifactError, InputDataError
 from offline.data.dataset import PreparedData
 from offline.model.gru import GRUConfig, NextClickGRU, load_checkpoint
@@ -95,19 +111,11 @@ def _torch_gates_to_onnx(w: np.ndarray) -> np.ndarray:
     return np.concatenate([z, r, n], axis=0)
 
 
-def _graph_from_weights(w: _StepWeights) -> onnx.ModelProto:
-    n_items, hidden, n_layers = w.n_items, w.hidden_size, len(w.gru)
-    inits: list[onnx.TensorProto] = []
-    nodes: list[onnx.NodeProto] = []
-
-    def const(name: str, value: np.ndarray) -> str:
-        inits.append(numpy_helper.from_array(np.ascontiguousarray(value), name))
-        return name
-
+def _recurrent_part(w: _StepWeights, const: Any, nodes: list[onnx.NodeProto], x: str) -> str:
+    """GRU layers and feed-forward layers from `x` [1, B, E]; adds `next_hidden` and returns the
+    name of the feature vector f [B, D]. Shared by the step graph and the feature graph."""
+    n_layers, hidden = len(w.gru), w.hidden_size
     axis0 = const("axis0", np.array([0], dtype=np.int64))
-    nodes.append(helper.make_node("Gather", [const("embedding", w.embedding), "items"], ["x"], axis=0))  # [B, E]
-    nodes.append(helper.make_node("Unsqueeze", ["x", axis0], ["x_seq0"]))  # [1, B, E]
-
     if n_layers == 1:
         h_in = ["hidden"]
     else:
@@ -115,7 +123,6 @@ def _graph_from_weights(w: _StepWeights) -> onnx.ModelProto:
         h_in = [f"h_in{k}" for k in range(n_layers)]
         nodes.append(helper.make_node("Split", ["hidden"], h_in, axis=0))  # L x [1, B, H]
 
-    x = "x_seq0"
     h_out = []
     for k, (w_ih, w_hh, b_ih, b_hh) in enumerate(w.gru):
         W = const(f"gru{k}_W", _torch_gates_to_onnx(w_ih)[None])  # [1, 3H, in]
@@ -142,6 +149,39 @@ def _graph_from_weights(w: _StepWeights) -> onnx.ModelProto:
         nodes.append(helper.make_node("Gemm", [f, const(f"ff{k}_W", weight), const(f"ff{k}_b", bias)], [g], transB=1))  # [B, out]
         nodes.append(helper.make_node("Tanh", [g], [f"f{k + 1}"]))
         f = f"f{k + 1}"
+    return f
+
+
+def _initialiser_list() -> tuple[list[onnx.TensorProto], Any]:
+    inits: list[onnx.TensorProto] = []
+
+    def const(name: str, value: np.ndarray) -> str:
+        if not any(t.name == name for t in inits):
+            inits.append(numpy_helper.from_array(np.ascontiguousarray(value), name))
+        return name
+
+    return inits, const
+
+
+def _finish(graph: onnx.GraphProto, kind: str) -> onnx.ModelProto:
+    model = helper.make_model(graph, producer_name="cairn", opset_imports=[helper.make_opsetid("", OPSET)])
+    model.ir_version = IR_VERSION
+    helper.set_model_props(model, {"cairn.graph": kind})
+    try:
+        onnx.checker.check_model(model, full_check=True)
+    except (onnx.checker.ValidationError, onnx.shape_inference.InferenceError) as exc:
+        raise ArtifactError(f"the {kind} graph does not pass the ONNX checker: {exc}") from exc
+    return model
+
+
+def _graph_from_weights(w: _StepWeights) -> onnx.ModelProto:
+    n_items, hidden, n_layers = w.n_items, w.hidden_size, len(w.gru)
+    inits, const = _initialiser_list()
+    nodes: list[onnx.NodeProto] = []
+    axis0 = const("axis0", np.array([0], dtype=np.int64))
+    nodes.append(helper.make_node("Gather", [const("embedding", w.embedding), "items"], ["x"], axis=0))  # [B, E]
+    nodes.append(helper.make_node("Unsqueeze", ["x", axis0], ["x_seq0"]))  # [1, B, E]
+    f = _recurrent_part(w, const, nodes, "x_seq0")
 
     # O^T is stored [D, n_items] so the MatMul streams it row by row; it is the one big read per call.
     nodes.append(helper.make_node("MatMul", [f, const("output_t", w.output.T)], ["logits"]))  # [B, n_items]
@@ -164,14 +204,136 @@ def _graph_from_weights(w: _StepWeights) -> onnx.ModelProto:
         ],
         initializer=inits,
     )
-    model = helper.make_model(graph, producer_name="cairn", opset_imports=[helper.make_opsetid("", OPSET)])
-    model.ir_version = IR_VERSION
-    helper.set_model_props(model, {"cairn.graph": GRAPH_FORMAT})
-    try:
-        onnx.checker.check_model(model, full_check=True)
-    except (onnx.checker.ValidationError, onnx.shape_inference.InferenceError) as exc:
-        raise ArtifactError(f"the step graph does not pass the ONNX checker: {exc}") from exc
-    return model
+    return _finish(graph, GRAPH_FORMAT)
+
+
+def build_feature_graph(w: _StepWeights) -> bytes:
+    """The step without the item tables (see service/artifacts/item_vectors.py): the caller gathers
+    x = embedding[items] itself and scores the features f against the item vectors."""
+    hidden, n_layers = w.hidden_size, len(w.gru)
+    inits, const = _initialiser_list()
+    nodes: list[onnx.NodeProto] = [helper.make_node("Unsqueeze", ["x", const("axis0", np.array([0], dtype=np.int64))], ["x_seq0"])]
+    f = _recurrent_part(w, const, nodes, "x_seq0")
+    nodes.append(helper.make_node("Identity", [f], ["features"]))
+    graph = helper.make_graph(
+        nodes,
+        "cairn_gru_features",
+        inputs=[
+            helper.make_tensor_value_info("x", TensorProto.FLOAT, ["batch", w.embedding.shape[1]]),
+            helper.make_tensor_value_info("hidden", TensorProto.FLOAT, [n_layers, "batch", hidden]),
+        ],
+        outputs=[
+            helper.make_tensor_value_info("next_hidden", TensorProto.FLOAT, [n_layers, "batch", hidden]),
+            helper.make_tensor_value_info("features", TensorProto.FLOAT, ["batch", w.output.shape[1]]),
+        ],
+        initializer=inits,
+    )
+    return _finish(graph, FEATURE_GRAPH_FORMAT).SerializeToString()
+
+
+def build_candidate_graph(precision: str, dim: int) -> bytes:
+    """Approximate scores of every item from reduced-precision item vectors, and the best `k`.
+
+    inputs   fp16: features float32 [B, D]; codes float16 [D, n_items]
+             int8: features uint8 [B, D] (code + 128) and feature_scales float32 [B, 1] (the
+             caller quantises each row symmetrically to -127..127); codes int8 [D, n_items];
+             scales float32 [n_items]
+             both: bias float32 [n_items]; k int64 [1]
+    outputs  candidates int64 [B, k], approx float32 [B, k] (descending)
+    The item tables are inputs, not initialisers: the service feeds its read-only memory maps of the
+    artifact's arrays, so every worker reads the same pages. int8: MatMulInteger (uint8 features
+    with zero point 128, int8 item codes), accumulated in int32, then acc * feature_scale *
+    item_scale + bias. Why item codes of 7 bits (-63..63, see quantise_int8): ONNX Runtime's
+    uint8 x int8 kernel on AVX2 without VNNI adds pairs of products in saturating int16
+    (vpmaddubsw); 255 * 63 * 2 < 32767 keeps every pair exact (ONNX Runtime's quantisation tool
+    offers the same "reduce_range" for this). Its int8 x int8 and uint8 x uint8 kernels are exact
+    but were 3-4x slower here than float32 (tests/service/runtime/test_reduced_step.py checks the
+    products are exact).
+    """
+    nodes: list[onnx.NodeProto] = []
+    inputs: list[onnx.ValueInfoProto] = []
+    inits: list[onnx.TensorProto] = []
+    if precision == "int8":
+        inputs += [
+            helper.make_tensor_value_info("features", TensorProto.UINT8, ["batch", dim]),
+            helper.make_tensor_value_info("feature_scales", TensorProto.FLOAT, ["batch", 1]),
+            helper.make_tensor_value_info("codes", TensorProto.INT8, [dim, "n_items"]),
+            helper.make_tensor_value_info("scales", TensorProto.FLOAT, ["n_items"]),
+        ]
+        inits.append(numpy_helper.from_array(np.array(FEATURE_ZERO_POINT, dtype=np.uint8), "feature_zero"))
+        nodes += [
+            helper.make_node("MatMulInteger", ["features", "codes", "feature_zero"], ["acc"]),  # int32 [B, n_items]
+            helper.make_node("Cast", ["acc"], ["acc_f"], to=TensorProto.FLOAT),
+            helper.make_node("Mul", ["acc_f", "feature_scales"], ["unscaled"]),
+            helper.make_node("Mul", ["unscaled", "scales"], ["logits"]),
+        ]
+    elif precision == "fp16":
+        inputs.append(helper.make_tensor_value_info("features", TensorProto.FLOAT, ["batch", dim]))
+        inputs.append(helper.make_tensor_value_info("codes", TensorProto.FLOAT16, [dim, "n_items"]))
+        nodes += [
+            helper.make_node("Cast", ["features"], ["f16"], to=TensorProto.FLOAT16),
+            helper.make_node("MatMul", ["f16", "codes"], ["logits16"]),
+            helper.make_node("Cast", ["logits16"], ["logits"], to=TensorProto.FLOAT),
+        ]
+    else:
+        raise ArtifactError(f"no candidate graph for precision {precision!r}")
+    inputs += [
+        helper.make_tensor_value_info("bias", TensorProto.FLOAT, ["n_items"]),
+        helper.make_tensor_value_info("k", TensorProto.INT64, [1]),
+    ]
+    nodes += [
+        helper.make_node("Add", ["logits", "bias"], ["approx_all"]),
+        helper.make_node("TopK", ["approx_all", "k"], ["approx", "candidates"], axis=-1, largest=1, sorted=1),
+    ]
+    graph = helper.make_graph(
+        nodes,
+        f"cairn_candidates_{precision}",
+        inputs=inputs,
+        outputs=[
+            helper.make_tensor_value_info("candidates", TensorProto.INT64, ["batch", "k"]),
+            helper.make_tensor_value_info("approx", TensorProto.FLOAT, ["batch", "k"]),
+        ],
+        initializer=inits,
+    )
+    return _finish(graph, f"{CANDIDATE_GRAPH_FORMAT}-{precision}").SerializeToString()
+
+
+def quantise_int8(vectors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """float32 [n, D] -> int8 codes [D, n] (transposed for the MatMul), float32 scales [n].
+
+    Symmetric per item (common practice) on 7 bits (see build_candidate_graph for why):
+    scale_j = max_d |v_jd| / INT8_LEVELS, code = round(v / scale_j) in -63..63,
+    so |v_jd - scale_j code_jd| <= scale_j / 2. An all-zero vector gets scale 1 and codes 0.
+    Done in slices of items so a million-item table needs no full-size float temporaries.
+    """
+    n = vectors.shape[0]
+    codes = np.empty((vectors.shape[1], n), dtype=np.int8)
+    scales = np.empty(n, dtype=np.float32)
+    step = 65_536
+    for lo in range(0, n, step):
+        v = vectors[lo : lo + step]
+        s = np.abs(v).max(axis=1) / INT8_LEVELS
+        s[s == 0] = 1.0
+        scales[lo : lo + step] = s
+        codes[:, lo : lo + step] = np.clip(np.rint(v / s[:, None]), -INT8_LEVELS, INT8_LEVELS).astype(np.int8).T
+    return codes, scales
+
+
+def item_vector_files(w: _StepWeights) -> dict[str, Any]:
+    """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py)."""
+    codes, scales = quantise_int8(w.output)
+    dim = w.output.shape[1]
+    return {
+        FEATURE_GRAPH: build_feature_graph(w),
+        EMBEDDING: w.embedding,
+        ITEM_VECTORS: w.output,
+        ITEM_BIAS: w.output_bias,
+        ITEM_VECTORS_FP16: np.ascontiguousarray(w.output.T.astype(np.float16)),
+        ITEM_VECTORS_INT8: codes,
+        ITEM_SCALES: scales,
+        CANDIDATES_FP16: build_candidate_graph("fp16", dim),
+        CANDIDATES_INT8: build_candidate_graph("int8", dim),
+    }
 
 
 def _model_fields(c: GRUConfig) -> dict[str, Any]:
@@ -233,11 +395,13 @@ def export_artifact(
     popularity = np.bincount(prepared.train.items, minlength=prepared.n_items).astype(np.float32)  # [n_items]
 
     hyperparameters = extra.get("hyperparameters", {})
+    weights = _weights_of(model)
     return write_artifact(
         store,
         name,
         version,
-        step_graph=build_step_graph(model),
+        step_graph=_graph_from_weights(weights).SerializeToString(),
+        extra_files=item_vector_files(weights),
         item_ids=prepared.item_ids,
         neighbour_items=neighbour_items,
         neighbour_scores=neighbour_scores,
@@ -248,6 +412,7 @@ def export_artifact(
             "hyperparameters": _jsonable(hyperparameters, "the checkpoint's hyperparameters"),
             "metrics": _jsonable(metrics or {}, "the metrics"),
             "neighbour_table": {"kind": "item-knn", "neighbours": neighbours, "regulariser": regulariser},
+            "item_vectors": item_vectors_manifest(),
         },
         overwrite=overwrite,
     )
@@ -296,11 +461,13 @@ def write_random_artifact(
     table_items[:, :k], table_scores[:, :k] = items, scores
     popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
 
+    weights = _weights_of(model)
     return write_artifact(
         store,
         name,
         version,
-        step_graph=build_step_graph(model),
+        step_graph=_graph_from_weights(weights).SerializeToString(),
+        extra_files=item_vector_files(weights),
         item_ids=item_ids if item_ids is not None else [f"sku-{i:06d}" for i in range(n_items)],
         neighbour_items=table_items,
         neighbour_scores=table_scores,
@@ -311,6 +478,7 @@ def write_random_artifact(
             "hyperparameters": {"random_seed": seed},
             "metrics": {},
             "neighbour_table": {"kind": "random", "neighbours": neighbours},
+            "item_vectors": item_vectors_manifest(),
         },
         overwrite=overwrite,
     )

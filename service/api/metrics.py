@@ -194,6 +194,9 @@ class ServiceMetrics:
         self.gru_batched_clicks: Gauge = add(
             Gauge("cairn_gru_batched_clicks", "Clicks scored by those calls; divided by cairn_gru_batches, the mean batch size.")
         )
+        self.gru_scoring: Counter = add(
+            Counter("cairn_gru_scoring_total", "GRU answers by scoring path: exact (every item, float32), fp16 or int8 (approximate candidates re-scored exactly).", ("scoring",))
+        )
         self.state_cache: Gauge = add(
             Gauge("cairn_state_cache_lookups", "Clicks whose session state was found in this worker's recent writes (hit) or read from the store (miss).", ("result",))
         )

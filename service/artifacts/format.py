@@ -114,8 +114,10 @@ def write_artifact(
     popularity: np.ndarray,
     manifest_fields: dict[str, Any],
     overwrite: bool = False,
+    extra_files: dict[str, bytes | np.ndarray] | None = None,
 ) -> Path:
-    """Write one artifact atomically; returns its folder."""
+    """Write one artifact atomically; returns its folder. `extra_files`: optional files (bytes as
+    they are, arrays as .npy), covered by the manifest's checksums like the required ones."""
     _check_name(name, "name")
     _check_name(version, "version")
     reserved = sorted(set(manifest_fields) & _WRITER_FIELDS)
@@ -133,13 +135,15 @@ def write_artifact(
         (tmp / ITEM_IDS).write_text(json.dumps([str(i) for i in item_ids]), encoding="utf-8")
         np.savez(tmp / NEIGHBOURS, items=neighbour_items.astype(np.int32), scores=neighbour_scores.astype(np.float32))
         np.save(tmp / POPULARITY, popularity.astype(np.float32))
+        for fname, content in (extra_files or {}).items():
+            _write_extra(tmp / fname, content)
         manifest = {
             "format": FORMAT,
             "name": name,
             "version": version,
             "created_at": datetime.now(timezone.utc).isoformat(timespec="milliseconds"),
             **manifest_fields,
-            "files": {f: sha256_file(tmp / f) for f in REQUIRED_FILES},
+            "files": {f: sha256_file(tmp / f) for f in (*REQUIRED_FILES, *(extra_files or {}))},
             "manifest_sha256": _UNSET_DIGEST,
         }
         (tmp / MANIFEST).write_bytes(_sealed_manifest(manifest))
@@ -152,6 +156,15 @@ def write_artifact(
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return target
+
+
+def _write_extra(path: Path, content: bytes | np.ndarray) -> None:
+    if path.name in (*REQUIRED_FILES, MANIFEST) or path.name != Path(path.name).name:
+        raise ArtifactError(f"optional artifact file {path.name!r} would overwrite a required one")
+    if isinstance(content, bytes):
+        path.write_bytes(content)
+    else:
+        np.save(path, np.ascontiguousarray(content))
 
 
 def verify_artifact(path: Path) -> dict[str, Any]:
