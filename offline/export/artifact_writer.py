@@ -9,7 +9,12 @@ advances every session of the batch by one click and ranks all items:
     GRU_l(x_l, h_l) -> h_l' [1, B, H]; x_{l+1} = h_l' (a sequence of one step)
     next_hidden = Concat(h_l') [L, B, H]
     f = Squeeze(h_L') [B, H] --(Gemm, Tanh)*--> [B, D]
-    scores = MatMul(f, O^T [D, n_items]) + b [B, n_items] --TopK(top_n)--> top_items, top_scores
+    scores = Gemm(f, O [n_items, D], b, transB) [B, n_items] --TopK(top_n)--> top_items, top_scores
+
+In an artifact, the two big tables (E and O) are not inside the protobuf: the graph refers to the
+raw data of `embedding.npy` and `item_vectors.npy` (ONNX external data: file, offset past the .npy
+header, length), so the export never builds or serialises a graph of hundreds of MB, and the
+tables exist once on disk for both the exact graph and the reduced-precision path.
 
 PyTorch's GRU and the ONNX GRU operator compute the same cell when the ONNX node has
 `linear_before_reset=1` (the reset gate multiplies (R_h h + Rb_h), as in torch.nn.GRU's
@@ -19,6 +24,7 @@ torch stacks (r, z, n), ONNX stacks (z, r, h) (ONNX Operators.md, GRU; torch.nn.
 
 from __future__ import annotations
 
+import io
 import json
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -77,13 +83,38 @@ class _StepWeights:
 
 
 def build_step_graph(model: NextClickGRU) -> bytes:
-    """The serialized ONNX step graph of `model` (see the module docstring and service/artifacts.py)."""
+    """The serialized ONNX step graph of `model`, self-contained (see the module docstring)."""
     return _graph_from_weights(_weights_of(model)).SerializeToString()
+
+
+def npy_data_offset(array: np.ndarray) -> int:
+    """Where the raw data starts in the .npy file `np.save` writes for `array` (its header length:
+    format 1.0, padded to a multiple of 64 bytes; the header records dtype, order and shape only)."""
+    info = np.lib.format.header_data_from_array_1_0(np.ascontiguousarray(array[:0]))
+    info["shape"] = array.shape
+    buf = io.BytesIO()
+    np.lib.format.write_array_header_1_0(buf, info)
+    return buf.tell()
+
+
+def _external(name: str, array: np.ndarray, location: str) -> onnx.TensorProto:
+    """An initialiser whose data is the raw data of the .npy file `location` beside the graph."""
+    t = onnx.TensorProto()
+    t.name = name
+    t.data_type = TensorProto.FLOAT
+    t.dims.extend(array.shape)
+    t.data_location = TensorProto.EXTERNAL
+    for key, value in (("location", location), ("offset", str(npy_data_offset(array))), ("length", str(array.nbytes))):
+        entry = t.external_data.add()
+        entry.key, entry.value = key, value
+    return t
 
 
 def _weights_of(model: NextClickGRU) -> _StepWeights:
     def arr(t: Any) -> np.ndarray:
-        return t.detach().cpu().numpy().astype(np.float32, copy=True)
+        # No copy when the tensor is float32 already (the export only reads it): a million-item
+        # model's two tables are 800 MB.
+        return np.ascontiguousarray(t.detach().cpu().numpy(), dtype=np.float32)
 
     c = model.config
     gru = [
@@ -163,10 +194,12 @@ def _initialiser_list() -> tuple[list[onnx.TensorProto], Any]:
     return inits, const
 
 
-def _finish(graph: onnx.GraphProto, kind: str) -> onnx.ModelProto:
+def _finish(graph: onnx.GraphProto, kind: str, check: bool = True) -> onnx.ModelProto:
     model = helper.make_model(graph, producer_name="cairn", opset_imports=[helper.make_opsetid("", OPSET)])
     model.ir_version = IR_VERSION
     helper.set_model_props(model, {"cairn.graph": kind})
+    if not check:
+        return model
     try:
         onnx.checker.check_model(model, full_check=True)
     except (onnx.checker.ValidationError, onnx.shape_inference.InferenceError) as exc:
@@ -174,18 +207,29 @@ def _finish(graph: onnx.GraphProto, kind: str) -> onnx.ModelProto:
     return model
 
 
-def _graph_from_weights(w: _StepWeights) -> onnx.ModelProto:
+def _graph_from_weights(w: _StepWeights, external: bool = False) -> onnx.ModelProto:
+    """The step graph; `external`: its embedding and output tables refer to the artifact's
+    EMBEDDING and ITEM_VECTORS files instead of being inside it."""
     n_items, hidden, n_layers = w.n_items, w.hidden_size, len(w.gru)
     inits, const = _initialiser_list()
     nodes: list[onnx.NodeProto] = []
     axis0 = const("axis0", np.array([0], dtype=np.int64))
-    nodes.append(helper.make_node("Gather", [const("embedding", w.embedding), "items"], ["x"], axis=0))  # [B, E]
+    big = {"embedding": (w.embedding, EMBEDDING), "output": (w.output, ITEM_VECTORS)}
+    if external:
+        # Checked first with the two tables as graph inputs of the same type and shape: the checker
+        # would otherwise want the files, which do not exist yet.
+        _check_structure(w)
+        inits.extend(_external(name, a, location) for name, (a, location) in big.items())
+    else:
+        for name, (a, _) in big.items():
+            const(name, a)
+    nodes.append(helper.make_node("Gather", ["embedding", "items"], ["x"], axis=0))  # [B, E]
     nodes.append(helper.make_node("Unsqueeze", ["x", axis0], ["x_seq0"]))  # [1, B, E]
     f = _recurrent_part(w, const, nodes, "x_seq0")
 
-    # O^T is stored [D, n_items] so the MatMul streams it row by row; it is the one big read per call.
-    nodes.append(helper.make_node("MatMul", [f, const("output_t", w.output.T)], ["logits"]))  # [B, n_items]
-    nodes.append(helper.make_node("Add", ["logits", const("output_bias", w.output_bias)], ["scores"]))  # [B, n_items]
+    # O [n_items, D], the layout of item_vectors.npy; ONNX Runtime packs it for its kernel at load.
+    # It is the one big read per call.
+    nodes.append(helper.make_node("Gemm", [f, "output", const("output_bias", w.output_bias)], ["scores"], transB=1))  # [B, n_items]
     nodes.append(helper.make_node("TopK", ["scores", "top_n"], ["top_scores", "top_items"], axis=-1, largest=1, sorted=1))
 
     graph = helper.make_graph(
@@ -204,7 +248,13 @@ def _graph_from_weights(w: _StepWeights) -> onnx.ModelProto:
         ],
         initializer=inits,
     )
-    return _finish(graph, GRAPH_FORMAT)
+    return _finish(graph, GRAPH_FORMAT, check=not external)
+
+
+def _check_structure(w: _StepWeights) -> None:
+    """The ONNX checker over the step graph with its big tables as inputs (see _graph_from_weights)."""
+    small = _graph_from_weights(_StepWeights(w.embedding[:0], w.gru, w.ff, w.output[:0], w.output_bias[:0]))
+    del small  # built and checked: a graph of 0 items has every node, type and attribute of the real one
 
 
 def build_feature_graph(w: _StepWeights) -> bytes:
@@ -400,7 +450,7 @@ def export_artifact(
         store,
         name,
         version,
-        step_graph=_graph_from_weights(weights).SerializeToString(),
+        step_graph=_graph_from_weights(weights, external=True).SerializeToString(),
         extra_files=item_vector_files(weights),
         item_ids=prepared.item_ids,
         neighbour_items=neighbour_items,
@@ -466,7 +516,7 @@ def write_random_artifact(
         store,
         name,
         version,
-        step_graph=_graph_from_weights(weights).SerializeToString(),
+        step_graph=_graph_from_weights(weights, external=True).SerializeToString(),
         extra_files=item_vector_files(weights),
         item_ids=item_ids if item_ids is not None else [f"sku-{i:06d}" for i in range(n_items)],
         neighbour_items=table_items,

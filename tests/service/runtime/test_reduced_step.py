@@ -13,6 +13,7 @@ import asyncio
 from pathlib import Path
 
 import numpy as np
+import onnx
 import pytest
 
 from offline.export.artifact_writer import write_random_artifact
@@ -108,10 +109,12 @@ def test_scoring_setting_picks_the_path_and_falls_back_to_exact(artifact: Path, 
     for scoring in ("exact", "fp16", "int8"):
         model = load_model(artifact, 1, 8, scoring)
         assert model.scoring == scoring and model.gru.scoring == scoring
-    # An artifact written without item vectors (an older export): every setting serves exactly.
+    # An artifact written without item vectors (an older export, its tables inside the graph):
+    # every setting serves exactly.
     a = load_artifact(artifact)
+    self_contained = onnx.load(str(a.step_graph)).SerializeToString()  # onnx.load reads the external tables in
     plain = write_artifact(
-        tmp_path, "old", "v1", step_graph=a.step_graph.read_bytes(), item_ids=a.item_ids, neighbour_items=a.neighbour_items,
+        tmp_path, "old", "v1", step_graph=self_contained, item_ids=a.item_ids, neighbour_items=a.neighbour_items,
         neighbour_scores=a.neighbour_scores, popularity=a.popularity, manifest_fields={"model": a.manifest["model"]},
     )
     assert not set(ITEM_VECTOR_FILES) & {p.name for p in plain.iterdir()}
@@ -153,3 +156,26 @@ def test_int8_candidate_scores_are_exact_integer_products(artifact: Path) -> Non
     cand, approx = open_session(t.candidate_graphs["int8"]).run(None, feed)
     want = (f_codes.astype(np.int64) - 128) @ np.asarray(t.codes["int8"], dtype=np.int64)  # [2, n]
     np.testing.assert_array_equal(approx, np.take_along_axis(want, cand, 1).astype(np.float32))
+
+
+def test_exported_step_graph_keeps_the_tables_outside(artifact: Path) -> None:
+    # The exact graph refers to embedding.npy and item_vectors.npy (ONNX external data) and runs
+    # like a graph holding its tables itself (onnx.load reads the external data in).
+    a = load_artifact(artifact)
+    assert a.step_graph.stat().st_size < 100_000 < (artifact / "item_vectors.npy").stat().st_size
+    proto = onnx.load(str(a.step_graph), load_external_data=False)
+    external = {t.name: {e.key: e.value for e in t.external_data} for t in proto.graph.initializer if t.external_data}
+    assert {k: v["location"] for k, v in external.items()} == {"embedding": "embedding.npy", "output": "item_vectors.npy"}
+    inline = open_session_bytes(onnx.load(str(a.step_graph)).SerializeToString())
+    outside = OnnxStep(a.step_graph)
+    items, hidden = visit_states(outside, 4, seed=5)
+    want = inline.run(None, {"items": items, "hidden": hidden, "top_n": np.array([TOP], dtype=np.int64)})
+    got = outside.run(items, hidden, TOP)
+    for w, g in zip(want[:3], got):
+        np.testing.assert_array_equal(w, g)
+
+
+def open_session_bytes(graph: bytes):
+    import onnxruntime as ort
+
+    return ort.InferenceSession(graph, providers=["CPUExecutionProvider"])
