@@ -378,7 +378,7 @@ def item_vector_files(w: _StepWeights) -> dict[str, Any]:
         EMBEDDING: w.embedding,
         ITEM_VECTORS: w.output,
         ITEM_BIAS: w.output_bias,
-        ITEM_VECTORS_FP16: np.ascontiguousarray(w.output.T.astype(np.float16)),
+        ITEM_VECTORS_FP16: np.ascontiguousarray(w.output.astype(np.float16).T),  # convert, then transpose half the bytes
         ITEM_VECTORS_INT8: codes,
         ITEM_SCALES: scales,
         CANDIDATES_FP16: build_candidate_graph("fp16", dim),
