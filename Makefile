@@ -72,6 +72,7 @@ bench: $(STAMP)
 	$(BIN)/python -m bench.service --out reports/bench/service.json
 	$(BIN)/python -m bench.side_by_side --out reports/bench/side_by_side.json
 	$(BIN)/python -m bench.resilience --out reports/bench/resilience.json
+	$(BIN)/python -m bench.catalogue --out reports/bench/catalogue.json
 	$(MAKE) demo SERVE=0
 	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
 
