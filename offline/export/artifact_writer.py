@@ -61,6 +61,7 @@ from offline.model.gru import GRUConfig, NextClickGRU, load_checkpoint
 OPSET = 17
 IR_VERSION = 8
 GRAPH_FORMAT = "cairn-gru-step/1"  # stored in the graph's metadata
+_TABLE_SLICE = 65_536  # rows of a random neighbour table made at a time
 
 
 @dataclass
@@ -501,14 +502,17 @@ def write_random_artifact(
     rng = np.random.default_rng(seed)
     k = min(neighbours, n_items - 1)
     # Distinct neighbours other than the item itself: one random offset in each of k equal strides.
+    # Made in slices of rows in int32, so a million items need no 160 MB int64/float64 temporaries.
     stride = (n_items - 1) // k
-    offsets = 1 + np.arange(k) * stride + rng.integers(0, stride, size=(n_items, k))  # [n_items, k], in [1, n_items - 1]
-    items = (np.arange(n_items)[:, None] + offsets) % n_items
-    items = np.take_along_axis(items, np.argsort(rng.random((n_items, k)), axis=1), axis=1)  # shuffle within rows
-    scores = -np.sort(-rng.random((n_items, k)), axis=1)  # descending, like a real table
     table_items = np.full((n_items, neighbours), -1, dtype=np.int32)
     table_scores = np.zeros((n_items, neighbours), dtype=np.float32)
-    table_items[:, :k], table_scores[:, :k] = items, scores
+    for lo in range(0, n_items, _TABLE_SLICE):
+        rows = np.arange(lo, min(n_items, lo + _TABLE_SLICE), dtype=np.int64)
+        offsets = 1 + np.arange(k) * stride + rng.integers(0, stride, size=(len(rows), k))  # [rows, k], in [1, n_items - 1]
+        items = ((rows[:, None] + offsets) % n_items).astype(np.int32)
+        table_items[rows[0] : rows[-1] + 1, :k] = rng.permuted(items, axis=1)  # shuffle within rows
+        scores = rng.random((len(rows), k), dtype=np.float32)
+        table_scores[rows[0] : rows[-1] + 1, :k] = -np.sort(-scores, axis=1)  # descending, like a real table
     popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
 
     weights = _weights_of(model)
