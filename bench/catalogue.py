@@ -89,7 +89,9 @@ def agreement(path: Path, precisions: list[str], states: int = 256, batch: int =
 
 
 def memory_of(pid: int) -> dict[str, float]:
-    """RSS of a process split into private and shared pages, MB (Linux smaps_rollup)."""
+    """RSS of a process, MB (Linux smaps_rollup): private and shared pages, and of the RSS the
+    anonymous memory (heap, ONNX Runtime's packed weights). A file page mapped by this process
+    alone counts as private until a second process maps it; anonymous memory is never shared."""
     fields: dict[str, int] = {}
     for line in Path(f"/proc/{pid}/smaps_rollup").read_text().splitlines()[1:]:
         name, _, rest = line.partition(":")
@@ -98,7 +100,8 @@ def memory_of(pid: int) -> dict[str, float]:
             fields[name] = int(parts[0])
     private = fields.get("Private_Clean", 0) + fields.get("Private_Dirty", 0)
     shared = fields.get("Shared_Clean", 0) + fields.get("Shared_Dirty", 0)
-    return {"rss_mb": round(fields.get("Rss", 0) / 1024, 1), "private_mb": round(private / 1024, 1), "shared_mb": round(shared / 1024, 1)}
+    mb = lambda kb: round(kb / 1024, 1)  # noqa: E731
+    return {"rss_mb": mb(fields.get("Rss", 0)), "private_mb": mb(private), "shared_mb": mb(shared), "anonymous_mb": mb(fields.get("Anonymous", 0))}
 
 
 async def paced(port: int, items: list[str], clicks: int) -> dict:
@@ -187,7 +190,8 @@ def main(argv: list[str] | None = None) -> int:
                 print(
                     f"  {scoring:5s} 50/s p50 {r['paced_50_per_s']['p50_ms']} p99 {r['paced_50_per_s']['p99_ms']} ms | "
                     f"8 visits {r['concurrency_8']['clicks_per_s']} clicks/s p50 {r['concurrency_8']['p50_ms']} p99 {r['concurrency_8']['p99_ms']} ms | "
-                    f"agreement {r['top20_agreement']} | RSS {r['memory']['rss_mb']} MB ({r['memory']['private_mb']} private) | {r['answers']}",
+                    f"agreement {r['top20_agreement']} | RSS {r['memory']['rss_mb']} MB ({r['memory']['private_mb']} private, "
+                    f"{r['memory'].get('anonymous_mb')} anonymous) | {r['answers']}",
                     flush=True,
                 )
             report["sizes"][str(n)] = {"export": made, "paths": paths}
