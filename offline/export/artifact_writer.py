@@ -88,6 +88,11 @@ def build_step_graph(model: NextClickGRU) -> bytes:
     return _graph_from_weights(_weights_of(model)).SerializeToString()
 
 
+def artifact_step_graph(model: NextClickGRU) -> bytes:
+    """The step graph as an artifact holds it: its two item tables refer to EMBEDDING and ITEM_VECTORS."""
+    return _graph_from_weights(_weights_of(model), external=True).SerializeToString()
+
+
 def npy_data_offset(array: np.ndarray) -> int:
     """Where the raw data starts in the .npy file `np.save` writes for `array` (its header length:
     format 1.0, padded to a multiple of 64 bytes; the header records dtype, order and shape only)."""
