@@ -64,6 +64,9 @@ def test_int8_scores_stay_within_the_quantisation_bound(artifact: Path) -> None:
     err = np.abs(approx - np.take_along_axis(exact, cand, 1))
     assert np.all(err <= bound), float((err - bound).max())
     assert err.max() > 0  # it is an approximation: a bound that is never approached would test nothing
+    # Read-only memory maps of the artifact's files, not copies: workers share the pages.
+    for table in (t.embedding, t.vectors, t.codes["int8"], t.codes["fp16"]):
+        assert isinstance(table, np.memmap) and not table.flags.writeable
     # The stored codes reproduce the vectors within half a step per coordinate.
     recon = np.asarray(t.codes["int8"], dtype=np.float32).T * t.scales[:, None]
     assert np.all(np.abs(recon - t.vectors) <= t.scales[:, None] / 2 + 1e-7)
