@@ -91,7 +91,7 @@ class LoadedModel:
             raise ArtifactError(f"{artifact.path}: step graph scores {step.n_items} items, the id map has {artifact.n_items}")
         self.artifact = artifact
         self.tag = f"{artifact.name}/{artifact.version}"
-        self.scoring = step.scoring  # exact | fp16 | int8: which path scores the GRU's answers
+        self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8: which path scores the GRU's answers
         self.item_index = artifact.item_index
         self.item_ids = artifact.item_ids  # index -> id
         self.popularity = PopularityRecommender(artifact.popularity)
