@@ -99,6 +99,7 @@ bench: $(STAMP)
 	$(BIN)/python -m bench.metrics_overhead --out reports/bench/metrics_overhead.json
 	$(BIN)/python -m bench.session_knn --out reports/bench/session_knn.json
 	$(BIN)/python -m bench.events --out reports/bench/events.json
+	$(BIN)/python -m bench.catalogue --out reports/bench/catalogue.json
 	$(MAKE) demo SERVE=0
 	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
 

@@ -107,13 +107,18 @@ def _same_weights_checkpoint(artifact: Path, hidden: int, seed: int, out: Path) 
     """The artifact's weights as a PyTorch checkpoint, rebuilt from the seed as write_random_artifact does."""
     import torch
 
-    from offline.export.artifact_writer import build_step_graph
+    from offline.export.artifact_writer import artifact_step_graph
     from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint
+    from service.artifacts.item_vectors import EMBEDDING, ITEM_VECTORS
 
     torch.manual_seed(seed)
     model = NextClickGRU(GRUConfig(n_items=len(load_artifact(artifact).item_ids), embedding_size=hidden, hidden_size=hidden)).eval()
-    # Byte-equal graphs hold equal weights: the torch variants then run exactly the served model.
-    if build_step_graph(model) != (artifact / STEP_GRAPH).read_bytes():
+    # Byte-equal graphs and equal item tables (the graph refers to them) hold equal weights: the
+    # torch variants then run exactly the served model.
+    same_tables = np.array_equal(np.load(artifact / EMBEDDING), model.embedding.weight.detach().numpy()) and np.array_equal(
+        np.load(artifact / ITEM_VECTORS), model.output_weight.detach().numpy()
+    )
+    if artifact_step_graph(model) != (artifact / STEP_GRAPH).read_bytes() or not same_tables:
         raise BenchError(f"the rebuilt PyTorch model does not match {artifact / STEP_GRAPH}; write_random_artifact changed")
     save_checkpoint(out, model)
 

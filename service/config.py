@@ -113,6 +113,10 @@ class Settings(BaseSettings):
     # Model runtime.
     ort_threads: int = Field(1, ge=1, le=64)  # ONNX Runtime intra-op threads of the one step session
     max_batch: int = Field(64, ge=1, le=1024)  # most clicks the GRU runner scores in one call
+    # How the GRU scores the items: exact (every item in float32, the step graph), fp16 or int8
+    # (approximate candidates from reduced-precision vectors, re-scored exactly; needs an artifact
+    # with item vectors), auto (int8 from AUTO_REDUCED_FROM items on, else exact).
+    scoring: Literal["auto", "exact", "fp16", "int8"] = "auto"
     model_poll_s: float = Field(0.5, ge=0.05, le=10.0)  # how often workers read the shared active-model choice
 
     # Redis.

@@ -228,6 +228,20 @@ def top1_max(scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
     return _TOP1Max.apply(scores, negatives)
 
 
+def logq_corrected(scores: torch.Tensor, log_q: torch.Tensor) -> torch.Tensor:
+    """scores float [B, C], log_q float [C] -> scores - log_q, column by column (log-Q correction).
+
+    Sampled candidates are not drawn uniformly: a popular item is drawn often, so it appears among
+    the negatives far more than its share, and the loss pushes it down far more than a full softmax
+    would. Yi et al. (RecSys 2019, "Sampling-bias-corrected neural modeling for large corpus item
+    recommendations", eq. 3) correct each candidate's score by its sampling probability p_j,
+    s^c(x, y_j) = s(x, y_j) - log(p_j), for every candidate including the positive, before the
+    loss. The correction is a constant per column, so the gradient with respect to the scores is
+    unchanged: only the point where each loss is evaluated moves.
+    """
+    return scores - log_q.unsqueeze(0)
+
+
 def get_loss(name: str, score_penalty: float = 1.0) -> LossFn:
     """The loss named `name` (one of LOSS_NAMES); `score_penalty` is BPR-max's score regularisation lambda."""
     if name == "bpr-max":

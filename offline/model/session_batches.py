@@ -93,6 +93,25 @@ def sampling_weights(counts: np.ndarray, alpha: float) -> np.ndarray:
     return np.asarray(counts, dtype=np.float64) ** alpha
 
 
+def candidate_log_q(counts: np.ndarray, weights: np.ndarray, batch_size: int, n_negatives: int) -> torch.Tensor:
+    """float32 [n_items]: log of how often each item appears among one step's B + M candidates.
+
+    The log-Q correction (losses.logq_corrected) needs p_j, the probability that item j is among a
+    batch's candidates (Yi et al., RecSys 2019, section 4: "the probability of item j in a batch").
+    A step's candidates come from two draws: its B targets, which follow the training clicks
+    (counts / total), and M negatives drawn by `weights`. The expected number of copies of j is
+    B c_j / sum(c) + M w_j / sum(w); every column holding item j gets the same correction, as in
+    the paper, whichever of the two draws put it there. Items that can never be a candidate get a
+    floor instead of log 0 (they never reach the loss).
+    """
+    counts = np.asarray(counts, dtype=np.float64)
+    weights = np.asarray(weights, dtype=np.float64)
+    expected = batch_size * counts / max(counts.sum(), 1.0)
+    if n_negatives > 0 and weights.sum() > 0:
+        expected = expected + n_negatives * weights / weights.sum()
+    return torch.from_numpy(np.log(np.maximum(expected, 1e-30)).astype(np.float32))
+
+
 class NegativeSampler:
     """Draws `n_negatives` item indices per step, shared by all rows of the step, in bulk."""
 

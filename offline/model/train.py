@@ -31,12 +31,12 @@ import torch
 from tqdm import tqdm
 
 from service.errors import InputDataError, TrainingError
-from offline.model.session_batches import EveryItem, NegativeSampler, SessionParallelBatches, Step, sampling_weights
+from offline.model.session_batches import EveryItem, NegativeSampler, SessionParallelBatches, Step, candidate_log_q, sampling_weights
 from offline.data.dataset import PreparedData, SessionSplit
 from offline.evaluate.next_clicks import iterate_events, target_ranks
 from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint
 from offline.evaluate.gru_scorer import TorchGRUScorer
-from offline.model.losses import LOSS_NAMES, LossFn, get_loss, negative_mask
+from offline.model.losses import LOSS_NAMES, LossFn, get_loss, logq_corrected, negative_mask
 from offline.model.progress import LineProgress, epoch_progress
 
 OPTIMIZERS = ("adagrad", "adam")
@@ -68,6 +68,9 @@ class TrainSettings:
     batch_size: int = 256  # sessions side by side
     patience: int = 3  # stop after this many epochs without a better validation MRR@20; 0 never stops early
     seed: int = 0  # seeds the weights, dropout and negative sampling
+    # Subtract log(how often an item is a candidate) from its score before the loss (Yi et al.,
+    # RecSys 2019); only sampled negatives need it: with ALL_ITEMS there is no sampling bias.
+    logq_correction: bool = False
 
     def validate(self) -> None:
         if self.loss not in LOSS_NAMES:
@@ -143,8 +146,11 @@ def train_epoch(
     batch_size: int,
     max_steps: int | None = None,
     progress: tqdm | LineProgress | None = None,
+    log_q: torch.Tensor | None = None,
 ) -> EpochStats:
-    """One pass over `steps` (or its first `max_steps`); the model is left in train mode."""
+    """One pass over `steps` (or its first `max_steps`); the model is left in train mode.
+
+    `log_q` float32 [n_items] (candidate_log_q): the log-Q correction of each candidate's score."""
     model.train()
     b, m = batch_size, sampler.n_negatives
     hidden = model.init_hidden(b)  # [L, B, H]
@@ -161,6 +167,8 @@ def train_epoch(
         candidates[b:] = sampler.draw()
         features, hidden = model.step(inputs, hidden)  # [B, D], [L, B, H]
         scores = model.score_candidates(features, candidates)  # [B, B + M]
+        if log_q is not None:
+            scores = logq_corrected(scores, log_q[candidates])
         loss = loss_fn(scores, negative_mask(targets, candidates, in_batch=sampler.in_batch))
         for opt in optimizers:
             opt.zero_grad(set_to_none=True)
@@ -208,6 +216,15 @@ def make_sampler(data: PreparedData, settings: TrainSettings) -> NegativeSampler
         return EveryItem(data.n_items)
     counts = np.bincount(data.train.items, minlength=data.n_items)  # [n_items] training clicks
     return NegativeSampler(sampling_weights(counts, settings.negative_skew), int(negatives), seed=settings.seed)
+
+
+def make_log_q(data: PreparedData, settings: TrainSettings, sampler: NegativeSampler | EveryItem) -> torch.Tensor | None:
+    """The log-Q correction per item when `settings.logq_correction` asks for it and negatives are sampled."""
+    if not settings.logq_correction or isinstance(sampler, EveryItem):
+        return None
+    counts = np.bincount(data.train.items, minlength=data.n_items)  # [n_items] training clicks
+    weights = sampling_weights(counts, settings.negative_skew)
+    return candidate_log_q(counts, weights, settings.batch_size, sampler.n_negatives)
 
 
 def check_data(data: PreparedData, batch_size: int) -> None:
@@ -283,6 +300,9 @@ def train(
     loss_fn = get_loss(settings.loss, settings.score_penalty)
     batches = SessionParallelBatches(data.train, settings.batch_size)
     sampler = make_sampler(data, settings)
+    log_q = make_log_q(data, settings, sampler)
+    if settings.logq_correction and log_q is None:
+        log("--logq-correction: every item is a negative (no sampling), so there is nothing to correct")
     fingerprint = data.fingerprint()
 
     result = TrainResult(best_epoch=0, best_metrics={})
@@ -290,7 +310,7 @@ def train(
     for epoch in range(1, settings.epochs + 1):
         epoch_started = time.perf_counter()
         with epoch_progress(batches.n_events, f"epoch {epoch}", progress) as bar:
-            stats = train_epoch(model, batches, sampler, loss_fn, optimizers, settings.batch_size, progress=bar)
+            stats = train_epoch(model, batches, sampler, loss_fn, optimizers, settings.batch_size, progress=bar, log_q=log_q)
         if not math.isfinite(stats.loss):
             raise TrainingError(f"training loss became {stats.loss} in epoch {epoch}; try a smaller --lr")
         metrics = validate(model, data.valid)

@@ -86,6 +86,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                    help=f"negatives drawn by popularity**A: 0 uniform, 1 popularity (default {d.negative_skew})")
     g.add_argument("--score_penalty", type=_nonnegative_float, default=d.score_penalty, metavar="L",
                    help=f"BPR-max score regularisation (default {d.score_penalty})")
+    g.add_argument("--logq-correction", action="store_true",
+                   help="subtract log(sampling probability) from sampled candidates' scores before the loss "
+                        "(Yi et al., RecSys 2019); no effect with --negatives all")
     g.add_argument("--optimizer", choices=OPTIMIZERS, default=d.optimizer, help=f"(default {d.optimizer})")
     g.add_argument("--lr", type=_positive_float, default=None,
                    help=f"learning rate (default {DEFAULT_LR['adagrad']} with adagrad, {DEFAULT_LR['adam']} with adam)")
@@ -135,6 +138,7 @@ def run(args: argparse.Namespace) -> int:
         negatives=resolve_negatives(args.negatives, data.n_items),
         negative_skew=args.negative_skew,
         score_penalty=args.score_penalty,
+        logq_correction=args.logq_correction,
         optimizer=args.optimizer,
         lr=lr,
         epochs=args.epochs,

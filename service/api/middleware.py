@@ -5,7 +5,8 @@
 - adds `Server-Timing` to every response (W3C Server Timing, https://www.w3.org/TR/server-timing/:
   `name;dur=milliseconds`, entries separated by commas): store calls, the model as the request saw
   it, of that the ONNX Runtime call that scored the click (`step`), and the total;
-- records the request's metrics once, after it is answered;
+- records the request's metrics once, after it is answered (among them which scoring path the
+  GRU took: `cairn_gru_scoring_total{scoring="int8"}`);
 - is the last resort: an exception from inside becomes a plain 500 without internals, and the log
   gets its type and stack, never its message (which could quote session contents).
 """
@@ -155,6 +156,8 @@ class EdgeMiddleware:
             m.answer_duration.observe((served_by,), total)
             if timing.model_s > 0:
                 m.model_duration.observe((served_by,), timing.model_s)
+            if timing.scoring:
+                m.gru_scoring.inc((timing.scoring,))
             reason = state.get("fallback_reason")
             if reason is not None:
                 m.fallbacks.inc((reason,))

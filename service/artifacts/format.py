@@ -140,10 +140,13 @@ def write_artifact(
     overwrite: bool = False,
     item_names: dict[str, str] | None = None,
     session_index: SessionIndex | None = None,
+    extra_files: dict[str, bytes | np.ndarray] | None = None,
 ) -> Path:
     """Write one artifact atomically; returns its folder. `item_names` (id -> display name, for
     items of `item_ids` only) adds the optional item_names.json. With `session_index`, manifest_fields
-    must hold its parameters as `session_knn` ({"neighbours", "candidates", "weighting"})."""
+    must hold its parameters as `session_knn` ({"neighbours", "candidates", "weighting"}).
+    `extra_files`: more optional files (bytes as they are, arrays as .npy), covered by the
+    manifest's checksums like the required ones."""
     _check_name(name, "name")
     _check_name(version, "version")
     reserved = sorted(set(manifest_fields) & _WRITER_FIELDS)
@@ -172,13 +175,15 @@ def write_artifact(
             (tmp / ITEM_NAMES).write_text(json.dumps(item_names, ensure_ascii=False, sort_keys=True), encoding="utf-8")
         if session_index is not None:
             np.savez(tmp / SESSIONS, **session_index.arrays())
+        for fname, content in (extra_files or {}).items():
+            _write_extra(tmp / fname, content)
         manifest = {
             "format": FORMAT,
             "name": name,
             "version": version,
             "created_at": datetime.now(timezone.utc).isoformat(timespec="milliseconds"),
             **manifest_fields,
-            "files": {f: sha256_file(tmp / f) for f in files},
+            "files": {f: sha256_file(tmp / f) for f in (*files, *(extra_files or {}))},
             "manifest_sha256": _UNSET_DIGEST,
         }
         (tmp / MANIFEST).write_bytes(_sealed_manifest(manifest))
@@ -191,6 +196,15 @@ def write_artifact(
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return target
+
+
+def _write_extra(path: Path, content: bytes | np.ndarray) -> None:
+    if path.name in (*REQUIRED_FILES, MANIFEST) or path.name != Path(path.name).name:
+        raise ArtifactError(f"optional artifact file {path.name!r} would overwrite a required one")
+    if isinstance(content, bytes):
+        path.write_bytes(content)
+    else:
+        np.save(path, np.ascontiguousarray(content))
 
 
 def verify_artifact(path: Path) -> dict[str, Any]:

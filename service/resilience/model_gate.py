@@ -104,6 +104,7 @@ class ModelGate:
             async with self._timeout(admission.deadline, t0):
                 result = await call()
             timing.step_s = result[1].step_s
+            timing.scoring = result[1].scoring
             if self.guarded:
                 now = time.perf_counter()
                 self.guards.model.record(admission.ticket, True)

@@ -35,7 +35,9 @@ from service.artifacts.format import Artifact, list_artifacts, load_artifact
 from service.config import ARTIFACT_PART, RECOMMENDERS, Settings
 from service.errors import ArtifactError, CairnError, ModelNotReadyError, SettingsError, StepError, StoreError
 from service.runtime.batching import StepBatcher
+from service.artifacts.item_vectors import load_item_vectors
 from service.runtime.onnx_step import OnnxStep
+from service.runtime.reduced_step import ReducedStep
 from service.runtime.recommenders import GruRecommender, NeighbourRecommender, PopularityRecommender, Recommender
 from service.runtime.session_knn import SessionKnnRecommender
 from service.store.base import SessionStore
@@ -85,11 +87,12 @@ class ModelChoice:
 class LoadedModel:
     """One artifact ready to serve. Build with `load_model` (blocking), then `start` on the event loop."""
 
-    def __init__(self, artifact: Artifact, step: OnnxStep, max_batch: int) -> None:
+    def __init__(self, artifact: Artifact, step: OnnxStep | ReducedStep, max_batch: int) -> None:
         if step.n_items != artifact.n_items:
             raise ArtifactError(f"{artifact.path}: step graph scores {step.n_items} items, the id map has {artifact.n_items}")
         self.artifact = artifact
         self.tag = f"{artifact.name}/{artifact.version}"
+        self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8: which path scores the GRU's answers
         self.item_index = artifact.item_index
         self.item_ids = artifact.item_ids  # index -> id
         self.popularity = PopularityRecommender(artifact.popularity)
@@ -131,10 +134,35 @@ class LoadedModel:
         return [ids[i] for i in indices]
 
 
-def load_model(path: Path, ort_threads: int, max_batch: int) -> LoadedModel:
-    """Verify and load an artifact and open its step graph. Blocking: run it off the event loop."""
+# `scoring = auto` scores in int8 from this many items on: below it the exact step is at least as
+# fast (two ONNX Runtime calls and a re-scoring cost more than one small pass). bench/catalogue.py
+# measured int8 10-15% ahead at 200,000 items and level at 1,000,000 on a 2-core AVX2 machine.
+AUTO_REDUCED_FROM = 100_000
+
+
+def scoring_path(setting: str, n_items: int, has_vectors: bool) -> str:
+    """What answers: `setting` when the artifact can do it, else exact (logged by the caller)."""
+    if setting == "auto":
+        return "int8" if has_vectors and n_items >= AUTO_REDUCED_FROM else "exact"
+    if setting in ("fp16", "int8") and not has_vectors:
+        return "exact"
+    return setting
+
+
+def load_model(path: Path, ort_threads: int, max_batch: int, scoring: str = "exact") -> LoadedModel:
+    """Verify and load an artifact and open its step graph (or, for a reduced-precision `scoring`,
+    its feature and candidate graphs over memory-mapped item vectors: the exact graph with its
+    private copy of the tables is then not opened). Blocking: run it off the event loop."""
     artifact = load_artifact(path)
-    step = OnnxStep(artifact.step_graph, threads=ort_threads)
+    tables = load_item_vectors(artifact.path, artifact.manifest, artifact.n_items)
+    path_name = scoring_path(scoring, artifact.n_items, tables is not None)
+    if path_name != scoring and scoring != "auto":
+        log.warning("%s has no item vectors for CAIRN_SCORING=%s (exported by an older cairn): scoring exactly", path, scoring)
+    step: OnnxStep | ReducedStep
+    if path_name == "exact" or tables is None:
+        step = OnnxStep(artifact.step_graph, threads=ort_threads)
+    else:
+        step = ReducedStep(tables, path_name, threads=ort_threads)
     # One step now: a graph that cannot run fails the load, and the first visitor does not pay
     # ONNX Runtime's first-call set-up.
     try:
@@ -265,7 +293,9 @@ class ActiveModel:
                 if not path.is_dir():
                     raise ArtifactError(f"no artifact {choice.tag} in {str(self.settings.artifacts)!r}")
                 try:
-                    model = await asyncio.to_thread(load_model, path, self.settings.ort_threads, self.settings.max_batch)
+                    model = await asyncio.to_thread(
+                        load_model, path, self.settings.ort_threads, self.settings.max_batch, self.settings.scoring
+                    )
                 except ArtifactError as exc:
                     self.load_results[choice.tag] = str(exc)
                     raise

@@ -28,6 +28,27 @@ _OUTPUTS = ("next_hidden", "top_items", "top_scores", "scores")
 
 
 
+def ort_errors() -> tuple[type[BaseException], ...]:
+    """What ONNX Runtime raises from `run` (for other modules' except clauses)."""
+    return _ORT_ERRORS
+
+
+def open_session(path: Path, threads: int = 1) -> ort.InferenceSession:
+    """An ONNX Runtime session on the CPU with cairn's options; ArtifactError when it cannot be opened."""
+    if threads < 1:
+        raise StepError(f"threads must be at least 1, got {threads}")
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = threads  # 1: no thread pool, the call runs on the caller's thread
+    options.inter_op_num_threads = 1
+    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    options.log_severity_level = 4  # fatal only: failures come back as our exceptions, with ORT's message
+    try:
+        return ort.InferenceSession(str(path), sess_options=options, providers=["CPUExecutionProvider"])
+    except _ORT_ERRORS as exc:
+        raise ArtifactError(f"{path}: ONNX Runtime cannot open the step graph ({' '.join(str(exc).split())})") from exc
+
+
 class _ClosedSession:
     """Stands in for the ONNX Runtime session after `OnnxStep.close`: a late call gets a StepError."""
 
@@ -41,20 +62,11 @@ class _ClosedSession:
 class OnnxStep:
     """`step.onnx` of an artifact, opened once; `run` and `run_scores` advance a batch by one click."""
 
+    scoring = "exact"  # every item in float32: the reference the reduced paths are measured against
+
     def __init__(self, path: Path, threads: int = 1) -> None:
         self.path = Path(path)
-        if threads < 1:
-            raise StepError(f"threads must be at least 1, got {threads}")
-        options = ort.SessionOptions()
-        options.intra_op_num_threads = threads  # 1: no thread pool, the call runs on the caller's thread
-        options.inter_op_num_threads = 1
-        options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-        options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
-        options.log_severity_level = 4  # fatal only: failures come back as our exceptions, with ORT's message
-        try:
-            self._session = ort.InferenceSession(str(self.path), sess_options=options, providers=["CPUExecutionProvider"])
-        except _ORT_ERRORS as exc:
-            raise ArtifactError(f"{self.path}: ONNX Runtime cannot open the step graph ({' '.join(str(exc).split())})") from exc
+        self._session = open_session(self.path, threads)
         self.layers, self.hidden_size, self.n_items = self._read_sizes()
         self._run_outputs = ["next_hidden", "top_items", "top_scores"]
         self._score_outputs = ["next_hidden", "scores"]

@@ -30,6 +30,7 @@ class Ranking:
     items: list[int]  # best first, k <= count
     scores: list[float]
     step_s: float = 0.0  # GRU: seconds ONNX Runtime spent on the call that scored it (Server-Timing `step`)
+    scoring: str = ""  # GRU: the scoring path, exact | fp16 | int8 (Server-Timing `scoring`)
 
 
 class Recommender(Protocol):
@@ -44,10 +45,12 @@ class Recommender(Protocol):
     async def rank(self, state: Any, count: int, seen: frozenset[int] = _NO_SEEN) -> Ranking: ...
 
 
-def without_seen(items: list[int], scores: list[float], seen: frozenset[int] | set[int], count: int, step_s: float = 0.0) -> Ranking:
+def without_seen(
+    items: list[int], scores: list[float], seen: frozenset[int] | set[int], count: int, step_s: float = 0.0, scoring: str = ""
+) -> Ranking:
     """The first `count` candidates that are not in `seen`, order kept."""
     if not seen:
-        return Ranking(items[:count], scores[:count], step_s)
+        return Ranking(items[:count], scores[:count], step_s, scoring)
     kept_items: list[int] = []
     kept_scores: list[float] = []
     for item, score in zip(items, scores):
@@ -56,7 +59,7 @@ def without_seen(items: list[int], scores: list[float], seen: frozenset[int] | s
             kept_scores.append(score)
             if len(kept_items) == count:
                 break
-    return Ranking(kept_items, kept_scores, step_s)
+    return Ranking(kept_items, kept_scores, step_s, scoring)
 
 
 class PopularityRecommender:
@@ -144,6 +147,7 @@ class GruRecommender:
     def __init__(self, batcher: StepBatcher) -> None:
         self.batcher = batcher
         self.layers, self.hidden_size, self.n_items = batcher.layers, batcher.hidden_size, batcher.n_items
+        self.scoring: str = getattr(batcher.step, "scoring", "exact")
         self._zero = np.zeros((self.layers, self.hidden_size), dtype=np.float32)  # [L, H]
         self._zero.setflags(write=False)
 
@@ -157,7 +161,7 @@ class GruRecommender:
     async def step(self, state: GruState, item: int, count: int, seen: frozenset[int] = _NO_SEEN) -> tuple[GruState, Ranking]:
         top_n = min(self.n_items, count + len(seen))
         next_hidden, items, scores, step_s = await self.batcher.run_timed(item, state.hidden, top_n)  # [L, H], [top_n], [top_n]
-        return GruState(next_hidden, state.hidden, item), without_seen(items.tolist(), scores.tolist(), seen, count, step_s)
+        return GruState(next_hidden, state.hidden, item), without_seen(items.tolist(), scores.tolist(), seen, count, step_s, self.scoring)
 
     async def rank(self, state: GruState, count: int, seen: frozenset[int] = _NO_SEEN) -> Ranking:
         # The list after the last click is that click's step again, from the state before it.

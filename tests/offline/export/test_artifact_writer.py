@@ -132,7 +132,7 @@ def test_graph_follows_the_contract() -> None:
         attrs = {a.name: onnx.helper.get_attribute_value(a) for a in node.attribute}
         assert attrs["linear_before_reset"] == 1 and attrs["hidden_size"] == 12
     inits = {t.name: list(t.dims) for t in proto.graph.initializer}
-    assert inits["output_t"] == [8, 50]  # O^T [D, n_items], stored pre-transposed
+    assert inits["output"] == [50, 8]  # O [n_items, D], the layout of item_vectors.npy (Gemm transB)
     topk = next(n for n in proto.graph.node if n.op_type == "TopK")
     assert {a.name: a.i for a in topk.attribute} == {"axis": -1, "largest": 1, "sorted": 1}
 

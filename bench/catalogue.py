@@ -1,0 +1,211 @@
+"""Large catalogues: each scoring path (exact, fp16, int8) at 200,000 and 1,000,000 items, side by side.
+
+Per size: `cairn export --random --items N` (wall time and peak memory through /usr/bin/time -v),
+the artifact's size on disk, then per path (CAIRN_SCORING): top-20 agreement with the exact fp32
+step over visit states (random weights: the worst case, scores bunched together), and `cairn serve`
+(one worker, memory store, pinned to one core; the load generator on the other) measured over HTTP:
+p50/p99 per click at a paced 50 clicks/s (four connections, each sending every 80 ms after its
+answer), then at 8 visits at once (closed loop), the worker's RSS split into private and shared
+(/proc/<pid>/smaps_rollup), and which path and recommender answered (from /metrics). Budgets are
+raised to 1 s so every answer comes from the GRU: this measures the scoring path, not the guards.
+
+    python -m bench.catalogue [--sizes 200000 1000000] [--paths exact fp16 int8] [--out reports/bench/catalogue.json]
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import os
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+import urllib.request
+from pathlib import Path
+
+import numpy as np
+
+from bench.harness.ports import free_port
+from bench.harness.processes import launch, stop_process, wait_http
+from bench.reporting import write_report
+from bench.service import COUNT, Connection, bench_cores, click_stream, pct, saturate, service_environment
+from service.errors import BenchError
+
+TOP = 20
+PACED_RATE = 50.0  # clicks/s over all connections
+PACED_CONNECTIONS = 4
+
+
+def export(store: Path, n_items: int, log: Path) -> dict:
+    """`cairn export --random` in a child process: wall seconds and peak RSS (GNU time)."""
+    cmd = [sys.executable, "-m", "service.cli", "export", "--random", "--items", str(n_items), "--artifacts", str(store),
+           "--name", "bench", "--version", f"n{n_items}", "--overwrite"]  # fmt: skip
+    timer = ["/usr/bin/time", "-v"] if Path("/usr/bin/time").exists() else []
+    t0 = time.perf_counter()
+    done = subprocess.run([*timer, *cmd], capture_output=True, text=True)
+    seconds = time.perf_counter() - t0
+    log.write_text(done.stdout + done.stderr, encoding="utf-8")
+    if done.returncode != 0:
+        raise BenchError(f"export of {n_items} items failed:\n{done.stderr[-2000:]}")
+    m = re.search(r"Maximum resident set size \(kbytes\): (\d+)", done.stderr)
+    path = store / "bench" / f"n{n_items}"
+    return {
+        "seconds": round(seconds, 2),
+        "peak_rss_mb": round(int(m.group(1)) / 1024, 1) if m else None,
+        "artifact_mb": round(sum(p.stat().st_size for p in path.iterdir()) / 2**20, 1),
+        "path": str(path),
+    }
+
+
+def agreement(path: Path, precisions: list[str], states: int = 256, batch: int = 64) -> dict[str, float]:
+    """Mean top-20 overlap of each reduced path with the exact fp32 step, over visit states."""
+    from service.artifacts.format import load_artifact
+    from service.artifacts.item_vectors import load_item_vectors
+    from service.runtime.onnx_step import OnnxStep
+    from service.runtime.reduced_step import ReducedStep
+
+    a = load_artifact(path)
+    tables = load_item_vectors(path, a.manifest, a.n_items)
+    exact = OnnxStep(a.step_graph)
+    reduced = {p: ReducedStep(tables, p) for p in precisions if p != "exact"}
+    rng = np.random.default_rng(0)
+    overlap: dict[str, list[float]] = {p: [] for p in reduced}
+    for _ in range(states // batch):
+        hidden = exact.zero_hidden(batch)
+        for _ in range(rng.integers(1, 6)):  # a visit of one to five clicks so far
+            hidden, _, _ = exact.run(rng.integers(0, a.n_items, batch), hidden, 1)
+        items = rng.integers(0, a.n_items, batch)
+        _, ref, _ = exact.run(items, hidden, TOP)
+        for p, step in reduced.items():
+            _, got, _ = step.run(items, hidden, TOP)
+            overlap[p] += [len(set(r) & set(g)) / TOP for r, g in zip(ref.tolist(), got.tolist())]
+    out = {"exact": 1.0}
+    out.update({p: round(float(np.mean(v)), 4) for p, v in overlap.items()})
+    exact.close()
+    return out
+
+
+def memory_of(pid: int) -> dict[str, float]:
+    """RSS of a process, MB (Linux smaps_rollup): private and shared pages, and of the RSS the
+    anonymous memory (heap, ONNX Runtime's packed weights). A file page mapped by this process
+    alone counts as private until a second process maps it; anonymous memory is never shared."""
+    fields: dict[str, int] = {}
+    for line in Path(f"/proc/{pid}/smaps_rollup").read_text().splitlines()[1:]:
+        name, _, rest = line.partition(":")
+        parts = rest.split()
+        if parts and parts[0].isdigit():
+            fields[name] = int(parts[0])
+    private = fields.get("Private_Clean", 0) + fields.get("Private_Dirty", 0)
+    shared = fields.get("Shared_Clean", 0) + fields.get("Shared_Dirty", 0)
+    mb = lambda kb: round(kb / 1024, 1)  # noqa: E731
+    return {"rss_mb": mb(fields.get("Rss", 0)), "private_mb": mb(private), "shared_mb": mb(shared), "anonymous_mb": mb(fields.get("Anonymous", 0))}
+
+
+async def paced(port: int, items: list[str], clicks: int) -> dict:
+    """`clicks` clicks at about PACED_RATE per second over PACED_CONNECTIONS connections."""
+    latencies: list[float] = []
+    errors = 0
+    interval = PACED_CONNECTIONS / PACED_RATE
+
+    async def sender(c: int) -> None:
+        nonlocal errors
+        conn = await Connection.open(port)
+        try:
+            for k in range(c, clicks, PACED_CONNECTIONS):
+                start = time.perf_counter()
+                body = b'{"item_id":"%s","count":%d}' % (items[k % len(items)].encode(), COUNT)
+                status, _ = await conn.post(f"/v1/sessions/paced-{c}-{k // 40}/clicks", body)
+                latencies.append((time.perf_counter() - start) * 1e3)
+                errors += status != 200
+                await asyncio.sleep(max(0.0, interval - (time.perf_counter() - start)))
+        finally:
+            conn.close()
+
+    await asyncio.gather(*(sender(c) for c in range(PACED_CONNECTIONS)))
+    return {"clicks": len(latencies), "p50_ms": round(pct(latencies, 50), 2), "p99_ms": round(pct(latencies, 99), 2), "errors": errors}
+
+
+def answered_by(port: int) -> dict[str, float]:
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
+        text = r.read().decode()
+    out: dict[str, float] = {}
+    for kind, value in re.findall(r'cairn_gru_scoring_total\{scoring="(\w+)"\} ([\d.e+]+)', text):
+        out[f"scoring_{kind}"] = float(value)
+    for served, value in re.findall(r'cairn_recommendation_duration_seconds_count\{served_by="(\w+)"\} ([\d.e+]+)', text):
+        out[f"served_by_{served}"] = float(value)
+    return out
+
+
+def serve_and_measure(store: Path, name_version: tuple[str, str], scoring: str, cores: list[int], items: list[str], args: argparse.Namespace, log: Path) -> dict:
+    env = service_environment(
+        store, CAIRN_SCORING=scoring, CAIRN_ARTIFACT_NAME=name_version[0], CAIRN_ARTIFACT_VERSION=name_version[1],
+        CAIRN_DEFAULT_BUDGET_MS="1000", CAIRN_MAX_BATCH="64",
+    )  # fmt: skip
+    port = free_port()
+    t0 = time.perf_counter()
+    proc = launch([sys.executable, "-m", "service.cli", "serve", "--port", str(port), "--workers", "1"], core=cores[0], env=env, log_path=log)
+    try:
+        wait_http(proc, port, "/readyz", timeout_s=300.0, log_path=log)
+        ready_s = time.perf_counter() - t0
+        os.sched_setaffinity(0, {cores[1]})
+        asyncio.run(paced(port, items[5000:], 50))  # warm-up
+        at_rate = asyncio.run(paced(port, items, args.paced_clicks))
+        at_8 = asyncio.run(saturate(port, items[20000:], 8, args.max_clicks, args.max_seconds, 1.0))
+        memory = memory_of(proc.pid)
+        return {"ready_s": round(ready_s, 1), "paced_50_per_s": at_rate, "concurrency_8": at_8, "memory": memory, "answers": answered_by(port)}
+    finally:
+        stop_process(proc)
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--sizes", type=int, nargs="+", default=[200_000, 1_000_000])
+    p.add_argument("--paths", nargs="+", default=["exact", "fp16", "int8"], choices=["exact", "fp16", "int8"])
+    p.add_argument("--paced-clicks", type=int, default=400)
+    p.add_argument("--max-clicks", type=int, default=2000)
+    p.add_argument("--max-seconds", type=float, default=8.0)
+    p.add_argument("--out", type=Path, default=Path("reports/bench/catalogue.json"))
+    p.add_argument("--keep", action="store_true", help="keep the artifacts (printed) instead of deleting them")
+    args = p.parse_args(argv)
+    cores = bench_cores()
+    if cores is None:
+        return 2
+    work = Path(tempfile.mkdtemp(prefix="cairn-catalogue-"))
+    store = work / "model_store"
+    report: dict = {"load_average_before": [round(x, 2) for x in os.getloadavg()], "sizes": {}}
+    try:
+        for n in args.sizes:
+            made = export(store, n, work / f"export-{n}.log")
+            print(f"{n:,} items: export {made['seconds']} s, peak {made['peak_rss_mb']} MB, artifact {made['artifact_mb']} MB", flush=True)
+            agree = agreement(Path(made["path"]), args.paths)
+            items = click_stream(n, seed=1)
+            paths = {}
+            for scoring in args.paths:
+                r = serve_and_measure(store, ("bench", f"n{n}"), scoring, cores, items, args, work / f"serve-{n}-{scoring}.log")
+                r["top20_agreement"] = agree.get(scoring)
+                paths[scoring] = r
+                print(
+                    f"  {scoring:5s} 50/s p50 {r['paced_50_per_s']['p50_ms']} p99 {r['paced_50_per_s']['p99_ms']} ms | "
+                    f"8 visits {r['concurrency_8']['clicks_per_s']} clicks/s p50 {r['concurrency_8']['p50_ms']} p99 {r['concurrency_8']['p99_ms']} ms | "
+                    f"agreement {r['top20_agreement']} | RSS {r['memory']['rss_mb']} MB ({r['memory']['private_mb']} private, "
+                    f"{r['memory'].get('anonymous_mb')} anonymous) | {r['answers']}",
+                    flush=True,
+                )
+            report["sizes"][str(n)] = {"export": made, "paths": paths}
+            if not args.keep:
+                shutil.rmtree(made["path"], ignore_errors=True)
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+        else:
+            print(f"kept {work}")
+    write_report(args.out, report)
+    print(f"wrote {args.out}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,117 @@
+"""Optional artifact files for scoring large catalogues: the item tables as plain arrays.
+
+The exact step graph (`step.onnx`) holds the embedding and output tables inside its protobuf, so
+every worker that opens it keeps a private copy. These files hold the same tables as `.npy`
+arrays that the service memory-maps read-only (two workers on one host share the pages), plus
+reduced-precision copies of the output vectors for a cheaper first pass over every item:
+
+    features.onnx            the GRU step without the item tables: x float32 [B, E], hidden [L, B, H]
+                             -> next_hidden [L, B, H], features float32 [B, D]
+    embedding.npy            float32 [n_items, E], input embedding (x = embedding[items])
+    item_vectors.npy         float32 [n_items, D], output vectors (exact re-scoring of candidates)
+    item_bias.npy            float32 [n_items], output bias
+    item_vectors_fp16.npy    float16 [D, n_items], output vectors transposed
+    item_vectors_int8.npy    int8 [D, n_items], round(v / scale) in -63..63 per item, transposed
+    item_scales.npy          float32 [n_items], max_d |v_jd| / 63 (symmetric per item, common practice;
+                             7 bits: see offline/export/artifact_writer.build_candidate_graph)
+    candidates_fp16.onnx     approximate scores from the fp16 table -> the best k (see artifact_writer.build_candidate_graph)
+    candidates_int8.onnx     the same from the int8 table
+
+Every file is in the manifest's checksums. The manifest's `item_vectors` section names the
+precisions present. An artifact without them is still served, by the exact path.
+numpy only.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from service.errors import ArtifactError
+
+FEATURE_GRAPH = "features.onnx"
+EMBEDDING = "embedding.npy"
+ITEM_VECTORS = "item_vectors.npy"
+ITEM_BIAS = "item_bias.npy"
+ITEM_VECTORS_FP16 = "item_vectors_fp16.npy"
+ITEM_VECTORS_INT8 = "item_vectors_int8.npy"
+ITEM_SCALES = "item_scales.npy"
+CANDIDATES_FP16 = "candidates_fp16.onnx"
+CANDIDATES_INT8 = "candidates_int8.onnx"
+ITEM_VECTOR_FILES = (
+    FEATURE_GRAPH, EMBEDDING, ITEM_VECTORS, ITEM_BIAS, ITEM_VECTORS_FP16, ITEM_VECTORS_INT8, ITEM_SCALES, CANDIDATES_FP16, CANDIDATES_INT8,
+)
+FEATURE_GRAPH_FORMAT = "cairn-gru-features/1"
+CANDIDATE_GRAPH_FORMAT = "cairn-candidates/1"
+PRECISIONS = ("fp16", "int8")
+INT8_LEVELS = 63  # item codes in -63..63
+FEATURE_ZERO_POINT = 128  # features go to the int8 candidate graph as uint8 code + 128
+
+
+def item_vectors_manifest() -> dict[str, Any]:
+    """The manifest's `item_vectors` section, written by the export."""
+    return {"format": FEATURE_GRAPH_FORMAT, "precisions": list(PRECISIONS), "int8": f"symmetric per item: scale = max|v| / {INT8_LEVELS}"}
+
+
+@dataclass
+class ItemVectors:
+    feature_graph: Path
+    embedding: np.ndarray  # float32 [n_items, E], read-only memory map
+    vectors: np.ndarray  # float32 [n_items, D], read-only memory map
+    bias: np.ndarray  # float32 [n_items]
+    codes: dict[str, np.ndarray]  # precision -> [D, n_items] (float16 or int8), read-only memory maps
+    scales: np.ndarray  # float32 [n_items], the int8 scale of each item
+    candidate_graphs: dict[str, Path]  # precision -> its candidate graph
+
+    @property
+    def n_items(self) -> int:
+        return self.vectors.shape[0]
+
+
+def has_item_vectors(manifest: dict[str, Any]) -> bool:
+    files = manifest.get("files")
+    return isinstance(manifest.get("item_vectors"), dict) and isinstance(files, dict) and all(f in files for f in ITEM_VECTOR_FILES)
+
+
+def load_item_vectors(path: Path, manifest: dict[str, Any], n_items: int) -> ItemVectors | None:
+    """The arrays of a verified artifact as read-only memory maps, None when it has none;
+    ArtifactError when one has the wrong type or shape."""
+    path = Path(path)
+    if not has_item_vectors(manifest):
+        return None
+
+    def array(fname: str, dtype: type, ndim: int) -> np.ndarray:
+        try:
+            a = np.load(path / fname, mmap_mode="r")
+        except (OSError, ValueError) as exc:
+            raise ArtifactError(f"{path / fname}: unreadable ({exc})") from exc
+        if a.dtype != dtype or a.ndim != ndim:
+            raise ArtifactError(f"{path / fname}: {a.dtype} with {a.ndim} axes, expected {np.dtype(dtype)} with {ndim}")
+        return a
+
+    embedding = array(EMBEDDING, np.float32, 2)
+    vectors = array(ITEM_VECTORS, np.float32, 2)
+    bias = array(ITEM_BIAS, np.float32, 1)
+    fp16 = array(ITEM_VECTORS_FP16, np.float16, 2)
+    int8 = array(ITEM_VECTORS_INT8, np.int8, 2)
+    scales = array(ITEM_SCALES, np.float32, 1)
+    dim = vectors.shape[1]
+    expected = {
+        EMBEDDING: (n_items, embedding.shape[1]), ITEM_VECTORS: (n_items, dim), ITEM_BIAS: (n_items,),
+        ITEM_VECTORS_FP16: (dim, n_items), ITEM_VECTORS_INT8: (dim, n_items), ITEM_SCALES: (n_items,),
+    }
+    for fname, a in zip(expected, (embedding, vectors, bias, fp16, int8, scales)):
+        if a.shape != expected[fname]:
+            raise ArtifactError(f"{path / fname}: shape {a.shape}, expected {expected[fname]} for {n_items} items")
+    return ItemVectors(
+        feature_graph=path / FEATURE_GRAPH,
+        embedding=embedding,
+        vectors=vectors,
+        bias=np.ascontiguousarray(bias),
+        codes={"fp16": fp16, "int8": int8},
+        scales=np.ascontiguousarray(scales),
+        candidate_graphs={"fp16": path / CANDIDATES_FP16, "int8": path / CANDIDATES_INT8},
+    )

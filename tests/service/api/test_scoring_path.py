@@ -1,0 +1,45 @@
+"""CAIRN_SCORING through the HTTP service: which path answers, and that its answers are the model's."""
+
+from __future__ import annotations
+
+import re
+
+import pytest
+
+from service.config import Settings
+
+CLICKS = ["sku-000001", "sku-000002", "sku-000003"]
+
+
+def scoring_counts(text: str) -> dict[str, float]:
+    return {k: float(v) for k, v in re.findall(r'cairn_gru_scoring_total\{scoring="(\w+)"\} ([\d.e+]+)', text)}
+
+
+@pytest.mark.parametrize("scoring", ["exact", "fp16", "int8"])
+def test_each_path_answers_with_the_models_list_and_is_counted(fresh_server, offline, sid, scoring: str) -> None:
+    server = fresh_server("memory", scoring=scoring)
+    session = sid()
+    with server.client() as c:
+        for item in CLICKS:
+            r = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 10})
+            assert r.status_code == 200 and r.json()["served_by"] == "gru"
+        metrics = c.get("/metrics").text
+    answer = r.json()
+    want_items, want_scores = offline["v1"].top(CLICKS, 10)  # the exact step, straight from ONNX Runtime
+    assert [x["item_id"] for x in answer["items"]] == want_items  # 500 items: the candidates cover the catalogue
+    assert [x["score"] for x in answer["items"]] == pytest.approx(want_scores, abs=1e-5)  # exact fp32 scores on every path
+    assert scoring_counts(metrics) == {scoring: 3.0}
+
+
+def test_auto_scores_a_small_catalogue_exactly(fresh_server, sid) -> None:
+    server = fresh_server("memory")
+    assert server.settings.scoring == "auto"
+    with server.client() as c:
+        assert c.post(f"/v1/sessions/{sid()}/clicks", json={"item_id": CLICKS[0]}).status_code == 200
+        assert scoring_counts(c.get("/metrics").text) == {"exact": 1.0}
+
+
+def test_an_unknown_scoring_path_is_refused_naming_the_setting(monkeypatch) -> None:
+    monkeypatch.setenv("CAIRN_SCORING", "int4")
+    with pytest.raises(ValueError, match="scoring"):
+        Settings()

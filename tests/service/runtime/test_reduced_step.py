@@ -1,0 +1,184 @@
+"""Reduced-precision scoring (fp16, int8 + exact re-scoring) against exact float32 scoring.
+
+References: the exact top-N is `numpy.argpartition` over f . v + b in float64 (NumPy's own
+selection); the int8 error bound is the usual one for symmetric per-vector quantisation
+(common practice): with v = s c + e_v, |e_v| <= s/2 per coordinate, and each feature row
+quantised the same way (f = s_f c_f + e_f, |e_f| <= s_f/2),
+|f.v - approx| <= ||f||_1 s/2 + ||v||_1 s_f/2 + D s s_f/4.
+"""
+
+from __future__ import annotations
+
+import asyncio
+from pathlib import Path
+
+import numpy as np
+import onnx
+import pytest
+
+from offline.export.artifact_writer import write_random_artifact
+from service.artifacts.format import load_artifact, write_artifact
+from service.artifacts.item_vectors import ITEM_VECTOR_FILES, load_item_vectors
+from service.errors import StepError
+from service.runtime.active import AUTO_REDUCED_FROM, load_model, scoring_path
+from service.runtime.onnx_step import OnnxStep, open_session
+from service.runtime.reduced_step import ReducedStep, candidates_for, quantise_rows
+
+N_ITEMS, HIDDEN, TOP = 3000, 32, 20
+
+
+@pytest.fixture(scope="module")
+def artifact(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return write_random_artifact(tmp_path_factory.mktemp("store"), "big", "v1", n_items=N_ITEMS, hidden_size=HIDDEN, seed=3)
+
+
+def visit_states(step: OnnxStep, n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """(items [n], hidden [L, n, H]) after one to four random clicks: real visit states, not noise."""
+    rng = np.random.default_rng(seed)
+    hidden = step.zero_hidden(n)
+    for _ in range(rng.integers(1, 5)):
+        hidden, _, _ = step.run(rng.integers(0, step.n_items, n), hidden, 1)
+    return rng.integers(0, step.n_items, n), hidden
+
+
+def exact_top(features: np.ndarray, vectors: np.ndarray, bias: np.ndarray, k: int) -> np.ndarray:
+    scores = features.astype(np.float64) @ vectors.T.astype(np.float64) + bias  # [B, n_items]
+    return np.argpartition(-scores, k - 1, axis=1)[:, :k]  # the k best of each row, any order
+
+
+def test_int8_scores_stay_within_the_quantisation_bound(artifact: Path) -> None:
+    a = load_artifact(artifact)
+    t = load_item_vectors(artifact, a.manifest, a.n_items)
+    features = np.random.default_rng(0).normal(0, 1, (8, HIDDEN)).astype(np.float32)
+    graph = open_session(t.candidate_graphs["int8"])
+    k = np.array([a.n_items], dtype=np.int64)  # every item, so every approximate score comes back
+    f_codes, f_scales = quantise_rows(features)
+    assert np.all(np.abs((f_codes.astype(np.float32) - 128) * f_scales - features) <= f_scales / 2 + 1e-6)
+    feed = {"features": f_codes, "feature_scales": f_scales, "codes": t.codes["int8"], "scales": t.scales, "bias": t.bias, "k": k}
+    cand, approx = graph.run(None, feed)
+    exact = features.astype(np.float64) @ np.asarray(t.vectors, dtype=np.float64).T + t.bias  # [8, n]
+    scale_f = f_scales  # [8, 1]
+    s = t.scales[cand]  # [8, n] the item scale of each returned column
+    v_l1 = np.abs(np.asarray(t.vectors)).sum(1)[cand]
+    bound = np.abs(features).sum(1, keepdims=True) * s / 2 + v_l1 * scale_f / 2 + HIDDEN * s * scale_f / 4 + 1e-4
+    err = np.abs(approx - np.take_along_axis(exact, cand, 1))
+    assert np.all(err <= bound), float((err - bound).max())
+    assert err.max() > 0  # it is an approximation: a bound that is never approached would test nothing
+    # Read-only memory maps of the artifact's files, not copies: workers share the pages.
+    for table in (t.embedding, t.vectors, t.codes["int8"], t.codes["fp16"]):
+        assert isinstance(table, np.memmap) and not table.flags.writeable
+    # The stored codes reproduce the vectors within half a step per coordinate.
+    recon = np.asarray(t.codes["int8"], dtype=np.float32).T * t.scales[:, None]
+    assert np.all(np.abs(recon - t.vectors) <= t.scales[:, None] / 2 + 1e-7)
+
+
+@pytest.mark.parametrize("precision", ["fp16", "int8"])
+def test_top_20_agrees_with_exact_argpartition(artifact: Path, precision: str) -> None:
+    a = load_artifact(artifact)
+    t = load_item_vectors(artifact, a.manifest, a.n_items)
+    exact_step, reduced = OnnxStep(a.step_graph), ReducedStep(t, precision)
+    items, hidden = visit_states(exact_step, 64, seed=1)
+    next_hidden, top_items, top_scores = reduced.run(items, hidden, TOP)
+    ref_hidden, ref_items, _ = exact_step.run(items, hidden, TOP)
+    np.testing.assert_allclose(next_hidden, ref_hidden, atol=1e-6)  # the same GRU step
+    features = open_session(t.feature_graph).run(None, {"x": np.asarray(t.embedding[items]), "hidden": hidden})[1]
+    truth = exact_top(features, np.asarray(t.vectors), t.bias, TOP)
+    agreement = np.mean([len(set(r) & set(e)) / TOP for r, e in zip(top_items.tolist(), truth.tolist())])
+    assert agreement >= 0.99, agreement  # random weights: the worst case (scores bunched together)
+    # The exact step graph ranks as the reference does (the tables match the graph's).
+    assert np.mean([len(set(r) & set(e)) / TOP for r, e in zip(ref_items.tolist(), truth.tolist())]) >= 0.999
+    # Answers carry exact float32 scores, best first.
+    want = np.einsum("bkd,bd->bk", np.asarray(t.vectors)[top_items], features) + t.bias[top_items]
+    np.testing.assert_allclose(top_scores, want, atol=1e-5)
+    assert np.all(np.diff(top_scores, axis=1) <= 0)
+
+
+def test_reduced_step_refuses_bad_calls(artifact: Path) -> None:
+    a = load_artifact(artifact)
+    step = ReducedStep(load_item_vectors(artifact, a.manifest, a.n_items), "int8")
+    hidden = step.zero_hidden(1)
+    for items, top_n in [(np.array([N_ITEMS]), 5), (np.array([-1]), 5), (np.array([], dtype=np.int64), 5), (np.array([0]), 0)]:
+        with pytest.raises(StepError):
+            step.run(items, hidden, top_n)
+    assert candidates_for(20, N_ITEMS) >= 4 * 20 and candidates_for(5, 100) == 100
+
+
+def test_scoring_setting_picks_the_path_and_falls_back_to_exact(artifact: Path, tmp_path: Path) -> None:
+    assert scoring_path("auto", AUTO_REDUCED_FROM, True) == "int8"
+    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, True) == "exact"
+    assert scoring_path("auto", 10**6, False) == "exact"
+    assert scoring_path("fp16", 10, True) == "fp16" and scoring_path("int8", 10, False) == "exact"
+    assert scoring_path("exact", 10**6, True) == "exact"
+    for scoring in ("exact", "fp16", "int8"):
+        model = load_model(artifact, 1, 8, scoring)
+        assert model.scoring == scoring and model.gru.scoring == scoring
+    # An artifact written without item vectors (an older export, its tables inside the graph):
+    # every setting serves exactly.
+    a = load_artifact(artifact)
+    self_contained = onnx.load(str(a.step_graph)).SerializeToString()  # onnx.load reads the external tables in
+    plain = write_artifact(
+        tmp_path, "old", "v1", step_graph=self_contained, item_ids=a.item_ids, neighbour_items=a.neighbour_items,
+        neighbour_scores=a.neighbour_scores, popularity=a.popularity, manifest_fields={"model": a.manifest["model"]},
+    )
+    assert not set(ITEM_VECTOR_FILES) & {p.name for p in plain.iterdir()}
+    for scoring in ("auto", "int8", "fp16"):
+        assert load_model(plain, 1, 8, scoring).scoring == "exact"
+
+
+def test_fallback_recommenders_work_beside_a_reduced_model(artifact: Path) -> None:
+    asyncio.run(_fallbacks(artifact))
+
+
+async def _fallbacks(artifact: Path) -> None:
+    model = load_model(artifact, 1, 8, "int8")
+    model.start()
+    try:
+        state, ranking = await model.gru.step(model.gru.start(), 7, 10, frozenset({1, 2}))
+        assert len(ranking.items) == 10 and ranking.scoring == "int8" and not {1, 2} & set(ranking.items)
+        again = await model.gru.rank(state, 10, frozenset({1, 2}))
+        assert again.items == ranking.items
+        _, by_neighbours = await model.neighbours.step(model.neighbours.start(), 7, 10)
+        assert len(by_neighbours.items) == 10 and 7 not in by_neighbours.items
+        assert len(model.popularity.top(10).items) == 10
+    finally:
+        await model.close()
+
+
+def test_int8_candidate_scores_are_exact_integer_products(artifact: Path) -> None:
+    # Extreme feature codes (255 and 1, i.e. +-127 around the zero point 128) against item codes
+    # of up to +-63 are where a saturating int16 kernel would go wrong; the reference is NumPy's
+    # int64 matrix product of the same codes.
+    a = load_artifact(artifact)
+    t = load_item_vectors(artifact, a.manifest, a.n_items)
+    assert np.abs(np.asarray(t.codes["int8"])).max() == 63  # the largest coordinate of every item
+    f_codes = np.full((2, HIDDEN), 255, dtype=np.uint8)
+    f_codes[1] = 1
+    ones = np.ones((2, 1), dtype=np.float32)
+    feed = {"features": f_codes, "feature_scales": ones, "codes": t.codes["int8"], "scales": np.ones(N_ITEMS, np.float32),
+            "bias": np.zeros(N_ITEMS, np.float32), "k": np.array([N_ITEMS], dtype=np.int64)}
+    cand, approx = open_session(t.candidate_graphs["int8"]).run(None, feed)
+    want = (f_codes.astype(np.int64) - 128) @ np.asarray(t.codes["int8"], dtype=np.int64)  # [2, n]
+    np.testing.assert_array_equal(approx, np.take_along_axis(want, cand, 1).astype(np.float32))
+
+
+def test_exported_step_graph_keeps_the_tables_outside(artifact: Path) -> None:
+    # The exact graph refers to embedding.npy and item_vectors.npy (ONNX external data) and runs
+    # like a graph holding its tables itself (onnx.load reads the external data in).
+    a = load_artifact(artifact)
+    assert a.step_graph.stat().st_size < 100_000 < (artifact / "item_vectors.npy").stat().st_size
+    proto = onnx.load(str(a.step_graph), load_external_data=False)
+    external = {t.name: {e.key: e.value for e in t.external_data} for t in proto.graph.initializer if t.external_data}
+    assert {k: v["location"] for k, v in external.items()} == {"embedding": "embedding.npy", "output": "item_vectors.npy"}
+    inline = open_session_bytes(onnx.load(str(a.step_graph)).SerializeToString())
+    outside = OnnxStep(a.step_graph)
+    items, hidden = visit_states(outside, 4, seed=5)
+    want = inline.run(None, {"items": items, "hidden": hidden, "top_n": np.array([TOP], dtype=np.int64)})
+    got = outside.run(items, hidden, TOP)
+    for w, g in zip(want[:3], got):
+        np.testing.assert_array_equal(w, g)
+
+
+def open_session_bytes(graph: bytes):
+    import onnxruntime as ort
+
+    return ort.InferenceSession(graph, providers=["CPUExecutionProvider"])
