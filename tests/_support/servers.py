@@ -14,9 +14,6 @@ from __future__ import annotations
 import contextlib
 import itertools
 import os
-import random
-import shutil
-import signal
 import socket
 import subprocess
 import sys
@@ -30,7 +27,7 @@ import httpx
 import pytest
 import uvicorn
 
-from bench.harness.ports import free_port, port_accepts, redis_answers
+from bench.harness.ports import free_port  # noqa: F401 - tests take it from here with the servers
 from bench.harness.processes import launch, stop_process, wait_ready
 from bench.harness.redis_process import RedisProcess as _RedisProcess
 from service.config import ENV_PREFIX, Settings
@@ -174,3 +171,25 @@ def cairn_serve(args: list[str], cwd: Path, ready: Callable[[], bool], what: str
         [sys.executable, "-m", "service.cli", "serve", *args],
         log_path=cwd / "serve.log", ready=ready, what=what, ignore=ignore, env=environment_without_cairn(**env), cwd=cwd,
     )  # fmt: skip
+
+
+def serve_shop(cwd: Path, model_store: Path, store_url: str, port: int, workers: int = 1, **env: str):
+    """`cairn serve` on the test shop's shop/v1 artifact with `workers` workers sharing `store_url`,
+    ready once every worker answers (each names itself in /metrics): a `running_process`."""
+    import re
+
+    url = f"http://127.0.0.1:{port}"
+
+    def ready() -> bool:
+        if workers == 1:
+            return httpx.get(f"{url}/readyz", timeout=2).status_code == 200
+        pids = set()
+        with httpx.Client(base_url=url, timeout=2, limits=httpx.Limits(max_keepalive_connections=0)) as c:
+            for _ in range(40):
+                pids.update(re.findall(r'cairn_worker_info\{pid="(\d+)"\}', c.get("/metrics").text))
+        return len(pids) >= workers
+
+    settings = {"CAIRN_ARTIFACTS": str(model_store), "CAIRN_ARTIFACT_NAME": "shop", "CAIRN_ARTIFACT_VERSION": "v1",
+                "CAIRN_SESSION_STORE": store_url, "CAIRN_LOG_LEVEL": "warning", **env}  # fmt: skip
+    args = ["--port", str(port)] + (["--workers", str(workers)] if workers > 1 else [])
+    return cairn_serve(args, cwd, ready, f"cairn serve --workers {workers}", ignore=(httpx.TransportError,), **settings)

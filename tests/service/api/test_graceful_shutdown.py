@@ -16,7 +16,7 @@ import httpx
 import redis
 
 from service.store.state import decode
-from tests._support.servers import RedisProcess, cairn_serve, free_port
+from tests._support.servers import RedisProcess, free_port, serve_shop
 
 VISITORS = 8
 
@@ -48,19 +48,7 @@ def test_sigterm_under_load_finishes_in_flight_clicks_and_loses_none(model_store
                         acknowledged[session] = max(acknowledged.get(session, 0), answer["sequence"])
 
     try:
-        with cairn_serve(
-            ["--port", str(port)],
-            tmp_path,
-            lambda: httpx.get(f"{url}/readyz", timeout=2).status_code == 200,
-            "cairn serve",
-            ignore=(httpx.TransportError,),
-            CAIRN_SESSION_STORE=store.url,
-            CAIRN_ARTIFACTS=str(model_store),
-            CAIRN_ARTIFACT_NAME="shop",
-            CAIRN_ARTIFACT_VERSION="v1",
-            CAIRN_REDIS_PREFIX=prefix,
-            CAIRN_LOG_LEVEL="warning",
-        ) as proc:
+        with serve_shop(tmp_path, model_store, store.url, port, CAIRN_REDIS_PREFIX=prefix) as proc:
             threads = [threading.Thread(target=visitor, args=(v,)) for v in range(VISITORS)]
             for t in threads:
                 t.start()

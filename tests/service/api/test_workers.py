@@ -12,7 +12,7 @@ from collections import Counter
 import httpx
 import pytest
 
-from tests._support.servers import cairn_serve, free_port
+from tests._support.servers import cairn_serve, free_port, serve_shop
 
 CLICKS = [f"sku-{i:06d}" for i in (5, 50, 150, 250, 350, 450, 45, 145, 245, 345, 445, 40)]
 
@@ -54,21 +54,10 @@ def clicks_in_access_log(log: str, session: str) -> Counter:
 def two_workers(model_store, redis_url, tmp_path, token):
     port = free_port()
     url = f"http://127.0.0.1:{port}"
-    with cairn_serve(
-        ["--workers", "2", "--port", str(port)],
-        tmp_path,
-        lambda: len(worker_of_each_scrape(url, tries=40)) == 2,
-        "cairn serve --workers 2",
-        ignore=(httpx.TransportError,),
-        CAIRN_SESSION_STORE=redis_url,
-        CAIRN_ARTIFACTS=str(model_store),
-        CAIRN_ARTIFACT_NAME="shop",
-        CAIRN_ARTIFACT_VERSION="v1",
-        CAIRN_ADMIN_TOKEN=token,
-        CAIRN_REDIS_PREFIX=f"w{os.getpid()}:",
-        CAIRN_LOG_LEVEL="info",
-        CAIRN_ACCESS_LOG="true",  # the access log says which worker answered each click
-    ):
+    with serve_shop(
+        tmp_path, model_store, redis_url, port, workers=2, CAIRN_ADMIN_TOKEN=token, CAIRN_REDIS_PREFIX=f"w{os.getpid()}:",
+        CAIRN_LOG_LEVEL="info", CAIRN_ACCESS_LOG="true",  # the access log says which worker answered each click
+    ):  # fmt: skip
         yield url
 
 
@@ -141,19 +130,7 @@ def test_sigterm_stops_a_worker_cleanly_and_promptly(model_store, redis_url, tmp
 def test_every_worker_logs_with_time_level_and_its_info_lines(model_store, redis_url, tmp_path):
     port = free_port()
     url = f"http://127.0.0.1:{port}"
-    with cairn_serve(
-        ["--workers", "2", "--port", str(port)],
-        tmp_path,
-        lambda: len(worker_of_each_scrape(url, tries=40)) == 2,
-        "cairn serve --workers 2",
-        ignore=(httpx.TransportError,),
-        CAIRN_SESSION_STORE=redis_url,
-        CAIRN_ARTIFACTS=str(model_store),
-        CAIRN_ARTIFACT_NAME="shop",
-        CAIRN_ARTIFACT_VERSION="v1",
-        CAIRN_REDIS_PREFIX=f"wl{os.getpid()}:",
-        CAIRN_LOG_LEVEL="info",
-    ):
+    with serve_shop(tmp_path, model_store, redis_url, port, workers=2, CAIRN_REDIS_PREFIX=f"wl{os.getpid()}:", CAIRN_LOG_LEVEL="info"):
         pids = set(worker_of_each_scrape(url))
     log = (tmp_path / "serve.log").read_text()
     # "2026-12-03 07:40:01,123 INFO cairn.service[4242]: ready: shop/v1 (gru), ..." from each worker.
@@ -168,20 +145,7 @@ def test_workers_agree_again_after_the_store_forgets_the_switch_and_a_worker_res
     port = free_port()
     url = f"http://127.0.0.1:{port}"
     try:
-        with cairn_serve(
-            ["--workers", "2", "--port", str(port)],
-            tmp_path,
-            lambda: len(worker_of_each_scrape(url, tries=40)) == 2,
-            "cairn serve --workers 2",
-            ignore=(httpx.TransportError,),
-            CAIRN_SESSION_STORE=redis.url,
-            CAIRN_ARTIFACTS=str(model_store),
-            CAIRN_ARTIFACT_NAME="shop",
-            CAIRN_ARTIFACT_VERSION="v1",
-            CAIRN_ADMIN_TOKEN=token,
-            CAIRN_MODEL_POLL_S="0.2",
-            CAIRN_LOG_LEVEL="warning",
-        ):
+        with serve_shop(tmp_path, model_store, redis.url, port, workers=2, CAIRN_ADMIN_TOKEN=token, CAIRN_MODEL_POLL_S="0.2"):
             with fresh(url) as c:
                 assert c.put("/v1/serving", json={"name": "shop", "version": "v2"}, headers={"authorization": f"Bearer {token}"}).status_code == 200
             assert serving_by_worker(url, until={"v2"}) == {"v2"}

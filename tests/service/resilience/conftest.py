@@ -26,7 +26,7 @@ import pytest
 from service.artifacts.format import load_artifact
 from service.config import Settings
 from service.runtime.onnx_step import OnnxStep
-from service.errors import StepError
+from tests._support.faults import ModelFault
 from tests._support.servers import RedisProcess, RunningServer, free_port, serve_in_thread, shop_settings
 
 N_ITEMS = 400
@@ -103,47 +103,6 @@ def offline(model_store: Path) -> dict[str, Offline]:
 
 
 # -- injected model faults --------------------------------------------------------------------------
-
-
-class ModelFault:
-    """Passed to the app factory as `wrap_model=fault.wrap`; the test turns slowness or failure on and off."""
-
-    def __init__(self) -> None:
-        self.delay_s = 0.0
-        self.failing = False
-
-    def wrap(self, inner):
-        return FaultyGru(inner, self)
-
-
-class FaultyGru:
-    """The GRU recommender, each call first delayed by `fault.delay_s` and failing while `fault.failing`."""
-
-    name = "gru"
-
-    def __init__(self, inner, fault: ModelFault) -> None:
-        self.inner, self.fault = inner, fault
-
-    async def _fault(self) -> None:
-        if self.fault.delay_s:
-            await asyncio.sleep(self.fault.delay_s)
-        if self.fault.failing:
-            raise StepError("injected model failure")
-
-    def start(self):
-        return self.inner.start()
-
-    async def advance(self, state, item):
-        await self._fault()
-        return await self.inner.advance(state, item)
-
-    async def step(self, state, item, count, seen=frozenset()):
-        await self._fault()
-        return await self.inner.step(state, item, count, seen)
-
-    async def rank(self, state, count, seen=frozenset()):
-        await self._fault()
-        return await self.inner.rank(state, count, seen)
 
 
 # -- redis-server processes -------------------------------------------------------------------------

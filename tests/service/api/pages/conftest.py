@@ -5,7 +5,6 @@ chromium driven headless through chromium-driver by Selenium (never a downloaded
 
 from __future__ import annotations
 
-import asyncio
 import shutil
 from collections.abc import Iterator
 from pathlib import Path
@@ -14,7 +13,7 @@ import numpy as np
 import pytest
 
 from service.artifacts.format import load_artifact, write_artifact
-from service.errors import StepError
+from tests._support.faults import ModelFault
 from tests._support.servers import RunningServer, serve_in_thread, shop_settings
 
 N_ITEMS = 300
@@ -38,9 +37,11 @@ def pages_store(tmp_path_factory: pytest.TempPathFactory) -> Path:
     catalogue = build_catalogue(ScenarioParams(items=N_ITEMS), np.random.default_rng(7))
     fields = {"model": base.manifest["model"], "metrics": {}}
     tables = (base.neighbour_items, base.neighbour_scores)
+    # The step graph keeps its item tables in files beside it (ONNX external data): they come along.
+    extras = {f: (base.path / f).read_bytes() for f in base.manifest["files"] if f.endswith(".npy") and f != "popularity.npy"}
     write_artifact(
         store, "garden", "v1", graph, catalogue.item_ids, *tables, base.popularity, fields,
-        item_names=dict(zip(catalogue.item_ids, catalogue.names)),
+        item_names=dict(zip(catalogue.item_ids, catalogue.names)), extra_files=extras,
     )  # fmt: skip
     ids = list(catalogue.item_ids)
     popularity = base.popularity.copy()
@@ -49,47 +50,8 @@ def pages_store(tmp_path_factory: pytest.TempPathFactory) -> Path:
         ids[index] = hostile
     names = dict(zip(ids, catalogue.names))
     names[HOSTILE_IDS[0]] = HOSTILE_NAME
-    write_artifact(store, "hostile", "v1", graph, ids, *tables, popularity, fields, item_names=names)
+    write_artifact(store, "hostile", "v1", graph, ids, *tables, popularity, fields, item_names=names, extra_files=extras)
     return store
-
-
-class ModelFault:
-    """Passed to the app factory as `wrap_model=fault.wrap`: the GRU made slow or failing at will."""
-
-    def __init__(self, delay_s: float = 0.0) -> None:
-        self.delay_s = delay_s
-        self.failing = False
-
-    def wrap(self, inner):
-        return _FaultyGru(inner, self)
-
-
-class _FaultyGru:
-    name = "gru"
-
-    def __init__(self, inner, fault: ModelFault) -> None:
-        self.inner, self.fault = inner, fault
-
-    async def _fault(self) -> None:
-        if self.fault.delay_s:
-            await asyncio.sleep(self.fault.delay_s)
-        if self.fault.failing:
-            raise StepError("injected model failure")
-
-    def start(self):
-        return self.inner.start()
-
-    async def advance(self, state, item):
-        await self._fault()
-        return await self.inner.advance(state, item)
-
-    async def step(self, state, item, count, seen=frozenset()):
-        await self._fault()
-        return await self.inner.step(state, item, count, seen)
-
-    async def rank(self, state, count, seen=frozenset()):
-        await self._fault()
-        return await self.inner.rank(state, count, seen)
 
 
 @pytest.fixture()
