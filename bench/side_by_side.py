@@ -107,7 +107,7 @@ def _same_weights_checkpoint(artifact: Path, hidden: int, seed: int, out: Path) 
     """The artifact's weights as a PyTorch checkpoint, rebuilt from the seed as write_random_artifact does."""
     import torch
 
-    from offline.export.artifact_writer import artifact_step_graph
+    from offline.export.onnx_graph import artifact_step_graph
     from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint
     from service.artifacts.item_vectors import EMBEDDING, ITEM_VECTORS
 

@@ -13,8 +13,8 @@ reduced-precision copies of the output vectors for a cheaper first pass over eve
     item_vectors_fp16.npy    float16 [D, n_items], output vectors transposed
     item_vectors_int8.npy    int8 [D, n_items], round(v / scale) in -63..63 per item, transposed
     item_scales.npy          float32 [n_items], max_d |v_jd| / 63 (symmetric per item, common practice;
-                             7 bits: see offline/export/artifact_writer.build_candidate_graph)
-    candidates_fp16.onnx     approximate scores from the fp16 table -> the best k (see artifact_writer.build_candidate_graph)
+                             7 bits: see offline/export/onnx_graph.build_candidate_graph)
+    candidates_fp16.onnx     approximate scores from the fp16 table -> the best k (see onnx_graph.build_candidate_graph)
     candidates_int8.onnx     the same from the int8 table
 
 Every file is in the manifest's checksums. The manifest's `item_vectors` section names the

@@ -22,7 +22,8 @@ from service.cli import main as cairn
 from service.errors import ArtifactError, InputDataError
 from offline.data.dataset import PreparedData, SessionSplit
 from offline.evaluate.next_clicks import iterate_events, target_ranks
-from offline.export.artifact_writer import build_step_graph, export_artifact, write_random_artifact
+from offline.export.artifact_writer import export_artifact, write_random_artifact
+from offline.export.onnx_graph import build_step_graph
 from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint
 from offline.evaluate.onnx_scorer import load_onnx_scorer
 from service.runtime.onnx_step import OnnxStep
