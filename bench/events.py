@@ -97,6 +97,7 @@ def main(argv: list[str] | None = None) -> int:
     rig = build_rig("cairn-bench-events-", args.items, args.hidden)
     if rig is None:
         return 2
+    allowed = os.sched_getaffinity(0)
     os.sched_setaffinity(0, {rig.load_core})
     events_dir = rig.work / "events"
     procs = []
@@ -127,6 +128,7 @@ def main(argv: list[str] | None = None) -> int:
     finally:
         stop_all(procs)
         shutil.rmtree(rig.work, ignore_errors=True)
+        os.sched_setaffinity(0, allowed)  # this process (a test's, say) keeps the cores it had
     summary = {}
     for variant in ("off", "on"):
         summary[variant] = {
