@@ -1,6 +1,6 @@
 """Large catalogues: each scoring path (exact, fp16, int8) at 200,000 and 1,000,000 items, side by side.
 
-Per size: `cairn export --random --items N` (wall time and peak memory through /usr/bin/time -v),
+Per size: `cairn export --random --items N` (wall time, and peak memory from getrusage in the export's own process),
 the artifact's size on disk, then per path (CAIRN_SCORING): top-20 agreement with the exact fp32
 step over visit states (random weights: the worst case, scores bunched together), and `cairn serve`
 (one worker, memory store, pinned to one core; the load generator on the other) measured over HTTP:
@@ -40,17 +40,20 @@ PACED_CONNECTIONS = 4
 
 
 def export(store: Path, n_items: int, log: Path) -> dict:
-    """`cairn export --random` in a child process: wall seconds and peak RSS (GNU time)."""
-    cmd = [sys.executable, "-m", "service.cli", "export", "--random", "--items", str(n_items), "--artifacts", str(store),
-           "--name", "bench", "--version", f"n{n_items}", "--overwrite"]  # fmt: skip
-    timer = ["/usr/bin/time", "-v"] if Path("/usr/bin/time").exists() else []
+    """`cairn export --random` in a child process of its own: wall seconds, and its peak RSS as the
+    kernel counts it for that process (getrusage's ru_maxrss, kB on Linux)."""
+    argv = ["export", "--random", "--items", str(n_items), "--artifacts", str(store), "--name", "bench", "--version", f"n{n_items}", "--overwrite"]
+    code = (
+        "import resource, sys; from service.cli import main; rc = main(sys.argv[1:]); "
+        "print(f'peak_rss_kb {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}', file=sys.stderr); sys.exit(rc)"
+    )
     t0 = time.perf_counter()
-    done = subprocess.run([*timer, *cmd], capture_output=True, text=True)
+    done = subprocess.run([sys.executable, "-c", code, *argv], capture_output=True, text=True)
     seconds = time.perf_counter() - t0
     log.write_text(done.stdout + done.stderr, encoding="utf-8")
     if done.returncode != 0:
         raise BenchError(f"export of {n_items} items failed:\n{done.stderr[-2000:]}")
-    m = re.search(r"Maximum resident set size \(kbytes\): (\d+)", done.stderr)
+    m = re.search(r"peak_rss_kb (\d+)", done.stderr)
     path = store / "bench" / f"n{n_items}"
     return {
         "seconds": round(seconds, 2),

@@ -103,27 +103,23 @@ def export_artifact(
     sessions = session_index(prepared.train, prepared.n_items, sknn["candidates"])
 
     hyperparameters = extra.get("hyperparameters", {})
-    weights = weights_of(model)
-    return write_artifact(
+    return _write_model_artifact(
         store,
         name,
         version,
-        step_graph=graph_from_weights(weights, external=True).SerializeToString(),
-        extra_files=item_vector_files(weights),
+        model,
         item_ids=prepared.item_ids,
         neighbour_items=neighbour_items,
         neighbour_scores=neighbour_scores,
         popularity=popularity,
         manifest_fields={
             "data_fingerprint": fingerprint,
-            "model": _model_fields(model.config),
             "hyperparameters": _jsonable(hyperparameters, "the checkpoint's hyperparameters"),
             # this model's own figures, the strongest simple one's beside them, the verdict, provenance
             "metrics": _jsonable(own_metrics(metrics or {}, checkpoint), "the metrics"),
             "neighbour_table": {"kind": "item-knn", "neighbours": neighbours, "regulariser": regulariser},
             "session_knn": sknn,
             "serving_defaults": {"exclude_seen": exclude_seen},
-            "item_vectors": item_vectors_manifest(),
         },
         overwrite=overwrite,
         item_names={i: names[i] for i in prepared.item_ids if i in names} if names else None,
@@ -211,6 +207,31 @@ def write_random_artifact(
     popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
     sessions = _random_session_index(n_items, popularity, rng)
 
+    return _write_model_artifact(
+        store,
+        name,
+        version,
+        model,
+        item_ids=item_ids if item_ids is not None else [f"sku-{i:06d}" for i in range(n_items)],
+        neighbour_items=table_items,
+        neighbour_scores=table_scores,
+        popularity=popularity,
+        manifest_fields={
+            "data_fingerprint": f"random:{seed}",
+            "hyperparameters": {"random_seed": seed},
+            "metrics": {},
+            "neighbour_table": {"kind": "random", "neighbours": neighbours},
+            "session_knn": {"neighbours": 100, "candidates": sessions.candidates, "weighting": "linear"},
+            "serving_defaults": {"exclude_seen": exclude_seen},
+        },
+        overwrite=overwrite,
+        session_index=sessions,
+    )
+
+
+def _write_model_artifact(store: Path, name: str, version: str, model: NextClickGRU, manifest_fields: dict[str, Any], **tables: Any) -> Path:
+    """`write_artifact` for a GRU: its step graph (item tables as external data), the item-vector
+    files of the reduced-precision paths, and the model's own manifest fields."""
     weights = weights_of(model)
     return write_artifact(
         store,
@@ -218,22 +239,8 @@ def write_random_artifact(
         version,
         step_graph=graph_from_weights(weights, external=True).SerializeToString(),
         extra_files=item_vector_files(weights),
-        item_ids=item_ids if item_ids is not None else [f"sku-{i:06d}" for i in range(n_items)],
-        neighbour_items=table_items,
-        neighbour_scores=table_scores,
-        popularity=popularity,
-        manifest_fields={
-            "data_fingerprint": f"random:{seed}",
-            "model": _model_fields(config),
-            "hyperparameters": {"random_seed": seed},
-            "metrics": {},
-            "neighbour_table": {"kind": "random", "neighbours": neighbours},
-            "session_knn": {"neighbours": 100, "candidates": sessions.candidates, "weighting": "linear"},
-            "serving_defaults": {"exclude_seen": exclude_seen},
-            "item_vectors": item_vectors_manifest(),
-        },
-        overwrite=overwrite,
-        session_index=sessions,
+        manifest_fields={**manifest_fields, "model": _model_fields(model.config), "item_vectors": item_vectors_manifest()},
+        **tables,
     )
 
 

@@ -3,15 +3,11 @@
 from __future__ import annotations
 
 import json
-import shutil
 from pathlib import Path
-
-import pytest
 
 from bench.catalogue import main
 
 
-@pytest.mark.skipif(shutil.which("taskset") is None or not Path("/usr/bin/time").exists(), reason="needs taskset and GNU time")
 def test_small_catalogue_report(tmp_path: Path) -> None:
     out = tmp_path / "catalogue.json"
     argv = ["--sizes", "3000", "--paths", "exact", "int8", "--paced-clicks", "20", "--max-clicks", "60", "--max-seconds", "1", "--out", str(out)]

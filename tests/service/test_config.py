@@ -143,9 +143,9 @@ def test_bad_guard_store_and_tls_values_are_named(monkeypatch, env, named):
 def test_cluster_urls():
     from service.config import cluster_nodes
 
-    s = load_settings({"session_store": "redis-cluster://10.0.0.1:7001,10.0.0.2:7002"})
+    s = load_settings({"session_store": "redis-cluster://127.0.0.1:7001,127.0.0.2:7002"})
     assert s.store_kind == "redis-cluster"
-    assert cluster_nodes(s.session_store) == ([("10.0.0.1", 7001), ("10.0.0.2", 7002)], None, None, False)
+    assert cluster_nodes(s.session_store) == ([("127.0.0.1", 7001), ("127.0.0.2", 7002)], None, None, False)
     # Credentials percent-decoded as in redis:// URLs (RFC 3986, 2.1); rediss-cluster:// means TLS.
     assert cluster_nodes("rediss-cluster://cairn:p%40ss@h:6379") == ([("h", 6379)], "cairn", "p@ss", True)
 
