@@ -1,15 +1,22 @@
-"""Large catalogues: each scoring path (exact, fp16, int8) at 200,000 and 1,000,000 items, side by side.
+"""Large catalogues: each scoring path (exact, fp16, int8, clustered) at 200,000 and 1,000,000 items, side by side.
 
 Per size: `cairn export --random --items N` (wall time, and peak memory from getrusage in the export's own process),
-the artifact's size on disk, then per path (CAIRN_SCORING): top-20 agreement with the exact fp32
-step over visit states (random weights: the worst case, scores bunched together), and `cairn serve`
+the artifact's size on disk, then per path (CAIRN_SCORING; `clustered@P` = clustered with
+CAIRN_PROBE_CLUSTERS=P, plain `clustered` probes as many clusters as the export chose): top-20
+agreement with the exact fp32 step over visit states (random weights: the worst case, scores
+bunched together and nothing to cluster), and `cairn serve`
 (one worker, memory store, pinned to one core; the load generator on the other) measured over HTTP:
 p50/p99 per click at a paced 50 clicks/s (four connections, each sending every 80 ms after its
 answer), then at 8 visits at once (closed loop), the worker's RSS split into private and shared
 (/proc/<pid>/smaps_rollup), and which path and recommender answered (from /metrics). Budgets are
 raised to 1 s so every answer comes from the GRU: this measures the scoring path, not the guards.
 
-    python -m bench.catalogue [--sizes 200000 1000000] [--paths exact fp16 int8] [--out reports/bench/catalogue.json]
+`--trained ARTIFACT --trained-data PREPARED` adds the same rows for a trained model's artifact,
+with agreement over visit states from the prepared data's test split (real visits: where the
+clustered index is meant to work).
+
+    python -m bench.catalogue [--sizes 200000 1000000] [--paths exact int8 clustered clustered@32]
+                              [--trained model_store/NAME/VERSION --trained-data data/.../prepared] [--out reports/bench/catalogue.json]
 """
 
 from __future__ import annotations
@@ -37,6 +44,7 @@ from service.errors import BenchError
 TOP = 20
 PACED_RATE = 50.0  # clicks/s over all connections
 PACED_CONNECTIONS = 4
+SCORINGS = ("exact", "fp16", "int8", "clustered")
 
 
 def export(store: Path, n_items: int, log: Path) -> dict:
@@ -63,26 +71,58 @@ def export(store: Path, n_items: int, log: Path) -> dict:
     }
 
 
-def agreement(path: Path, precisions: list[str], states: int = 256, batch: int = 64) -> dict[str, float]:
-    """Mean top-20 overlap of each reduced path with the exact fp32 step, over visit states."""
+def parse_path(text: str) -> tuple[str, int]:
+    """`clustered@32` -> ("clustered", 32); `int8` -> ("int8", 0)."""
+    scoring, _, probe = text.partition("@")
+    if scoring not in SCORINGS or (probe and (scoring != "clustered" or not probe.isdigit() or int(probe) < 1)):
+        raise argparse.ArgumentTypeError(f"expected one of {', '.join(SCORINGS)} or clustered@N, got {text!r}")
+    return scoring, int(probe or 0)
+
+
+def random_states(step, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray]:
+    """(items [batch], hidden) after one to five random clicks."""
+    hidden = step.zero_hidden(batch)
+    for _ in range(rng.integers(1, 6)):
+        hidden, _, _ = step.run(rng.integers(0, step.n_items, batch), hidden, 1)
+    return rng.integers(0, step.n_items, batch), hidden
+
+
+def test_split_states(step, split, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray]:
+    """(items [batch], hidden) of real visits: a prefix of a test-split visit, and its next click."""
+    lengths = split.lengths()
+    pool = np.flatnonzero(lengths >= 2)
+    picked = pool[rng.integers(0, len(pool), batch)]
+    prefix = 1 + (rng.random(batch) * np.minimum(lengths[picked] - 1, 10)).astype(np.int64)  # clicks before the scored one
+    hidden = step.zero_hidden(batch)
+    starts = split.offsets[picked]
+    for t in range(int(prefix.max()) - 1):
+        moving = t < prefix - 1  # visits with more clicks before the scored one
+        clicks = split.items[starts + np.minimum(t, prefix - 1)].astype(np.int64)
+        stepped, _, _ = step.run(clicks, hidden, 1)
+        hidden = np.where(moving[None, :, None], stepped, hidden)
+    return split.items[starts + prefix - 1].astype(np.int64), hidden
+
+
+def agreement(path: Path, paths: list[str], states: int = 256, batch: int = 64, split=None) -> dict[str, float]:
+    """Mean top-20 overlap of each path with the exact fp32 step, over visit states (random clicks,
+    or with `split` that split's visits)."""
     from service.artifacts.format import load_artifact
-    from service.artifacts.item_vectors import load_item_vectors
+    from service.runtime.active import open_step
     from service.runtime.onnx_step import OnnxStep
-    from service.runtime.reduced_step import ReducedStep
 
     a = load_artifact(path)
-    tables = load_item_vectors(path, a.manifest, a.n_items)
     exact = OnnxStep(a.step_graph)
-    reduced = {p: ReducedStep(tables, p) for p in precisions if p != "exact"}
+    steps = {}
+    for text in paths:
+        scoring, probe = parse_path(text)
+        if scoring != "exact":
+            steps[text] = open_step(a, scoring, probe=probe)
     rng = np.random.default_rng(0)
-    overlap: dict[str, list[float]] = {p: [] for p in reduced}
+    overlap: dict[str, list[float]] = {p: [] for p in steps}
     for _ in range(states // batch):
-        hidden = exact.zero_hidden(batch)
-        for _ in range(rng.integers(1, 6)):  # a visit of one to five clicks so far
-            hidden, _, _ = exact.run(rng.integers(0, a.n_items, batch), hidden, 1)
-        items = rng.integers(0, a.n_items, batch)
+        items, hidden = random_states(exact, rng, batch) if split is None else test_split_states(exact, split, rng, batch)
         _, ref, _ = exact.run(items, hidden, TOP)
-        for p, step in reduced.items():
+        for p, step in steps.items():
             _, got, _ = step.run(items, hidden, TOP)
             overlap[p] += [len(set(r) & set(g)) / TOP for r, g in zip(ref.tolist(), got.tolist())]
     out = {"exact": 1.0}
@@ -142,10 +182,17 @@ def answered_by(port: int) -> dict[str, float]:
     return out
 
 
-def serve_and_measure(store: Path, name_version: tuple[str, str], scoring: str, cores: list[int], items: list[str], args: argparse.Namespace, log: Path) -> dict:
+def rotated(items: list[str], k: int) -> list[str]:
+    """The click list starting at position k (modulo its length): different clicks for each phase."""
+    k %= len(items)
+    return items[k:] + items[:k]
+
+
+def serve_and_measure(store: Path, name_version: tuple[str, str], path: str, cores: list[int], items: list[str], args: argparse.Namespace, log: Path) -> dict:
+    scoring, probe = parse_path(path)
     env = service_environment(
-        store, CAIRN_SCORING=scoring, CAIRN_ARTIFACT_NAME=name_version[0], CAIRN_ARTIFACT_VERSION=name_version[1],
-        CAIRN_DEFAULT_BUDGET_MS="1000", CAIRN_MAX_BATCH="64",
+        store, CAIRN_SCORING=scoring, CAIRN_PROBE_CLUSTERS=str(probe), CAIRN_ARTIFACT_NAME=name_version[0],
+        CAIRN_ARTIFACT_VERSION=name_version[1], CAIRN_DEFAULT_BUDGET_MS="1000", CAIRN_MAX_BATCH="64",
     )  # fmt: skip
     port = free_port()
     t0 = time.perf_counter()
@@ -155,9 +202,9 @@ def serve_and_measure(store: Path, name_version: tuple[str, str], scoring: str, 
         wait_http(proc, port, "/readyz", timeout_s=300.0, log_path=log)
         ready_s = time.perf_counter() - t0
         os.sched_setaffinity(0, {cores[1]})
-        asyncio.run(paced(port, items[5000:], 50))  # warm-up
+        asyncio.run(paced(port, rotated(items, 5000), 50))  # warm-up
         at_rate = asyncio.run(paced(port, items, args.paced_clicks))
-        at_8 = asyncio.run(saturate(port, items[20000:], 8, args.max_clicks, args.max_seconds, 1.0))
+        at_8 = asyncio.run(saturate(port, rotated(items, 20000), 8, args.max_clicks, args.max_seconds, 1.0))
         memory = memory_of(proc.pid)
         return {"ready_s": round(ready_s, 1), "paced_50_per_s": at_rate, "concurrency_8": at_8, "memory": memory, "answers": answered_by(port)}
     finally:
@@ -165,16 +212,49 @@ def serve_and_measure(store: Path, name_version: tuple[str, str], scoring: str, 
         os.sched_setaffinity(0, allowed)  # this process (a test's, say) keeps the cores it had
 
 
+def measure_paths(store: Path, name_version: tuple[str, str], paths: list[str], agree: dict[str, float], items: list[str],
+                  cores: list[int], args: argparse.Namespace, work: Path) -> dict:  # fmt: skip
+    out = {}
+    for path in paths:
+        r = serve_and_measure(store, name_version, path, cores, items, args, work / f"serve-{name_version[1]}-{path}.log")
+        r["top20_agreement"] = agree.get(path)
+        out[path] = r
+        print(
+            f"  {path:13s} 50/s p50 {r['paced_50_per_s']['p50_ms']} p99 {r['paced_50_per_s']['p99_ms']} ms | "
+            f"8 visits {r['concurrency_8']['clicks_per_s']} clicks/s p50 {r['concurrency_8']['p50_ms']} p99 {r['concurrency_8']['p99_ms']} ms | "
+            f"agreement {r['top20_agreement']} | RSS {r['memory']['rss_mb']} MB ({r['memory']['private_mb']} private, "
+            f"{r['memory'].get('anonymous_mb')} anonymous) | {r['answers']}",
+            flush=True,
+        )
+    return out
+
+
+def clusters_section(path: Path) -> dict | None:
+    import json
+
+    return json.loads((path / "manifest.json").read_text(encoding="utf-8")).get("item_clusters")
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--sizes", type=int, nargs="+", default=[200_000, 1_000_000])
-    p.add_argument("--paths", nargs="+", default=["exact", "fp16", "int8"], choices=["exact", "fp16", "int8"])
+    p.add_argument("--sizes", type=int, nargs="*", default=[200_000, 1_000_000])
+    p.add_argument("--paths", nargs="+", default=["exact", "int8", "clustered", "clustered@32"], metavar="PATH",
+                   help="scoring paths: exact, fp16, int8, clustered, clustered@N (N clusters probed)")  # fmt: skip
+    p.add_argument("--trained", type=Path, metavar="ARTIFACT", help="a trained model's artifact folder, measured too")
+    p.add_argument("--trained-data", type=Path, metavar="PREPARED", help="the prepared data it was trained on (test-split visits)")
     p.add_argument("--paced-clicks", type=int, default=400)
     p.add_argument("--max-clicks", type=int, default=2000)
     p.add_argument("--max-seconds", type=float, default=8.0)
     p.add_argument("--out", type=Path, default=Path("reports/bench/catalogue.json"))
     p.add_argument("--keep", action="store_true", help="keep the artifacts (printed) instead of deleting them")
     args = p.parse_args(argv)
+    for text in args.paths:
+        try:
+            parse_path(text)
+        except argparse.ArgumentTypeError as exc:
+            p.error(f"--paths: {exc}")
+    if (args.trained is None) != (args.trained_data is None):
+        p.error("--trained and --trained-data go together")
     cores = bench_cores()
     if cores is None:
         return 2
@@ -184,24 +264,24 @@ def main(argv: list[str] | None = None) -> int:
     try:
         for n in args.sizes:
             made = export(store, n, work / f"export-{n}.log")
-            print(f"{n:,} items: export {made['seconds']} s, peak {made['peak_rss_mb']} MB, artifact {made['artifact_mb']} MB", flush=True)
+            made["item_clusters"] = clusters_section(Path(made["path"]))
+            print(f"{n:,} items: export {made['seconds']} s, peak {made['peak_rss_mb']} MB, artifact {made['artifact_mb']} MB, "
+                  f"clusters {made['item_clusters']}", flush=True)  # fmt: skip
             agree = agreement(Path(made["path"]), args.paths)
-            items = click_stream(n, seed=1)
-            paths = {}
-            for scoring in args.paths:
-                r = serve_and_measure(store, ("bench", f"n{n}"), scoring, cores, items, args, work / f"serve-{n}-{scoring}.log")
-                r["top20_agreement"] = agree.get(scoring)
-                paths[scoring] = r
-                print(
-                    f"  {scoring:5s} 50/s p50 {r['paced_50_per_s']['p50_ms']} p99 {r['paced_50_per_s']['p99_ms']} ms | "
-                    f"8 visits {r['concurrency_8']['clicks_per_s']} clicks/s p50 {r['concurrency_8']['p50_ms']} p99 {r['concurrency_8']['p99_ms']} ms | "
-                    f"agreement {r['top20_agreement']} | RSS {r['memory']['rss_mb']} MB ({r['memory']['private_mb']} private, "
-                    f"{r['memory'].get('anonymous_mb')} anonymous) | {r['answers']}",
-                    flush=True,
-                )
+            paths = measure_paths(store, ("bench", f"n{n}"), args.paths, agree, click_stream(n, seed=1), cores, args, work)
             report["sizes"][str(n)] = {"export": made, "paths": paths}
             if not args.keep:
                 shutil.rmtree(made["path"], ignore_errors=True)
+        if args.trained is not None:
+            from offline.data.dataset import PreparedData
+
+            data = PreparedData.load(args.trained_data)
+            trained = args.trained.resolve()
+            agree = agreement(trained, args.paths, split=data.test)
+            print(f"trained {trained} ({data.n_items:,} items): clusters {clusters_section(trained)}", flush=True)
+            clicks = [data.item_ids[i] for i in data.test.items[:200_000].tolist()]
+            paths = measure_paths(trained.parent.parent, (trained.parent.name, trained.name), args.paths, agree, clicks, cores, args, work)
+            report["trained"] = {"artifact": str(trained), "items": data.n_items, "item_clusters": clusters_section(trained), "paths": paths}
     finally:
         if not args.keep:
             shutil.rmtree(work, ignore_errors=True)

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from bench.reporting import write_report
-from offline.export.artifact_writer import _random_session_index
+from offline.export.artifact_writer import _random_session_index, _random_sessions
 from service.runtime.recommenders import PopularityRecommender
 from service.runtime.session_knn import SessionKnnRecommender
 
@@ -34,7 +34,7 @@ def measure(n_items: int, clicks: int, seed: int) -> dict:
     rng = np.random.default_rng(seed)
     popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)
     started = time.perf_counter()
-    index = _random_session_index(n_items, popularity, rng)
+    index = _random_session_index(_random_sessions(n_items, popularity, rng), n_items)
     built_s = time.perf_counter() - started
     pop = PopularityRecommender(popularity)
     knn = SessionKnnRecommender(index, pop, neighbours=100, weighting="linear")

@@ -31,6 +31,7 @@ from offline.evaluate.tuning import choose_exclude_seen, tune_session_knn
 
 BASELINES = ("pop", "spop", "markov", "item-knn", "session-knn")
 EXCLUDE_SEEN = ("on", "off", "auto")
+SCORING_PATHS = ("exact", "fp16", "int8", "clustered")  # CAIRN_SCORING's paths, auto aside: a row names the path it measured
 DEFAULT_RECOMMENDERS = ",".join(BASELINES)
 
 
@@ -49,6 +50,11 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--scenario", type=Path, metavar="FILE", help="demo scenario file: adds its exact oracle")
     parser.add_argument("--checkpoint", type=Path, nargs="+", action="extend", default=[], metavar="PATH", help="GRU checkpoints from `cairn train`")
     parser.add_argument("--artifact", type=Path, nargs="+", action="extend", default=[], metavar="PATH", help="model artifacts (ONNX) from `cairn export`")
+    parser.add_argument(
+        "--scoring", nargs="+", choices=SCORING_PATHS, default=["exact"], metavar="PATH",
+        help=f"how each --artifact scores the items, as CAIRN_SCORING does: {', '.join(SCORING_PATHS)}; several give a row each "
+        "(e.g. --scoring exact clustered: the offline cost of the approximation) (default exact)",
+    )  # fmt: skip
     parser.add_argument("--knn-neighbours", default="100", metavar="N", help="neighbours kept per item by item-knn (default 100)")
     parser.add_argument("--knn-regulariser", default="20", metavar="L", help="item-knn support regulariser lambda (default 20)")
     parser.add_argument("--sknn-neighbours", default=str(DEFAULT_NEIGHBOURS), metavar="K", help=f"session-knn: neighbour sessions k (default {DEFAULT_NEIGHBOURS})")
@@ -104,7 +110,9 @@ def run(args: argparse.Namespace) -> int:
     }
     scorers += [fits[name] for name in names]
     scorers += [(lambda p=p: _lazy("offline.evaluate.gru_scorer", "load_torch_scorer")(p)) for p in args.checkpoint]
-    scorers += [(lambda p=p: _lazy("offline.evaluate.onnx_scorer", "load_onnx_scorer")(p)) for p in args.artifact]
+    scorers += [
+        (lambda p=p, sc=sc: _lazy("offline.evaluate.onnx_scorer", "load_onnx_scorer")(p, scoring=sc)) for p in args.artifact for sc in args.scoring
+    ]
 
     built: list[SessionScorer] = []
     for build in scorers:
@@ -204,7 +212,7 @@ def provenance(
         "split": args.split,
         "k": list(ks),
         "checkpoints": {name: str(path) for name, path in zip(_gru_names(results, args.checkpoint), args.checkpoint)},
-        "artifacts": {name: str(path) for name, path in zip(artifacts, args.artifact)},
+        "artifacts": {name: str(path) for name, path in zip(artifacts, [p for p in args.artifact for _ in args.scoring])},
         "baselines": {
             "recommenders": names,
             "item_knn": {"neighbours": neighbours, "regulariser": regulariser},

@@ -1,5 +1,11 @@
 """An exported artifact as a `SessionScorer`, so the served graph goes through the same evaluation
-as the PyTorch model and the baselines (and any difference between them shows up there)."""
+as the PyTorch model and the baselines (and any difference between them shows up there).
+
+`scoring` picks the path as the service's CAIRN_SCORING does (service/runtime/active.open_step):
+exact scores every item; the other paths (fp16, int8, clustered) return the best KEEP items each,
+the rest at -inf, which is what they serve, so their Recall@k and MRR@k (k <= KEEP) show the
+offline cost of the approximation next to the exact row.
+"""
 
 from __future__ import annotations
 
@@ -7,31 +13,41 @@ from pathlib import Path
 
 import numpy as np
 
-from service.artifacts.format import STEP_GRAPH, verify_artifact
+from service.artifacts.format import load_artifact
+from service.runtime.active import Step, open_step
 from service.runtime.onnx_step import OnnxStep
+
+KEEP = 100  # items a top-N path returns per click: above any k the evaluation reports, plus the visit's seen items
 
 
 class OnnxScorer:
-    def __init__(self, step: OnnxStep, name: str) -> None:
+    def __init__(self, step: Step, name: str) -> None:
         self.name = name
         self.n_items = step.n_items
         self._step = step
         self._hidden = step.zero_hidden(0)  # [L, B, H]
+        self._keep = min(KEEP, step.n_items)
 
     def begin(self, n_sessions: int) -> None:
         self._hidden = self._step.zero_hidden(n_sessions)  # [L, n, H]
 
     def advance(self, items: np.ndarray) -> np.ndarray:
         items = np.ascontiguousarray(items, dtype=np.int64)  # [n]
-        self._hidden, scores = self._step.run_scores(items, self._hidden)  # [L, n, H], [n, n_items]
+        if isinstance(self._step, OnnxStep):
+            self._hidden, scores = self._step.run_scores(items, self._hidden)  # [L, n, H], [n, n_items]
+            return scores
+        self._hidden, top_items, top_scores = self._step.run(items, self._hidden, self._keep)  # [n, KEEP] each
+        scores = np.full((len(items), self.n_items), -np.inf, dtype=np.float32)
+        np.put_along_axis(scores, top_items, top_scores, axis=1)
         return scores
 
 
-def load_onnx_scorer(path: Path, threads: int = 1) -> OnnxScorer:
-    """The artifact folder at `path`, verified, as a scorer named after its training loss."""
-    path = Path(path)
-    manifest = verify_artifact(path)
-    hyperparameters = manifest.get("hyperparameters") or {}
+def load_onnx_scorer(path: Path, threads: int = 1, scoring: str = "exact") -> OnnxScorer:
+    """The artifact folder at `path`, verified, as a scorer named after its training loss (and the
+    scoring path when it is not exact)."""
+    artifact = load_artifact(Path(path))
+    hyperparameters = artifact.manifest.get("hyperparameters") or {}
     loss = hyperparameters.get("loss") if isinstance(hyperparameters, dict) else None
     name = f"gru-{loss}-onnx" if isinstance(loss, str) and loss else "gru-onnx"
-    return OnnxScorer(OnnxStep(path / STEP_GRAPH, threads=threads), name)
+    step = open_step(artifact, scoring, threads)
+    return OnnxScorer(step, name if step.scoring == "exact" else f"{name}-{step.scoring}")

@@ -14,12 +14,14 @@ import numpy as np
 from service.artifacts.format import write_artifact
 from service.artifacts.item_vectors import item_vectors_manifest
 from service.errors import ArtifactError, InputDataError
-from offline.data.dataset import PreparedData
+from offline.data.dataset import PreparedData, SessionSplit
 from offline.model.gru import GRUConfig, NextClickGRU, load_checkpoint
 
+from offline.export.item_clusters import CLUSTERS_FROM, item_cluster_files
 from offline.export.onnx_graph import graph_from_weights, item_vector_files, weights_of
 
 _TABLE_SLICE = 65_536  # rows of a random neighbour table made at a time
+CALIBRATION_STATES = 512  # visit states the clustered index's probe count is chosen on
 
 
 def _model_fields(c: GRUConfig) -> dict[str, Any]:
@@ -50,6 +52,7 @@ def export_artifact(
     metrics: dict | None = None,
     overwrite: bool = False,
     names: dict[str, str] | None = None,
+    clusters: bool | None = None,
 ) -> Path:
     """Write `<store>/<name>/<version>/` from a training checkpoint and the data it was trained on.
 
@@ -124,6 +127,8 @@ def export_artifact(
         overwrite=overwrite,
         item_names={i: names[i] for i in prepared.item_ids if i in names} if names else None,
         session_index=sessions,
+        visits=prepared.valid if prepared.valid.n_sessions else prepared.train,
+        clusters=clusters,
     )
 
 
@@ -171,6 +176,7 @@ def write_random_artifact(
     overwrite: bool = False,
     item_ids: list[str] | None = None,
     exclude_seen: bool = True,
+    clusters: bool | None = None,
 ) -> Path:
     """An artifact with random weights and tables, for benchmarks and service tests (item ids
     sku-000000... unless given).
@@ -205,7 +211,8 @@ def write_random_artifact(
         scores = rng.random((len(rows), k), dtype=np.float32)
         table_scores[rows[0] : rows[-1] + 1, :k] = -np.sort(-scores, axis=1)  # descending, like a real table
     popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
-    sessions = _random_session_index(n_items, popularity, rng)
+    visits = _random_sessions(n_items, popularity, rng)
+    sessions = _random_session_index(visits, n_items)
 
     return _write_model_artifact(
         store,
@@ -226,37 +233,79 @@ def write_random_artifact(
         },
         overwrite=overwrite,
         session_index=sessions,
+        visits=visits,
+        clusters=clusters,
     )
 
 
-def _write_model_artifact(store: Path, name: str, version: str, model: NextClickGRU, manifest_fields: dict[str, Any], **tables: Any) -> Path:
+def _write_model_artifact(
+    store: Path,
+    name: str,
+    version: str,
+    model: NextClickGRU,
+    manifest_fields: dict[str, Any],
+    visits: SessionSplit,
+    clusters: bool | None = None,
+    **tables: Any,
+) -> Path:
     """`write_artifact` for a GRU: its step graph (item tables as external data), the item-vector
-    files of the reduced-precision paths, and the model's own manifest fields."""
+    files of the reduced-precision paths, the clustered index (calibrated on states of `visits`;
+    `clusters` None: from CLUSTERS_FROM items on), and the model's own manifest fields."""
     weights = weights_of(model)
-    return write_artifact(
-        store,
-        name,
-        version,
-        step_graph=graph_from_weights(weights, external=True).SerializeToString(),
-        extra_files=item_vector_files(weights),
-        manifest_fields={**manifest_fields, "model": _model_fields(model.config), "item_vectors": item_vectors_manifest()},
-        **tables,
-    )
+    extra: dict[str, Any] = item_vector_files(weights)
+    fields = {**manifest_fields, "model": _model_fields(model.config), "item_vectors": item_vectors_manifest()}
+    if clusters or (clusters is None and weights.n_items >= CLUSTERS_FROM):
+        features = visit_features(model, visits, np.random.default_rng(0))
+        cluster_files, fields["item_clusters"] = item_cluster_files(weights.output, weights.output_bias, features)
+        extra.update(cluster_files)
+    return write_artifact(store, name, version, step_graph=graph_from_weights(weights, external=True).SerializeToString(),
+                          extra_files=extra, manifest_fields=fields, **tables)  # fmt: skip
 
 
-def _random_session_index(n_items: int, popularity: np.ndarray, rng: np.random.Generator, candidates: int = 500):
-    """A session-KNN index over random sessions (5 per item, at most a million; 1-8 clicks drawn by
-    popularity), so a random artifact costs the served session-KNN what a real one of its size does."""
-    from offline.data.dataset import SessionSplit
-    from offline.evaluate.session_knn import session_index
+def visit_features(model: NextClickGRU, visits: SessionSplit, rng: np.random.Generator, states: int = CALIBRATION_STATES) -> np.ndarray:
+    """The model's output features after a random prefix (1 to 10 clicks, leaving at least one
+    click to come) of `states` visits drawn from `visits`: float32 [states, D]."""
+    import torch
 
+    lengths = visits.lengths()
+    pool = np.flatnonzero(lengths >= 2)
+    if len(pool) == 0:
+        pool = np.flatnonzero(lengths >= 1)
+    if len(pool) == 0:
+        raise ArtifactError("no visits to calibrate the clustered index on")
+    picked = pool[rng.integers(0, len(pool), states)]
+    keep = np.maximum(1, np.minimum(lengths[picked] - 1, 10))  # [states] most clicks a prefix may have
+    prefix_lengths = 1 + (rng.random(states) * keep).astype(np.int64)  # [states] in 1..keep
+    out = np.empty((states, model.config.output_size), dtype=np.float32)
+    model.eval()
+    with torch.no_grad():
+        for length in np.unique(prefix_lengths).tolist():
+            rows = np.flatnonzero(prefix_lengths == length)
+            starts = visits.offsets[picked[rows]]  # [b]
+            clicks = torch.as_tensor(visits.items[starts[:, None] + np.arange(length)].astype(np.int64))  # [b, length]
+            hidden = model.init_hidden(len(rows))
+            for t in range(length):
+                features, hidden = model.step(clicks[:, t], hidden)
+            out[rows] = features.numpy()
+    return out
+
+
+def _random_sessions(n_items: int, popularity: np.ndarray, rng: np.random.Generator) -> SessionSplit:
+    """Random sessions (5 per item, at most a million; 1-8 clicks drawn by popularity)."""
     n_sessions = min(5 * n_items, 1_000_000)
     lengths = rng.integers(1, 9, size=n_sessions)
     p = popularity.astype(np.float64)
     p /= p.sum()
     items = rng.choice(n_items, size=int(lengths.sum()), p=p).astype(np.int32)
     offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
-    split = SessionSplit(items=items, offsets=offsets, times=np.zeros(len(items), dtype=np.int64))
+    return SessionSplit(items=items, offsets=offsets, times=np.zeros(len(items), dtype=np.int64))
+
+
+def _random_session_index(split: SessionSplit, n_items: int, candidates: int = 500):
+    """A session-KNN index over `_random_sessions`, so a random artifact costs the served
+    session-KNN what a real one of its size does."""
+    from offline.evaluate.session_knn import session_index
+
     return session_index(split, n_items, candidates)
 
 

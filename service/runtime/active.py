@@ -35,7 +35,9 @@ from service.artifacts.format import Artifact, list_artifacts, load_artifact
 from service.config import ARTIFACT_PART, RECOMMENDERS, Settings
 from service.errors import ArtifactError, CairnError, ModelNotReadyError, SettingsError, StepError, StoreError
 from service.runtime.batching import StepBatcher
+from service.artifacts.item_clusters import load_item_clusters
 from service.artifacts.item_vectors import load_item_vectors
+from service.runtime.clustered_step import ClusteredStep
 from service.runtime.onnx_step import OnnxStep
 from service.runtime.reduced_step import ReducedStep
 from service.runtime.recommenders import GruRecommender, NeighbourRecommender, PopularityRecommender, Recommender
@@ -49,6 +51,7 @@ RETIRE_AFTER_S = 11.0  # longest request budget (10 s) and a margin: no request 
 RETRY_REFUSED_S = 30.0  # a shared choice this process could not load is tried again after this long
 
 ModelWrapper = Callable[[Recommender], Recommender]
+Step = OnnxStep | ReducedStep | ClusteredStep  # one GRU step, whichever path scores it
 
 
 @dataclass(frozen=True)
@@ -87,12 +90,12 @@ class ModelChoice:
 class LoadedModel:
     """One artifact ready to serve. Build with `load_model` (blocking), then `start` on the event loop."""
 
-    def __init__(self, artifact: Artifact, step: OnnxStep | ReducedStep, max_batch: int) -> None:
+    def __init__(self, artifact: Artifact, step: Step, max_batch: int) -> None:
         if step.n_items != artifact.n_items:
             raise ArtifactError(f"{artifact.path}: step graph scores {step.n_items} items, the id map has {artifact.n_items}")
         self.artifact = artifact
         self.tag = f"{artifact.name}/{artifact.version}"
-        self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8: which path scores the GRU's answers
+        self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8 | clustered: which path scores the GRU's answers
         self.item_index = artifact.item_index
         self.item_ids = artifact.item_ids  # index -> id
         self.popularity = PopularityRecommender(artifact.popularity)
@@ -134,35 +137,53 @@ class LoadedModel:
         return [ids[i] for i in indices]
 
 
-# `scoring = auto` scores in int8 from this many items on: below it the exact step is at least as
-# fast (two ONNX Runtime calls and a re-scoring cost more than one small pass). bench/catalogue.py
-# measured int8 10-15% ahead at 200,000 items and level at 1,000,000 on a 2-core AVX2 machine.
+# `scoring = auto` leaves exact scoring from this many items on: below it the exact step is at least
+# as fast (two ONNX Runtime calls and a re-scoring cost more than one small pass). bench/catalogue.py
+# measured int8 10-15% ahead at 200,000 items and level at 1,000,000 on a 2-core AVX2 machine, and
+# the clustered index several times faster at both.
 AUTO_REDUCED_FROM = 100_000
+# `auto` takes the clustered index only when the export measured at least this top-20 agreement
+# with exact scoring at its probe count (random weights, with no structure to cluster, do not).
+AUTO_CLUSTERED_AGREEMENT = 0.99
 
 
-def scoring_path(setting: str, n_items: int, has_vectors: bool) -> str:
-    """What answers: `setting` when the artifact can do it, else exact (logged by the caller)."""
+def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters_agreement: float | None = None) -> str:
+    """What answers: `setting` when the artifact can do it, else exact (logged by the caller).
+    `clusters_agreement`: the artifact's clustered index's measured agreement, None without one."""
     if setting == "auto":
-        return "int8" if has_vectors and n_items >= AUTO_REDUCED_FROM else "exact"
+        if not has_vectors or n_items < AUTO_REDUCED_FROM:
+            return "exact"
+        if clusters_agreement is not None and clusters_agreement >= AUTO_CLUSTERED_AGREEMENT:
+            return "clustered"
+        return "int8"
     if setting in ("fp16", "int8") and not has_vectors:
+        return "exact"
+    if setting == "clustered" and (not has_vectors or clusters_agreement is None):
         return "exact"
     return setting
 
 
-def load_model(path: Path, ort_threads: int, max_batch: int, scoring: str = "exact") -> LoadedModel:
-    """Verify and load an artifact and open its step graph (or, for a reduced-precision `scoring`,
-    its feature and candidate graphs over memory-mapped item vectors: the exact graph with its
-    private copy of the tables is then not opened). Blocking: run it off the event loop."""
-    artifact = load_artifact(path)
+def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0) -> Step:
+    """The GRU step of a verified artifact for a scoring setting (exact | fp16 | int8 | clustered |
+    auto; see `scoring_path`): the exact step graph, or for the other paths the feature graph over
+    memory-mapped item tables (the exact graph with its private copy of the tables is then not
+    opened). `probe` > 0 overrides the clustered index's probe count."""
     tables = load_item_vectors(artifact.path, artifact.manifest, artifact.n_items)
-    path_name = scoring_path(scoring, artifact.n_items, tables is not None)
+    clusters = load_item_clusters(artifact.path, artifact.manifest, artifact.n_items, probe) if tables is not None else None
+    path_name = scoring_path(scoring, artifact.n_items, tables is not None, clusters.agreement if clusters is not None else None)
     if path_name != scoring and scoring != "auto":
-        log.warning("%s has no item vectors for CAIRN_SCORING=%s (exported by an older cairn): scoring exactly", path, scoring)
-    step: OnnxStep | ReducedStep
+        log.warning("%s has no files for CAIRN_SCORING=%s (exported by an older cairn, or too few items): scoring exactly", artifact.path, scoring)
     if path_name == "exact" or tables is None:
-        step = OnnxStep(artifact.step_graph, threads=ort_threads)
-    else:
-        step = ReducedStep(tables, path_name, threads=ort_threads)
+        return OnnxStep(artifact.step_graph, threads=threads)
+    if path_name == "clustered" and clusters is not None:
+        return ClusteredStep(tables, clusters, threads=threads)
+    return ReducedStep(tables, path_name, threads=threads)
+
+
+def load_model(path: Path, ort_threads: int, max_batch: int, scoring: str = "exact", probe: int = 0) -> LoadedModel:
+    """Verify and load an artifact and open its step (`open_step`). Blocking: run it off the event loop."""
+    artifact = load_artifact(path)
+    step = open_step(artifact, scoring, ort_threads, probe)
     # One step now: a graph that cannot run fails the load, and the first visitor does not pay
     # ONNX Runtime's first-call set-up.
     try:
@@ -294,7 +315,7 @@ class ActiveModel:
                     raise ArtifactError(f"no artifact {choice.tag} in {str(self.settings.artifacts)!r}")
                 try:
                     model = await asyncio.to_thread(
-                        load_model, path, self.settings.ort_threads, self.settings.max_batch, self.settings.scoring
+                        load_model, path, self.settings.ort_threads, self.settings.max_batch, self.settings.scoring, self.settings.probe_clusters
                     )
                 except ArtifactError as exc:
                     self.load_results[choice.tag] = str(exc)

@@ -5,20 +5,47 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from bench.catalogue import main
+import numpy as np
+import pytest
+
+from bench.catalogue import main, parse_path
+from offline.data.dataset import PreparedData, SessionSplit
+from offline.export.artifact_writer import write_random_artifact
 
 
 def test_small_catalogue_report(tmp_path: Path) -> None:
+    # A random artifact of 3,000 items stands in for a trained one (its test split: random visits).
+    trained = write_random_artifact(tmp_path / "store", "shop", "t1", n_items=3000, hidden_size=32)
+    rng = np.random.default_rng(0)
+    visits = [rng.integers(0, 3000, rng.integers(2, 8)).tolist() for _ in range(200)]
+    PreparedData(
+        train=SessionSplit.from_sessions(visits), valid=SessionSplit.from_sessions(visits), test=SessionSplit.from_sessions(visits),
+        item_ids=[f"sku-{i:06d}" for i in range(3000)],
+    ).save(tmp_path / "prepared")
     out = tmp_path / "catalogue.json"
-    argv = ["--sizes", "3000", "--paths", "exact", "int8", "--paced-clicks", "20", "--max-clicks", "60", "--max-seconds", "1", "--out", str(out)]
+    argv = ["--sizes", "3000", "--paths", "exact", "int8", "clustered@4", "--paced-clicks", "20", "--max-clicks", "60", "--max-seconds", "1",
+            "--trained", str(trained), "--trained-data", str(tmp_path / "prepared"), "--out", str(out)]  # fmt: skip
     assert main(argv) == 0
-    size = json.loads(out.read_text())["sizes"]["3000"]
+    report = json.loads(out.read_text())
+    size = report["sizes"]["3000"]
     assert size["export"]["seconds"] > 0 and size["export"]["peak_rss_mb"] > 0 and size["export"]["artifact_mb"] > 0
-    for path in ("exact", "int8"):
-        r = size["paths"][path]
-        assert r["paced_50_per_s"]["clicks"] == 20 and r["paced_50_per_s"]["errors"] == 0
-        assert r["concurrency_8"]["clicks"] > 0 and r["concurrency_8"]["errors"] == 0
-        assert r["memory"]["rss_mb"] >= max(r["memory"]["private_mb"], r["memory"]["anonymous_mb"]) > 0
-        assert r["answers"][f"scoring_{path}"] == r["answers"]["served_by_gru"] > 0  # every answer from the path asked for
-    assert size["paths"]["exact"]["top20_agreement"] == 1.0
-    assert size["paths"]["int8"]["top20_agreement"] >= 0.99
+    assert size["export"]["item_clusters"]["clusters"] == 64  # about sqrt(3000), a power of two
+    for rows in (size["paths"], report["trained"]["paths"]):
+        for path in ("exact", "int8", "clustered@4"):
+            r = rows[path]
+            assert r["paced_50_per_s"]["clicks"] == 20 and r["paced_50_per_s"]["errors"] == 0
+            assert r["concurrency_8"]["clicks"] > 0 and r["concurrency_8"]["errors"] == 0
+            assert r["memory"]["rss_mb"] >= max(r["memory"]["private_mb"], r["memory"]["anonymous_mb"]) > 0
+            scoring = path.partition("@")[0]
+            assert r["answers"][f"scoring_{scoring}"] == r["answers"]["served_by_gru"] > 0  # every answer from the path asked for
+        assert rows["exact"]["top20_agreement"] == 1.0
+        assert rows["int8"]["top20_agreement"] >= 0.99
+        assert 0 < rows["clustered@4"]["top20_agreement"] < 1  # 4 of 64 clusters of random weights: a visible loss
+    assert report["trained"]["items"] == 3000
+
+
+def test_path_names_are_checked() -> None:
+    assert parse_path("clustered@32") == ("clustered", 32) and parse_path("int8") == ("int8", 0)
+    for bad in ("int4", "int8@3", "clustered@0", "clustered@x"):
+        with pytest.raises(Exception, match="expected one of"):
+            parse_path(bad)

@@ -15,9 +15,11 @@ def scoring_counts(text: str) -> dict[str, float]:
     return {k: float(v) for k, v in re.findall(r'cairn_gru_scoring_total\{scoring="(\w+)"\} ([\d.e+]+)', text)}
 
 
-@pytest.mark.parametrize("scoring", ["exact", "fp16", "int8"])
+@pytest.mark.parametrize("scoring", ["exact", "fp16", "int8", "clustered"])
 def test_each_path_answers_with_the_models_list_and_is_counted(fresh_server, offline, sid, scoring: str) -> None:
-    server = fresh_server("memory", scoring=scoring)
+    # clustered: every cluster probed (CAIRN_PROBE_CLUSTERS above the count), so the list must be
+    # the exact one; tests/service/runtime/test_clustered_step.py measures a partial probe.
+    server = fresh_server("memory", scoring=scoring, probe_clusters=10**6 if scoring == "clustered" else 0)
     session = sid()
     with server.client() as c:
         for item in CLICKS:

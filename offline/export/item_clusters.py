@@ -1,0 +1,144 @@
+"""Build the clustered item index of an artifact (the files: service/artifacts/item_clusters.py).
+
+    1. map each item's [v, b] onto a sphere: [v, b, sqrt(M^2 - |[v, b]|^2)] (Bachrach et al. 2014)
+    2. k-means (Lloyd) on a sample of the mapped items, k-means++-free: random distinct starting
+       points, empty clusters re-seeded from the sample; then every item to its nearest centre
+    3. order the items by cluster: one contiguous block of [v, b] rows per cluster
+    4. choose `probe`: the fewest clusters whose members hold at least AGREEMENT_TARGET of the
+       exact top 20, on average over visit states of the model itself (the calibration states)
+
+Step 4 needs no approximate search: an item of the exact top 20 whose cluster is probed is in the
+approximate top 20 too (at most 19 items score above it among all items, so among fewer as well),
+so the overlap at `probe` P is the number of exact top-20 items whose cluster ranks below P.
+Everything runs in slices of items, so a million items need no [n_items, C] or [states, n_items]
+temporaries.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from typing import Any
+
+import numpy as np
+
+from service.artifacts.item_clusters import (
+    AGREEMENT_TOP,
+    CLUSTER_CENTRES,
+    CLUSTER_ITEMS,
+    CLUSTER_OFFSETS,
+    CLUSTER_VECTORS,
+    item_clusters_manifest,
+)
+
+AGREEMENT_TARGET = 0.99  # the export picks the fewest clusters that reach this top-20 agreement
+CLUSTERS_FROM = 1_000  # smaller catalogues get no index (the service's `auto` uses one from 100,000 items only)
+SAMPLE_PER_CLUSTER = 64  # k-means trains on this many items per cluster (at most all of them)
+ITERATIONS = 12
+_SLICE = 65_536  # items handled at a time
+
+
+def cluster_count(n_items: int) -> int:
+    """About sqrt(n_items) clusters (common practice for inverted-file indexes), a power of two:
+    1,024 at a million items, 512 at 200,000."""
+    return int(2 ** round(math.log2(max(16.0, math.sqrt(n_items)))))
+
+
+def mapped(vectors: np.ndarray, bias: np.ndarray, max_norm: float) -> np.ndarray:
+    """[v, b, sqrt(M^2 - |[v, b]|^2)] for a slice of items: float32 [m, D + 2]."""
+    out = np.empty((len(vectors), vectors.shape[1] + 2), dtype=np.float32)
+    out[:, :-2] = vectors
+    out[:, -2] = bias
+    sq = (out[:, :-1].astype(np.float64) ** 2).sum(axis=1)
+    out[:, -1] = np.sqrt(np.maximum(max_norm**2 - sq, 0.0))
+    return out
+
+
+def nearest(points: np.ndarray, centres: np.ndarray) -> np.ndarray:
+    """Index of each point's nearest centre (Euclidean): argmax of p . c - |c|^2 / 2, int64 [m]."""
+    half = 0.5 * (centres.astype(np.float64) ** 2).sum(axis=1).astype(np.float32)
+    out = np.empty(len(points), dtype=np.int64)
+    for lo in range(0, len(points), _SLICE):
+        out[lo : lo + _SLICE] = np.argmax(points[lo : lo + _SLICE] @ centres.T - half, axis=1)
+    return out
+
+
+def kmeans(
+    points: np.ndarray, n_clusters: int, rng: np.random.Generator, iterations: int = ITERATIONS, init: np.ndarray | None = None
+) -> np.ndarray:
+    """Lloyd's k-means from `init` (default: distinct random points): float32 centres [n_clusters, d]."""
+    centres = (points[rng.choice(len(points), n_clusters, replace=False)] if init is None else init).astype(np.float32, copy=True)
+    for _ in range(iterations):
+        assign = nearest(points, centres)
+        counts = np.bincount(assign, minlength=n_clusters)
+        sums = np.zeros((n_clusters, points.shape[1]), dtype=np.float64)
+        np.add.at(sums, assign, points)
+        filled = counts > 0
+        centres[filled] = (sums[filled] / counts[filled, None]).astype(np.float32)
+        empty = np.flatnonzero(~filled)
+        if len(empty):
+            centres[empty] = points[rng.choice(len(points), len(empty), replace=False)]
+    return centres
+
+
+def exact_top(features: np.ndarray, vectors: np.ndarray, bias: np.ndarray, k: int = AGREEMENT_TOP) -> np.ndarray:
+    """The exact top-k item indices of each feature row (order within the k not kept): int64 [S, k]."""
+    best_items = np.empty((len(features), 0), dtype=np.int64)
+    best_scores = np.empty((len(features), 0), dtype=np.float32)
+    for lo in range(0, len(vectors), _SLICE):
+        scores = features @ vectors[lo : lo + _SLICE].T + bias[lo : lo + _SLICE]  # [S, slice]
+        both_scores = np.concatenate([best_scores, scores], axis=1)
+        both_items = np.concatenate([best_items, np.broadcast_to(np.arange(lo, lo + scores.shape[1]), scores.shape)], axis=1)
+        keep = np.argpartition(-both_scores, k - 1, axis=1)[:, :k] if both_scores.shape[1] > k else np.arange(both_scores.shape[1])[None].repeat(len(features), 0)
+        best_scores = np.take_along_axis(both_scores, keep, 1)
+        best_items = np.take_along_axis(both_items, keep, 1)
+    return best_items
+
+
+def choose_probe(features: np.ndarray, centres: np.ndarray, cluster_of_top: np.ndarray, target: float) -> tuple[int, float, np.ndarray]:
+    """The fewest probed clusters with mean top-k agreement >= target: (probe, its agreement, the
+    agreement at every probe count 1..C). cluster_of_top int64 [S, k] is each exact top item's cluster."""
+    q = np.concatenate([features, np.ones((len(features), 1), dtype=np.float32)], axis=1)  # [S, D + 1]
+    half = 0.5 * (centres.astype(np.float64) ** 2).sum(axis=1).astype(np.float32)
+    key = q @ centres[:, :-1].T - half  # [S, C]
+    rank = np.empty_like(key, dtype=np.int64)
+    rank[np.arange(len(key))[:, None], np.argsort(-key, axis=1, kind="stable")] = np.arange(key.shape[1])  # cluster -> its rank
+    top_rank = np.take_along_axis(rank, cluster_of_top, 1)  # [S, k]: the rank of each exact top item's cluster
+    k = cluster_of_top.shape[1]
+    found = np.bincount(top_rank.ravel(), minlength=key.shape[1]).cumsum() / (len(key) * k)  # [C]: agreement at probe 1..C
+    probe = int(np.searchsorted(found, target - 1e-9)) + 1
+    probe = min(probe, key.shape[1])
+    return probe, float(found[probe - 1]), found
+
+
+def item_cluster_files(
+    vectors: np.ndarray, bias: np.ndarray, features: np.ndarray, seed: int = 0, target: float = AGREEMENT_TARGET
+) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """The index files and the manifest's `item_clusters` section for output vectors float32 [n, D],
+    bias [n], and calibration features float32 [S, D] (the model's, over visit states)."""
+    t0 = time.perf_counter()
+    n = len(vectors)
+    rng = np.random.default_rng(seed)
+    n_clusters = min(cluster_count(n), n)
+    max_norm = 0.0
+    for lo in range(0, n, _SLICE):
+        v = vectors[lo : lo + _SLICE].astype(np.float64)
+        max_norm = max(max_norm, float(np.sqrt((v**2).sum(axis=1) + bias[lo : lo + _SLICE].astype(np.float64) ** 2).max()))
+    sample = np.sort(rng.choice(n, min(n, SAMPLE_PER_CLUSTER * n_clusters), replace=False))
+    centres = kmeans(mapped(vectors[sample], bias[sample], max_norm), n_clusters, rng)
+    assign = np.empty(n, dtype=np.int64)
+    for lo in range(0, n, _SLICE):
+        assign[lo : lo + _SLICE] = nearest(mapped(vectors[lo : lo + _SLICE], bias[lo : lo + _SLICE], max_norm), centres)
+    order = np.argsort(assign, kind="stable")  # [n] items, cluster by cluster
+    offsets = np.concatenate([[0], np.cumsum(np.bincount(assign, minlength=n_clusters))]).astype(np.int64)
+    rows = np.empty((n, vectors.shape[1] + 1), dtype=np.float32)
+    for lo in range(0, n, _SLICE):
+        part = order[lo : lo + _SLICE]
+        rows[lo : lo + len(part), :-1] = vectors[part]
+        rows[lo : lo + len(part), -1] = bias[part]
+    top = exact_top(features, vectors, bias)
+    probe, agreement, _ = choose_probe(features, centres, assign[top], target)
+    files = {CLUSTER_CENTRES: centres, CLUSTER_OFFSETS: offsets, CLUSTER_ITEMS: order.astype(np.int64), CLUSTER_VECTORS: rows}
+    section = item_clusters_manifest(n_clusters, probe, agreement, len(features))
+    section["build_s"] = round(time.perf_counter() - t0, 2)
+    return files, section

@@ -1,0 +1,110 @@
+"""One GRU step with approximate top-N from the clustered item index (service/artifacts/item_clusters.py).
+
+    x = embedding[items]                        numpy, rows of a read-only memory map
+    next_hidden, f = features.onnx(x, hidden)   ONNX Runtime, the GRU without item tables
+    q = [f, 1]                                  the bias is the last coordinate of each row
+    rank clusters by q . c - |c|^2 / 2          numpy, [B, C]: the nearest centres first
+    score the members of the best `probe`       numpy, float32, exact: contiguous slices of
+      clusters (more when they hold fewer        the cluster-ordered vectors, one product each
+      than top_n items), keep the top_n
+
+Every score an answer carries is exact; what can differ from exact scoring is only which items
+compete: an item in a cluster that was not probed is never seen. The pages of the probed slices are
+the OS's page cache, shared by every worker. Same call contract as `OnnxStep.run`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from service.artifacts.item_clusters import ItemClusters
+from service.artifacts.item_vectors import ItemVectors
+from service.errors import StepError
+from service.runtime.onnx_step import open_session, ort_errors
+
+
+class ClusterSearch:
+    """Approximate top-N by inner product over the clustered index; numpy only, exact scores."""
+
+    def __init__(self, clusters: ItemClusters) -> None:
+        self.clusters = clusters
+        self.probe = clusters.probe
+        self._sizes = np.diff(clusters.offsets)  # [C] items per cluster
+
+    def top(self, query: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray]:
+        """query float32 [B, D + 1] (features and a last 1 for the bias) -> items int64 [B, top_n],
+        scores float32 [B, top_n], best first."""
+        key = query @ self.clusters.centres.T - self.clusters.centre_half_norms  # [B, C], larger = nearer
+        top_items = np.empty((len(query), top_n), dtype=np.int64)
+        top_scores = np.empty((len(query), top_n), dtype=np.float32)
+        for row in range(len(query)):
+            top_items[row], top_scores[row] = self._row_top(query[row], key[row], top_n)
+        return top_items, top_scores
+
+    def _probed(self, key: np.ndarray, top_n: int) -> np.ndarray:
+        """The clusters to score for one query: the `probe` nearest, or more while they hold fewer than top_n items."""
+        probe = self.probe
+        if probe < len(key):
+            nearest = np.argpartition(-key, probe - 1)[:probe]
+            if self._sizes[nearest].sum() >= top_n:
+                return nearest
+        ranked = np.argsort(-key, kind="stable")
+        enough = int(np.searchsorted(np.cumsum(self._sizes[ranked]), top_n)) + 1
+        return ranked[: max(probe, enough)]
+
+    def _row_top(self, q: np.ndarray, key: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray]:
+        clusters = self._probed(key, top_n)
+        offsets, vectors = self.clusters.offsets, self.clusters.vectors
+        starts, ends = offsets[clusters], offsets[clusters + 1]  # [P] row ranges of the probed clusters
+        scores = np.concatenate([vectors[a:b] @ q for a, b in zip(starts.tolist(), ends.tolist())])  # [m], exact float32
+        ends_cum = np.cumsum(ends - starts)  # [P] where each cluster's scores end in `scores`
+        best = np.argpartition(-scores, top_n - 1)[:top_n] if top_n < len(scores) else np.arange(len(scores))
+        best = best[np.argsort(-scores[best], kind="stable")]
+        part = np.searchsorted(ends_cum, best, side="right")  # which probed cluster each position is in
+        rows = starts[part] + best - (ends_cum[part] - (ends - starts)[part])
+        return self.clusters.items[rows], scores[best]
+
+
+class ClusteredStep:
+    """`OnnxStep`'s `run` for an artifact with item vectors and the clustered index."""
+
+    scoring = "clustered"
+
+    def __init__(self, tables: ItemVectors, clusters: ItemClusters, threads: int = 1) -> None:
+        if clusters.n_items != tables.n_items or clusters.vectors.shape[1] != tables.vectors.shape[1] + 1:
+            raise StepError(f"the clustered index ({clusters.vectors.shape}) does not fit the item vectors ({tables.vectors.shape})")
+        self.path = tables.feature_graph
+        self.tables = tables
+        self.search = ClusterSearch(clusters)
+        self._features = open_session(tables.feature_graph, threads)
+        hidden_shape = {i.name: i.shape for i in self._features.get_inputs()}["hidden"]  # [L, batch, H]
+        self.layers, self.hidden_size, self.n_items = int(hidden_shape[0]), int(hidden_shape[2]), tables.n_items
+        self._dim = tables.vectors.shape[1]
+
+    def close(self) -> None:
+        self._features = None
+
+    def zero_hidden(self, batch_size: int) -> np.ndarray:
+        return np.zeros((self.layers, batch_size, self.hidden_size), dtype=np.float32)
+
+    def run(self, items: np.ndarray, hidden: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """items int64 [B], hidden float32 [L, B, H] -> next_hidden [L, B, H], top_items int64 [B, top_n],
+        top_scores float32 [B, top_n] (descending, exact fp32 scores)."""
+        if self._features is None:
+            raise StepError(f"{self.path}: the step was closed")
+        if not isinstance(top_n, (int, np.integer)) or isinstance(top_n, bool) or not 1 <= top_n <= self.n_items:
+            raise StepError(f"top_n must be an integer from 1 to {self.n_items}, got {top_n!r}")
+        if not isinstance(items, np.ndarray) or items.size == 0 or items.ndim != 1:
+            raise StepError(f"{self.path}: a step needs items int64 [B] with B >= 1")
+        if items.min() < 0 or items.max() >= self.n_items:
+            raise StepError(f"{self.path}: item indices must be from 0 to {self.n_items - 1}")
+        x = np.ascontiguousarray(self.tables.embedding[items])  # [B, E]
+        try:
+            next_hidden, features = self._features.run(None, {"x": x, "hidden": hidden})  # [L, B, H], [B, D]
+        except ort_errors() as exc:
+            raise StepError(f"{self.path}: step failed ({' '.join(str(exc).split())})") from exc
+        query = np.empty((len(items), self._dim + 1), dtype=np.float32)  # [B, D + 1]
+        query[:, : self._dim] = features
+        query[:, self._dim] = 1.0
+        top_items, top_scores = self.search.top(query, int(top_n))
+        return next_hidden, top_items, top_scores
