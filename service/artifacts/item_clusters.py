@@ -1,9 +1,10 @@
 """Optional artifact files for approximate top-N over large catalogues: the items in clusters.
 
 An inverted-file index (Sivic & Zisserman 2003; Jegou et al., IEEE TPAMI 2011) over the output
-vectors. The export groups the items by k-means, and a click scores the cluster centres first, then
-exactly, in float32, only the members of the `probe` best clusters: at a million items and 1,024
-clusters of about a thousand, probing 32 reads 3% of the vectors. The service uses these files
+vectors. The export sets apart a head (the 2% of items with the largest vectors, scored on every
+click) and groups the other items by k-means; a click scores the cluster centres first, then
+exactly, in float32, the head and the members of the `probe` best clusters: at a million items,
+the 20,000-item head and 32 of 1,024 clusters read 5% of the vectors. The service uses these files
 together with `features.onnx` and `embedding.npy` (service/artifacts/item_vectors.py).
 
 The score is an inner product with a bias, s = f . v + b = [f, 1] . [v, b]. K-means groups points
@@ -13,12 +14,13 @@ largest inner product is the nearest point (Bachrach et al., RecSys 2014). A clu
 query is its centre's distance in that space: q . c - |c|^2 / 2, larger first.
 
     cluster_centres.npy    float32 [C, D + 2], centres in the mapped space
-    cluster_offsets.npy    int64 [C + 1], cluster c holds rows offsets[c] .. offsets[c + 1] - 1
+    cluster_offsets.npy    int64 [C + 1], cluster c holds rows offsets[c] .. offsets[c + 1] - 1;
+                           rows 0 .. offsets[0] - 1 are the head
     cluster_items.npy      int64 [n_items], the item index of each row
-    cluster_vectors.npy    float32 [n_items, D + 1], rows [v, b] in cluster order (contiguous per cluster)
+    cluster_vectors.npy    float32 [n_items, D + 1], rows [v, b]: the head, then cluster by cluster
 
-The manifest's `item_clusters` section holds the cluster count, `probe` (clusters scored per
-click) and the agreement the export measured for it: the mean share of the exact top 20 that the
+The manifest's `item_clusters` section holds the cluster count, the head's size, `probe`
+(clusters scored per click) and the agreement the export measured for it: the mean share of the exact top 20 that the
 probed clusters hold, over visit states of the model itself. Every file is in the checksums.
 numpy only.
 """
@@ -46,11 +48,15 @@ AGREEMENT_TOP = 20  # the agreement in the manifest is over the top 20, the list
 class ItemClusters:
     centres: np.ndarray  # float32 [C, D + 1]: the centres' first D + 1 coordinates (the query's last is 0)
     centre_half_norms: np.ndarray  # float32 [C], |c|^2 / 2 over all D + 2 coordinates
-    offsets: np.ndarray  # int64 [C + 1]
+    offsets: np.ndarray  # int64 [C + 1]; offsets[0] = the head's rows
     items: np.ndarray  # int64 [n_items], read-only memory map
     vectors: np.ndarray  # float32 [n_items, D + 1], read-only memory map
     probe: int  # clusters scored per click
     agreement: float  # measured by the export at `probe`
+
+    @property
+    def head(self) -> int:
+        return int(self.offsets[0])
 
     @property
     def n_clusters(self) -> int:
@@ -61,11 +67,12 @@ class ItemClusters:
         return self.vectors.shape[0]
 
 
-def item_clusters_manifest(n_clusters: int, probe: int, agreement: float, states: int) -> dict[str, Any]:
+def item_clusters_manifest(n_clusters: int, probe: int, agreement: float, states: int, head: int) -> dict[str, Any]:
     """The manifest's `item_clusters` section, written by the export."""
     return {
         "format": ITEM_CLUSTERS_FORMAT,
         "clusters": int(n_clusters),
+        "head": int(head),
         "probe": int(probe),
         "agreement_top20": round(float(agreement), 4),
         "agreement_states": int(states),
@@ -100,8 +107,8 @@ def load_item_clusters(path: Path, manifest: dict[str, Any], n_items: int, probe
     items = array(CLUSTER_ITEMS, np.int64, 1)
     vectors = array(CLUSTER_VECTORS, np.float32, 2)
     n_clusters = centres.shape[0]
-    if offsets.shape != (n_clusters + 1,) or offsets[0] != 0 or offsets[-1] != n_items or np.any(np.diff(offsets) < 0):
-        raise ArtifactError(f"{path / CLUSTER_OFFSETS}: not {n_clusters + 1} rising offsets from 0 to {n_items}")
+    if offsets.shape != (n_clusters + 1,) or not 0 <= offsets[0] < n_items or offsets[-1] != n_items or np.any(np.diff(offsets) < 0):
+        raise ArtifactError(f"{path / CLUSTER_OFFSETS}: not {n_clusters + 1} rising offsets from the head's end to {n_items}")
     if items.shape != (n_items,) or vectors.shape[0] != n_items or centres.shape[1] != vectors.shape[1] + 1:
         raise ArtifactError(
             f"{path}: cluster files do not fit {n_items} items (items {items.shape}, vectors {vectors.shape}, centres {centres.shape})"

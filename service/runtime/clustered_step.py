@@ -4,9 +4,9 @@
     next_hidden, f = features.onnx(x, hidden)   ONNX Runtime, the GRU without item tables
     q = [f, 1]                                  the bias is the last coordinate of each row
     rank clusters by q . c - |c|^2 / 2          numpy, [B, C]: the nearest centres first
-    score the members of the best `probe`       numpy, float32, exact: contiguous slices of
-      clusters (more when they hold fewer        the cluster-ordered vectors, one product each
-      than top_n items), keep the top_n
+    score the head and the members of the       numpy, float32, exact: contiguous slices of
+      best `probe` clusters (more when they      the cluster-ordered vectors, one product each
+      hold fewer than top_n items), keep top_n
 
 Every score an answer carries is exact; what can differ from exact scoring is only which items
 compete: an item in a cluster that was not probed is never seen. The pages of the probed slices are
@@ -53,9 +53,11 @@ class ClusterSearch:
         return ranked[: max(probe, enough)]
 
     def _row_top(self, q: np.ndarray, key: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray]:
-        clusters = self._probed(key, top_n)
+        clusters = self._probed(key, max(1, top_n - self.clusters.head))
         offsets, vectors = self.clusters.offsets, self.clusters.vectors
         starts, ends = offsets[clusters], offsets[clusters + 1]  # [P] row ranges of the probed clusters
+        if self.clusters.head:
+            starts, ends = np.concatenate([[0], starts]), np.concatenate([[self.clusters.head], ends])
         scores = np.concatenate([vectors[a:b] @ q for a, b in zip(starts.tolist(), ends.tolist())])  # [m], exact float32
         ends_cum = np.cumsum(ends - starts)  # [P] where each cluster's scores end in `scores`
         best = np.argpartition(-scores, top_n - 1)[:top_n] if top_n < len(scores) else np.arange(len(scores))
