@@ -117,7 +117,8 @@ class Settings(BaseSettings):
     # (approximate candidates from reduced-precision vectors, re-scored exactly; needs an artifact
     # with item vectors), clustered (exact scores of the items in the nearest clusters of the
     # artifact's clustered index), auto (from AUTO_REDUCED_FROM items on: clustered when the
-    # export measured >= 99% top-20 agreement for it, else int8; below: exact).
+    # export measured >= 99% top-20 agreement for it reading <= 25% of the items, else int8;
+    # below: exact).
     scoring: Literal["auto", "exact", "fp16", "int8", "clustered"] = "auto"
     probe_clusters: int = Field(0, ge=0, le=1_000_000)  # clustered: clusters scored per click; 0 = the artifact's own choice
     model_poll_s: float = Field(0.5, ge=0.05, le=10.0)  # how often workers read the shared active-model choice

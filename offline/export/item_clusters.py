@@ -68,8 +68,9 @@ def nearest(points: np.ndarray, centres: np.ndarray) -> np.ndarray:
     """Index of each point's nearest centre (Euclidean): argmax of p . c - |c|^2 / 2, int64 [m]."""
     half = 0.5 * (centres.astype(np.float64) ** 2).sum(axis=1).astype(np.float32)
     out = np.empty(len(points), dtype=np.int64)
-    for lo in range(0, len(points), _SLICE):
-        out[lo : lo + _SLICE] = np.argmax(points[lo : lo + _SLICE] @ centres.T - half, axis=1)
+    step = 8192  # points at a time: a [8192, C] distance block (32 MB at 1,024 clusters)
+    for lo in range(0, len(points), step):
+        out[lo : lo + step] = np.argmax(points[lo : lo + step] @ centres.T - half, axis=1)
     return out
 
 
@@ -91,17 +92,18 @@ def kmeans(
     return centres
 
 
-def exact_top(features: np.ndarray, vectors: np.ndarray, bias: np.ndarray, k: int = AGREEMENT_TOP) -> np.ndarray:
-    """The exact top-k item indices of each feature row (order within the k not kept): int64 [S, k]."""
+def exact_top(features: np.ndarray, vectors: np.ndarray, bias: np.ndarray, k: int = AGREEMENT_TOP, step: int = 8192) -> np.ndarray:
+    """The exact top-k item indices of each feature row (order within the k not kept): int64 [S, k].
+    Slices of `step` items keep the temporaries at [S, k + step] (16 MB at S = 512)."""
     best_items = np.empty((len(features), 0), dtype=np.int64)
     best_scores = np.empty((len(features), 0), dtype=np.float32)
-    for lo in range(0, len(vectors), _SLICE):
-        scores = features @ vectors[lo : lo + _SLICE].T + bias[lo : lo + _SLICE]  # [S, slice]
-        both_scores = np.concatenate([best_scores, scores], axis=1)
-        both_items = np.concatenate([best_items, np.broadcast_to(np.arange(lo, lo + scores.shape[1]), scores.shape)], axis=1)
-        keep = np.argpartition(-both_scores, k - 1, axis=1)[:, :k] if both_scores.shape[1] > k else np.arange(both_scores.shape[1])[None].repeat(len(features), 0)
-        best_scores = np.take_along_axis(both_scores, keep, 1)
-        best_items = np.take_along_axis(both_items, keep, 1)
+    for lo in range(0, len(vectors), step):
+        scores = np.concatenate([best_scores, features @ vectors[lo : lo + step].T + bias[lo : lo + step]], axis=1)  # [S, kept + slice]
+        keep = np.argpartition(-scores, k - 1, axis=1)[:, :k] if scores.shape[1] > k else np.broadcast_to(np.arange(scores.shape[1]), scores.shape)
+        kept = best_items.shape[1]
+        previous = np.take_along_axis(best_items, np.minimum(keep, max(kept - 1, 0)), 1) if kept else keep
+        best_items = np.where(keep < kept, previous, lo + keep - kept)
+        best_scores = np.take_along_axis(scores, keep, 1)
     return best_items
 
 

@@ -84,7 +84,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         f"{AUTO_ALL_UP_TO:,} items, else {AUTO_SAMPLED:,} (default {d.negatives})")
     g.add_argument("--negative-skew", type=_nonnegative_float, default=d.negative_skew, metavar="A",
                    help=f"negatives drawn by popularity**A: 0 uniform, 1 popularity (default {d.negative_skew})")
-    g.add_argument("--score_penalty", type=_nonnegative_float, default=d.score_penalty, metavar="L",
+    g.add_argument("--score-penalty", type=_nonnegative_float, default=d.score_penalty, metavar="L",
                    help=f"BPR-max score regularisation (default {d.score_penalty})")
     g.add_argument("--logq-correction", action="store_true",
                    help="subtract log(sampling probability) from sampled candidates' scores before the loss "

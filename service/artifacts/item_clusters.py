@@ -44,6 +44,15 @@ ITEM_CLUSTERS_FORMAT = "cairn-item-clusters/1"
 AGREEMENT_TOP = 20  # the agreement in the manifest is over the top 20, the list a page shows
 
 
+@dataclass(frozen=True)
+class ClusterFit:
+    """What the export measured for its probe count: the top-20 agreement with exact scoring, and
+    the share of the item rows a click reads (head + probe clusters of average size)."""
+
+    agreement: float
+    read_share: float
+
+
 @dataclass
 class ItemClusters:
     centres: np.ndarray  # float32 [C, D + 1]: the centres' first D + 1 coordinates (the query's last is 0)
@@ -52,7 +61,7 @@ class ItemClusters:
     items: np.ndarray  # int64 [n_items], read-only memory map
     vectors: np.ndarray  # float32 [n_items, D + 1], read-only memory map
     probe: int  # clusters scored per click
-    agreement: float  # measured by the export at `probe`
+    fit: ClusterFit  # measured by the export at its own probe count
 
     @property
     def head(self) -> int:
@@ -124,5 +133,8 @@ def load_item_clusters(path: Path, manifest: dict[str, Any], n_items: int, probe
         items=items,
         vectors=vectors,
         probe=min(probe, n_clusters) if probe > 0 else stored_probe,
-        agreement=float(section.get("agreement_top20", 0.0)),
+        fit=ClusterFit(
+            agreement=float(section.get("agreement_top20", 0.0)),
+            read_share=float(offsets[0] + stored_probe * (n_items - offsets[0]) / n_clusters) / n_items,
+        ),
     )

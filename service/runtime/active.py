@@ -35,7 +35,7 @@ from service.artifacts.format import Artifact, list_artifacts, load_artifact
 from service.config import ARTIFACT_PART, RECOMMENDERS, Settings
 from service.errors import ArtifactError, CairnError, ModelNotReadyError, SettingsError, StepError, StoreError
 from service.runtime.batching import StepBatcher
-from service.artifacts.item_clusters import load_item_clusters
+from service.artifacts.item_clusters import ClusterFit, load_item_clusters
 from service.artifacts.item_vectors import load_item_vectors
 from service.runtime.clustered_step import ClusteredStep
 from service.runtime.onnx_step import OnnxStep
@@ -143,22 +143,24 @@ class LoadedModel:
 # the clustered index several times faster at both.
 AUTO_REDUCED_FROM = 100_000
 # `auto` takes the clustered index only when the export measured at least this top-20 agreement
-# with exact scoring at its probe count (random weights, with no structure to cluster, do not).
+# with exact scoring at its probe count (random weights, with no structure to cluster, do not) and
+# that probe count reads at most this share of the item rows (beyond it one exact pass is faster).
 AUTO_CLUSTERED_AGREEMENT = 0.99
+AUTO_CLUSTERED_MAX_SHARE = 0.25
 
 
-def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters_agreement: float | None = None) -> str:
+def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters: ClusterFit | None = None) -> str:
     """What answers: `setting` when the artifact can do it, else exact (logged by the caller).
-    `clusters_agreement`: the artifact's clustered index's measured agreement, None without one."""
+    `clusters`: what the export measured for the artifact's clustered index, None without one."""
     if setting == "auto":
         if not has_vectors or n_items < AUTO_REDUCED_FROM:
             return "exact"
-        if clusters_agreement is not None and clusters_agreement >= AUTO_CLUSTERED_AGREEMENT:
+        if clusters is not None and clusters.agreement >= AUTO_CLUSTERED_AGREEMENT and clusters.read_share <= AUTO_CLUSTERED_MAX_SHARE:
             return "clustered"
         return "int8"
     if setting in ("fp16", "int8") and not has_vectors:
         return "exact"
-    if setting == "clustered" and (not has_vectors or clusters_agreement is None):
+    if setting == "clustered" and (not has_vectors or clusters is None):
         return "exact"
     return setting
 
@@ -167,10 +169,10 @@ def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0
     """The GRU step of a verified artifact for a scoring setting (exact | fp16 | int8 | clustered |
     auto; see `scoring_path`): the exact step graph, or for the other paths the feature graph over
     memory-mapped item tables (the exact graph with its private copy of the tables is then not
-    opened). `probe` > 0 overrides the clustered index's probe count."""
+    opened). `probe` > 0 overrides the clustered index's probe count (`auto` judges by the export's)."""
     tables = load_item_vectors(artifact.path, artifact.manifest, artifact.n_items)
     clusters = load_item_clusters(artifact.path, artifact.manifest, artifact.n_items, probe) if tables is not None else None
-    path_name = scoring_path(scoring, artifact.n_items, tables is not None, clusters.agreement if clusters is not None else None)
+    path_name = scoring_path(scoring, artifact.n_items, tables is not None, clusters.fit if clusters is not None else None)
     if path_name != scoring and scoring != "auto":
         log.warning("%s has no files for CAIRN_SCORING=%s (exported by an older cairn, or too few items): scoring exactly", artifact.path, scoring)
     if path_name == "exact" or tables is None:

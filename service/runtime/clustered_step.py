@@ -53,16 +53,19 @@ class ClusterSearch:
         return ranked[: max(probe, enough)]
 
     def _row_top(self, q: np.ndarray, key: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray]:
-        clusters = self._probed(key, max(1, top_n - self.clusters.head))
+        clusters = np.sort(self._probed(key, max(1, top_n - self.clusters.head)))
         offsets, vectors = self.clusters.offsets, self.clusters.vectors
-        starts, ends = offsets[clusters], offsets[clusters + 1]  # [P] row ranges of the probed clusters
+        starts, ends = offsets[clusters], offsets[clusters + 1]  # [P] row ranges of the probed clusters, in row order
         if self.clusters.head:
             starts, ends = np.concatenate([[0], starts]), np.concatenate([[self.clusters.head], ends])
+        # Neighbouring ranges become one: fewer, longer products (many, when most clusters are probed).
+        breaks = np.flatnonzero(starts[1:] != ends[:-1]) + 1
+        starts, ends = starts[np.concatenate([[0], breaks])], ends[np.concatenate([breaks - 1, [len(ends) - 1]])]
         scores = np.concatenate([vectors[a:b] @ q for a, b in zip(starts.tolist(), ends.tolist())])  # [m], exact float32
-        ends_cum = np.cumsum(ends - starts)  # [P] where each cluster's scores end in `scores`
+        ends_cum = np.cumsum(ends - starts)  # [R] where each range's scores end in `scores`
         best = np.argpartition(-scores, top_n - 1)[:top_n] if top_n < len(scores) else np.arange(len(scores))
         best = best[np.argsort(-scores[best], kind="stable")]
-        part = np.searchsorted(ends_cum, best, side="right")  # which probed cluster each position is in
+        part = np.searchsorted(ends_cum, best, side="right")  # which range each position is in
         rows = starts[part] + best - (ends_cum[part] - (ends - starts)[part])
         return self.clusters.items[rows], scores[best]
 

@@ -17,10 +17,10 @@ import pytest
 from offline.export.artifact_writer import write_random_artifact
 from offline.export.item_clusters import item_cluster_files
 from service.artifacts.format import load_artifact
-from service.artifacts.item_clusters import CLUSTER_OFFSETS, ITEM_CLUSTER_FILES, load_item_clusters
+from service.artifacts.item_clusters import CLUSTER_OFFSETS, ITEM_CLUSTER_FILES, ClusterFit, load_item_clusters
 from service.artifacts.item_vectors import load_item_vectors
 from service.errors import ArtifactError, StepError
-from service.runtime.active import AUTO_CLUSTERED_AGREEMENT, AUTO_REDUCED_FROM, load_model, scoring_path
+from service.runtime.active import AUTO_CLUSTERED_AGREEMENT, AUTO_CLUSTERED_MAX_SHARE, AUTO_REDUCED_FROM, load_model, scoring_path
 from service.runtime.clustered_step import ClusteredStep, ClusterSearch
 from service.runtime.onnx_step import OnnxStep
 
@@ -132,11 +132,13 @@ def test_the_step_runs_the_gru_and_with_every_cluster_probed_ranks_as_the_exact_
             step.run(bad_items, exact.zero_hidden(len(bad_items)), top_n)
 
 
-def test_scoring_setting_chooses_clustered_only_where_it_was_measured_to_agree(artifact: Path) -> None:
-    assert scoring_path("auto", AUTO_REDUCED_FROM, True, AUTO_CLUSTERED_AGREEMENT) == "clustered"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, True, AUTO_CLUSTERED_AGREEMENT - 0.01) == "int8"  # random weights, say
-    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, True, 1.0) == "exact"
+def test_scoring_setting_chooses_clustered_only_where_it_was_measured_to_agree_and_to_save(artifact: Path) -> None:
+    good = ClusterFit(AUTO_CLUSTERED_AGREEMENT, AUTO_CLUSTERED_MAX_SHARE)
+    assert scoring_path("auto", AUTO_REDUCED_FROM, True, good) == "clustered"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, True, ClusterFit(AUTO_CLUSTERED_AGREEMENT - 0.01, 0.1)) == "int8"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, True, ClusterFit(0.995, 0.8)) == "int8"  # random weights: most clusters probed
+    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, True, good) == "exact"
     assert scoring_path("clustered", 10, True, None) == "exact"  # no index in the artifact
-    assert scoring_path("clustered", 10, True, 0.5) == "clustered"  # asked for: served, whatever its agreement
+    assert scoring_path("clustered", 10, True, ClusterFit(0.5, 1.0)) == "clustered"  # asked for: served, whatever its fit
     model = load_model(artifact, 1, 8, "clustered", probe=2)
     assert model.scoring == "clustered" and model.gru.batcher.step.search.probe == 2
