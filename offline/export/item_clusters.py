@@ -43,8 +43,8 @@ from service.artifacts.item_clusters import (
 AGREEMENT_TARGET = 0.99  # the export picks the fewest clusters that reach this top-20 agreement
 CLUSTERS_FROM = 1_000  # smaller catalogues get no index (the service's `auto` uses one from 100,000 items only)
 HEAD_SHARE = 0.02  # of the items, by largest |[v, b]|: scored on every click (see the docstring)
-SAMPLE_PER_CLUSTER = 64  # k-means trains on this many items per cluster (at most all of them)
-ITERATIONS = 12
+SAMPLE_PER_CLUSTER = 32  # k-means trains on this many items per cluster (at most all of them)
+ITERATIONS = 10
 _SLICE = 65_536  # items handled at a time
 
 
@@ -92,19 +92,25 @@ def kmeans(
     return centres
 
 
-def exact_top(features: np.ndarray, vectors: np.ndarray, bias: np.ndarray, k: int = AGREEMENT_TOP, step: int = 8192) -> np.ndarray:
+def exact_top(features: np.ndarray, vectors: np.ndarray, bias: np.ndarray, k: int = AGREEMENT_TOP, step: int = _SLICE) -> np.ndarray:
     """The exact top-k item indices of each feature row (order within the k not kept): int64 [S, k].
-    Slices of `step` items keep the temporaries at [S, k + step] (16 MB at S = 512)."""
-    best_items = np.empty((len(features), 0), dtype=np.int64)
-    best_scores = np.empty((len(features), 0), dtype=np.float32)
-    for lo in range(0, len(vectors), step):
-        scores = np.concatenate([best_scores, features @ vectors[lo : lo + step].T + bias[lo : lo + step]], axis=1)  # [S, kept + slice]
-        keep = np.argpartition(-scores, k - 1, axis=1)[:, :k] if scores.shape[1] > k else np.broadcast_to(np.arange(scores.shape[1]), scores.shape)
-        kept = best_items.shape[1]
-        previous = np.take_along_axis(best_items, np.minimum(keep, max(kept - 1, 0)), 1) if kept else keep
-        best_items = np.where(keep < kept, previous, lo + keep - kept)
-        best_scores = np.take_along_axis(scores, keep, 1)
-    return best_items
+    Slices of `step` items (torch.topk per slice, then over the kept k + k), so the temporaries stay
+    at [S, step]."""
+    import torch
+
+    f = torch.from_numpy(np.ascontiguousarray(features, dtype=np.float32))
+    best_scores = torch.empty((len(features), 0))
+    best_items = torch.empty((len(features), 0), dtype=torch.int64)
+    with torch.no_grad():
+        for lo in range(0, len(vectors), step):
+            v = torch.from_numpy(np.ascontiguousarray(vectors[lo : lo + step], dtype=np.float32))
+            scores = torch.addmm(torch.from_numpy(np.ascontiguousarray(bias[lo : lo + step], dtype=np.float32)), f, v.T)  # [S, slice]
+            top = torch.topk(scores, min(k, scores.shape[1]), dim=1)
+            both_scores = torch.cat([best_scores, top.values], dim=1)
+            both_items = torch.cat([best_items, top.indices + lo], dim=1)
+            keep = torch.topk(both_scores, min(k, both_scores.shape[1]), dim=1).indices
+            best_scores, best_items = both_scores.gather(1, keep), both_items.gather(1, keep)
+    return best_items.numpy()
 
 
 def choose_probe(features: np.ndarray, centres: np.ndarray, cluster_of_top: np.ndarray, target: float) -> tuple[int, float, np.ndarray]:
@@ -124,9 +130,19 @@ def choose_probe(features: np.ndarray, centres: np.ndarray, cluster_of_top: np.n
     return probe, float(found[probe - 1]), found
 
 
+def cluster_rows(vectors: np.ndarray, bias: np.ndarray, order: np.ndarray) -> np.ndarray:
+    """float32 [n, D + 1]: row r is [v, b] of item order[r]."""
+    rows = np.empty((len(order), vectors.shape[1] + 1), dtype=np.float32)
+    for lo in range(0, len(order), _SLICE):
+        part = order[lo : lo + _SLICE]
+        rows[lo : lo + len(part), :-1] = vectors[part]
+        rows[lo : lo + len(part), -1] = bias[part]
+    return rows
+
+
 def item_cluster_files(
     vectors: np.ndarray, bias: np.ndarray, features: np.ndarray, seed: int = 0, target: float = AGREEMENT_TARGET, head_share: float = HEAD_SHARE
-) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+) -> tuple[dict[str, Any], dict[str, Any]]:
     """The index files and the manifest's `item_clusters` section for output vectors float32 [n, D],
     bias [n], and calibration features float32 [S, D] (the model's, over visit states)."""
     t0 = time.perf_counter()
@@ -150,14 +166,12 @@ def item_cluster_files(
     in_clusters = rest[np.argsort(assign[rest], kind="stable")]  # cluster by cluster
     order = np.concatenate([head, in_clusters])  # [n]: the head, then the clusters
     offsets = n_head + np.concatenate([[0], np.cumsum(np.bincount(assign[rest], minlength=n_clusters))]).astype(np.int64)
-    rows = np.empty((n, vectors.shape[1] + 1), dtype=np.float32)
-    for lo in range(0, n, _SLICE):
-        part = order[lo : lo + _SLICE]
-        rows[lo : lo + len(part), :-1] = vectors[part]
-        rows[lo : lo + len(part), -1] = bias[part]
     top = exact_top(features, vectors, bias)
     probe, agreement, _ = choose_probe(features, centres, assign[top], target)
-    files = {CLUSTER_CENTRES: centres, CLUSTER_OFFSETS: offsets, CLUSTER_ITEMS: order.astype(np.int64), CLUSTER_VECTORS: rows}
+    files = {
+        CLUSTER_CENTRES: centres, CLUSTER_OFFSETS: offsets, CLUSTER_ITEMS: order.astype(np.int64),
+        CLUSTER_VECTORS: lambda: cluster_rows(vectors, bias, order),  # made when written: 400 MB at a million items
+    }  # fmt: skip
     section = item_clusters_manifest(n_clusters, probe, agreement, len(features), n_head)
     section["build_s"] = round(time.perf_counter() - t0, 2)
     return files, section

@@ -56,6 +56,7 @@ from offline.model.gru import NextClickGRU
 OPSET = 17
 IR_VERSION = 8
 GRAPH_FORMAT = "cairn-gru-step/1"  # stored in the graph's metadata
+_QUANTISE_SLICE = 65_536  # items quantised at a time
 
 
 @dataclass
@@ -348,7 +349,17 @@ def build_candidate_graph(precision: str, dim: int) -> bytes:
     return _finish(graph, f"{CANDIDATE_GRAPH_FORMAT}-{precision}").SerializeToString()
 
 
-def quantise_int8(vectors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def int8_scales(vectors: np.ndarray) -> np.ndarray:
+    """float32 [n]: scale_j = max_d |v_jd| / INT8_LEVELS (1 for an all-zero vector); see quantise_int8."""
+    scales = np.empty(len(vectors), dtype=np.float32)
+    for lo in range(0, len(vectors), _QUANTISE_SLICE):
+        s = np.abs(vectors[lo : lo + _QUANTISE_SLICE]).max(axis=1) / INT8_LEVELS
+        s[s == 0] = 1.0
+        scales[lo : lo + _QUANTISE_SLICE] = s
+    return scales
+
+
+def quantise_int8(vectors: np.ndarray, scales: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """float32 [n, D] -> int8 codes [D, n] (transposed for the MatMul), float32 scales [n].
 
     Symmetric per item (common practice) on 7 bits (see build_candidate_graph for why):
@@ -356,33 +367,28 @@ def quantise_int8(vectors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     so |v_jd - scale_j code_jd| <= scale_j / 2. An all-zero vector gets scale 1 and codes 0.
     Done in slices of items so a million-item table needs no full-size float temporaries.
     """
-    n = vectors.shape[0]
-    codes = np.empty((vectors.shape[1], n), dtype=np.int8)
-    scales = np.empty(n, dtype=np.float32)
-    step = 65_536
-    for lo in range(0, n, step):
-        v = vectors[lo : lo + step]
-        s = np.abs(v).max(axis=1) / INT8_LEVELS
-        s[s == 0] = 1.0
-        scales[lo : lo + step] = s
-        codes[:, lo : lo + step] = np.clip(np.rint(v / s[:, None]), -INT8_LEVELS, INT8_LEVELS).astype(np.int8).T
+    scales = int8_scales(vectors) if scales is None else scales
+    codes = np.empty((vectors.shape[1], len(vectors)), dtype=np.int8)
+    for lo in range(0, len(vectors), _QUANTISE_SLICE):
+        v = vectors[lo : lo + _QUANTISE_SLICE]
+        s = scales[lo : lo + _QUANTISE_SLICE]
+        codes[:, lo : lo + _QUANTISE_SLICE] = np.clip(np.rint(v / s[:, None]), -INT8_LEVELS, INT8_LEVELS).astype(np.int8).T
     return codes, scales
 
 
 def item_vector_files(w: _StepWeights) -> dict[str, Any]:
-    """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py)."""
-    codes, scales = quantise_int8(w.output)
+    """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py).
+    The two reduced copies are made when written (callables), so only one exists at a time."""
+    scales = int8_scales(w.output)
     dim = w.output.shape[1]
     return {
         FEATURE_GRAPH: build_feature_graph(w),
         EMBEDDING: w.embedding,
         ITEM_VECTORS: w.output,
         ITEM_BIAS: w.output_bias,
-        ITEM_VECTORS_FP16: np.ascontiguousarray(w.output.astype(np.float16).T),  # convert, then transpose half the bytes
-        ITEM_VECTORS_INT8: codes,
+        ITEM_VECTORS_FP16: lambda: np.ascontiguousarray(w.output.astype(np.float16).T),  # convert, then transpose half the bytes
+        ITEM_VECTORS_INT8: lambda: quantise_int8(w.output, scales)[0],
         ITEM_SCALES: scales,
         CANDIDATES_FP16: build_candidate_graph("fp16", dim),
         CANDIDATES_INT8: build_candidate_graph("int8", dim),
     }
-
-

@@ -34,6 +34,7 @@ import os
 import re
 import shutil
 import tempfile
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -43,6 +44,8 @@ import numpy as np
 
 from service.errors import ArtifactError
 from service.runtime.session_knn import WEIGHTINGS, SessionIndex
+
+FileContent = bytes | np.ndarray | Callable[[], bytes | np.ndarray]  # an optional file's content, or how to make it
 
 FORMAT = "cairn-artifact/1"
 MANIFEST = "manifest.json"
@@ -140,12 +143,13 @@ def write_artifact(
     overwrite: bool = False,
     item_names: dict[str, str] | None = None,
     session_index: SessionIndex | None = None,
-    extra_files: dict[str, bytes | np.ndarray] | None = None,
+    extra_files: dict[str, FileContent] | None = None,
 ) -> Path:
     """Write one artifact atomically; returns its folder. `item_names` (id -> display name, for
     items of `item_ids` only) adds the optional item_names.json. With `session_index`, manifest_fields
     must hold its parameters as `session_knn` ({"neighbours", "candidates", "weighting"}).
-    `extra_files`: more optional files (bytes as they are, arrays as .npy), covered by the
+    `extra_files`: more optional files (bytes as they are, arrays as .npy; a callable returning
+    either is called when its file is written, so a large table exists only while it is written), covered by the
     manifest's checksums like the required ones."""
     _check_name(name, "name")
     _check_name(version, "version")
@@ -198,9 +202,11 @@ def write_artifact(
     return target
 
 
-def _write_extra(path: Path, content: bytes | np.ndarray) -> None:
+def _write_extra(path: Path, content: FileContent) -> None:
     if path.name in (*REQUIRED_FILES, MANIFEST) or path.name != Path(path.name).name:
         raise ArtifactError(f"optional artifact file {path.name!r} would overwrite a required one")
+    if callable(content):
+        content = content()
     if isinstance(content, bytes):
         path.write_bytes(content)
     else:

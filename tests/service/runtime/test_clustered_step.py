@@ -43,7 +43,7 @@ def structured(n: int, d: int, groups: int, seed: int) -> tuple[np.ndarray, np.n
 def write_index(folder: Path, vectors: np.ndarray, bias: np.ndarray, features: np.ndarray) -> dict:
     files, section = item_cluster_files(vectors, bias, features)
     for name, array in files.items():
-        np.save(folder / name, array)
+        np.save(folder / name, array() if callable(array) else array)
     return {"item_clusters": section, "files": {name: "-" for name in files}}
 
 
