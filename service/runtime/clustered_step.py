@@ -44,10 +44,12 @@ class ClusterSearch:
         """query float32 [B, D + 1] (features and a last 1 for the bias) -> items int64 [B, top_n],
         scores float32 [B, top_n], best first."""
         key = query @ self.clusters.centres.T - self.clusters.centre_half_norms  # [B, C], larger = nearer
+        # The head is every row's: one product for the batch reads it once, not once per row.
+        head_scores = np.ascontiguousarray((self.clusters.vectors[: self.clusters.head] @ query.T).T)  # [B, head]
         top_items = np.empty((len(query), top_n), dtype=np.int64)
         top_scores = np.empty((len(query), top_n), dtype=np.float32)
         for row in range(len(query)):
-            top_items[row], top_scores[row] = self._row_top(query[row], key[row], top_n)
+            top_items[row], top_scores[row] = self._row_top(query[row], key[row], top_n, head_scores[row])
         return top_items, top_scores
 
     def _probed(self, key: np.ndarray, top_n: int) -> np.ndarray:
@@ -61,16 +63,16 @@ class ClusterSearch:
         enough = int(np.searchsorted(np.cumsum(self._sizes[ranked]), top_n)) + 1
         return ranked[: max(probe, enough)]
 
-    def _row_top(self, q: np.ndarray, key: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray]:
-        clusters = np.sort(self._probed(key, max(1, top_n - self.clusters.head)))
+    def _row_top(self, q: np.ndarray, key: np.ndarray, top_n: int, head_scores: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        head = self.clusters.head
+        clusters = np.sort(self._probed(key, max(1, top_n - head)))
         offsets, vectors = self.clusters.offsets, self.clusters.vectors
         starts, ends = offsets[clusters], offsets[clusters + 1]  # [P] row ranges of the probed clusters, in row order
-        if self.clusters.head:
-            starts, ends = np.concatenate([[0], starts]), np.concatenate([[self.clusters.head], ends])
         # Neighbouring ranges become one: fewer, longer products (many, when most clusters are probed).
         breaks = np.flatnonzero(starts[1:] != ends[:-1]) + 1
         starts, ends = starts[np.concatenate([[0], breaks])], ends[np.concatenate([breaks - 1, [len(ends) - 1]])]
-        scores = np.concatenate([vectors[a:b] @ q for a, b in zip(starts.tolist(), ends.tolist())])  # [m], exact float32
+        scores = np.concatenate([head_scores, *(vectors[a:b] @ q for a, b in zip(starts.tolist(), ends.tolist()))])  # [m], exact float32
+        starts, ends = np.concatenate([[0], starts]), np.concatenate([[head], ends])  # the head's range first (empty without one)
         ends_cum = np.cumsum(ends - starts)  # [R] where each range's scores end in `scores`
         best = np.argpartition(-scores, top_n - 1)[:top_n] if top_n < len(scores) else np.arange(len(scores))
         best = best[np.argsort(-scores[best], kind="stable")]

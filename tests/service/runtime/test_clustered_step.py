@@ -69,6 +69,12 @@ def test_search_agrees_with_exact_argpartition_and_returns_exact_scores(tmp_path
     want = np.einsum("bkd,bd->bk", vectors[items].astype(np.float64), f.astype(np.float64)) + bias[items]
     np.testing.assert_allclose(scores, want, atol=1e-4)  # exact float32 scores, not approximations
     assert np.all(np.diff(scores, axis=1) <= 0)
+    # A batch ranks each row as it would alone (the head's scores are shared by the batch).
+    search = ClusterSearch(clusters)
+    for row in range(5):
+        alone_items, alone_scores = search.top(with_bias_column(f[row : row + 1]), TOP)
+        assert alone_items[0].tolist() == items[row].tolist()
+        np.testing.assert_allclose(alone_scores[0], scores[row], rtol=1e-6)
 
 
 def test_probing_every_cluster_is_exact_scoring(tmp_path: Path) -> None:
