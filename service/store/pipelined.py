@@ -72,6 +72,8 @@ class PipelinedConnection:
         """Send one packed command (`pack`) and return its reply; error replies are raised."""
         if self._writer is None:
             await self._connect()
+            if self._writer is None:  # lost again before this caller resumed
+                raise RedisConnectionError("connection closed by the server")
         loop = asyncio.get_running_loop()
         reply = loop.create_future()
         now = loop.time()
@@ -151,9 +153,7 @@ class PipelinedConnection:
                     if not future.done():  # done: the caller gave up; the reply is dropped
                         future.set_result(reply)
                     reply = parser.gets()
-        except asyncio.CancelledError:
-            raise
-        except (OSError, hiredis.ProtocolError, RedisConnectionError) as exc:
+        except Exception as exc:  # OSError, a protocol error, the closed stream: no reply can be trusted now
             if self._writer is writer:
                 self._fail(exc if isinstance(exc, RedisConnectionError) else RedisConnectionError(f"{type(exc).__name__}: {exc}"))
 
