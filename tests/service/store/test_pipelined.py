@@ -64,7 +64,7 @@ def test_concurrent_clicks_of_one_visit_lose_none(redis_url):
             rounds = await asyncio.gather(*(click(stores[n % 2], "visit", item) for n, item in enumerate(items)))
             state = decode(await stores[0].load("visit"))
             assert state.sequence == len(items)  # every click applied once
-            assert len(state.items) == 20 and len(set(state.items)) == 20 and set(state.items) <= set(items)  # the cap holds
+            assert len(state.items) == 20 and len(set(state.items)) == 20 and set(state.items) <= set(items)  # 20 kept (this helper's cap), each a distinct click of the visit
             assert max(rounds) > 1  # they did race: some lost a round and retried
         finally:
             for store in stores:
