@@ -167,10 +167,12 @@ class Visits:
                 recent = self.recent
                 for attempt in range(MAX_ATTEMPTS):
                     # Only the first round may trust the recent write: a lost check-and-set means it is stale.
-                    raw = recent.get(session_id) if recent is not None and attempt == 0 else None
-                    if raw is None:
-                        raw = await self.store.load(session_id, deadline, timing)
-                    state = self._decode(raw)
+                    hit = recent.lookup(session_id) if recent is not None and attempt == 0 else None
+                    if hit is None or hit[1] is None:
+                        raw = hit[0] if hit is not None else await self.store.load(session_id, deadline, timing)
+                        state = self._decode(raw)
+                    else:
+                        raw, state = hit
                     model, choice = active.current
                     kind = RecommenderKind(choice.recommender)
                     if event_id is not None and state is not None and event_id in state.event_ids:
@@ -182,7 +184,7 @@ class Visits:
                     if recent is None:
                         if await self.store.save(session_id, value, token_of(raw), deadline, timing):
                             return answer
-                    elif await self._save_remembered(recent, session_id, value, token_of(raw), deadline, timing):
+                    elif await self._save_remembered(recent, session_id, value, new_state, token_of(raw), deadline, timing):
                         return answer
                 raise StoreError(f"{MAX_ATTEMPTS} concurrent writes to one session in a row; click not recorded")
         except StoreError as exc:
@@ -362,7 +364,7 @@ class Visits:
         return self.gate.admit(steps, deadline, reserve)
 
     async def _save_remembered(
-        self, recent: RecentWrites, session_id: str, value: bytes, expected: bytes, deadline: float, timing: Timing
+        self, recent: RecentWrites, session_id: str, value: bytes, state: SessionState, expected: bytes, deadline: float, timing: Timing
     ) -> bool:
         """A save, keeping the value as this process's recent write when it landed; forgetting it on
         any other outcome (lost race, store error, cancelled: what the store holds is not known)."""
@@ -372,7 +374,7 @@ class Visits:
             landed = await self.store.save(session_id, value, expected, deadline, timing)
         finally:
             if landed:
-                recent.put(session_id, value, written_at)
+                recent.put(session_id, value, written_at, state)
             else:
                 recent.forget(session_id)
         return landed

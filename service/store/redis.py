@@ -1,4 +1,5 @@
-"""Session state in Redis: redis-py asyncio (hiredis parser), one bounded blocking pool.
+"""Session state in Redis: redis-py asyncio (hiredis parser), one bounded blocking pool, and one
+pipelined connection for the click path.
 
 One key per session (`<prefix>s:<session id>`), so a Redis Cluster shards sessions without any
 cross-slot command (`service.store.cluster` shares the script and the error handling below). A
@@ -13,6 +14,13 @@ and fails while one is down. Each command runs under the pool's socket timeout; 
 automatic retries, since a retried check-and-set whose first reply was lost would report a conflict
 for its own write. Redis errors become `StoreError`, chained with `from`, with any password in the
 URL hidden.
+
+A single Redis's store sends a click's GET and check-and-set over one connection shared by all
+requests, pipelined (service/store/pipelined.py: one write per event-loop turn, replies matched in
+order); measured side by side at 32 callers, a command costs about a seventh of the CPU it costs
+through the pooled client. Same rules: no retries, the socket timeout, errors as redis-py's. The
+commands are packed here, all but their per-session parts prepared at start. The cluster store keeps redis-py's client,
+which routes each key to its master.
 
 After a connection error the pool's idle connections are dropped too: when Redis restarts, every
 pooled socket is dead, and each would otherwise fail one more request (and hold a breaker open)
@@ -33,6 +41,7 @@ from redis.exceptions import NoScriptError, RedisClusterException, RedisError
 
 from service.config import redacted
 from service.errors import StoreError
+from service.store.pipelined import PipelinedConnection, bulk, pack
 from service.store.state import TOKEN_SLICE
 
 # KEYS[1] session key; ARGV[1] expected token ("" = must not exist), ARGV[2] new value, ARGV[3] TTL ms.
@@ -157,11 +166,37 @@ class RedisStore(RedisCommands):
         except (ValueError, RedisError) as exc:
             raise StoreError(f"CAIRN_SESSION_STORE: cannot use {redacted(url)!r} ({redacted(str(exc))})") from exc
         self._client = aioredis.Redis(connection_pool=self._pool, retry=no_retry)
+        # The click path's two commands go over one pipelined connection (service/store/pipelined.py),
+        # the rest (model choice, reports, DEL, PING) through the pool. Commands are packed here once
+        # up to their per-session parts.
+        self._pipe = PipelinedConnection(self._pool.make_connection, timeout_s)
+        self._key_prefix = self._session_prefix.encode()
+        self._evalsha_head = b"*7\r\n" + bulk(b"EVALSHA", CHECK_AND_SET_SHA.encode(), b"1")  # 7 parts: these 3 + key, token, value, TTL
+        self._ttl_tail = bulk(str(self.ttl_ms).encode())
+
+    async def load(self, session_id: str) -> bytes | None:
+        key = self._key_prefix + session_id.encode()
+        return await self._call("GET", self._pipe.call(b"*2\r\n$3\r\nGET\r\n$%d\r\n%s\r\n" % (len(key), key)))
+
+    async def save(self, session_id: str, value: bytes, expected_token: bytes) -> bool:
+        key = self._key_prefix + session_id.encode()
+        command = b"%s$%d\r\n%s\r\n$%d\r\n%s\r\n$%d\r\n%s\r\n%s" % (
+            self._evalsha_head, len(key), key, len(expected_token), expected_token, len(value), value, self._ttl_tail
+        )
+        return await self._call("check-and-set", self._check_and_set(command, key, expected_token, value))
+
+    async def _check_and_set(self, command: bytes, key: bytes, expected_token: bytes, value: bytes) -> bool:
+        try:
+            done = await self._pipe.call(command)
+        except NoScriptError:  # a restarted Redis has an empty script cache: EVAL caches it again
+            done = await self._pipe.call(pack(b"EVAL", CHECK_AND_SET.encode(), b"1", key, expected_token, value, str(self.ttl_ms).encode()))
+        return bool(done)
 
     def shard_of(self, session_id: str) -> str:
         return ""
 
     async def close(self) -> None:
+        await self._pipe.close()
         await super().close()
         try:
             await self._pool.aclose()

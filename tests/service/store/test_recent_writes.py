@@ -14,7 +14,7 @@ from service.runtime.timing import Timing
 from service.runtime.visits import Visits
 from service.store.base import open_store
 from service.store.recent import RecentWrites
-from service.store.state import decode
+from service.store.state import SessionState, decode
 from tests._support.stores import CountingStore
 
 
@@ -55,6 +55,17 @@ def test_the_least_recently_written_entry_leaves_first_and_forget_drops_one():
     assert recent.get("a") is None and len(recent) == 1
 
 
+def test_an_entry_hands_back_the_state_given_with_its_value():
+    clock = FakeClock()
+    recent = RecentWrites(max_entries=2, ttl_s=30.0, clock=clock)
+    state = SessionState(items=("a",), sequence=1)
+    recent.put("with", b"v1", clock(), state)
+    recent.put("without", b"v2", clock())
+    assert recent.lookup("with") == (b"v1", state)
+    assert recent.lookup("without") == (b"v2", None)  # the caller decodes the value itself
+    assert recent.lookup("absent") is None
+
+
 # -- through the click path, against a real Redis -------------------------------------------------
 
 
@@ -77,7 +88,10 @@ def test_one_worker_reads_a_visit_once_then_starts_from_its_own_writes(settings_
         await active.open(ModelChoice("shop", "v1", "gru"))
         try:
             answers = [await _click(worker, "one-worker", f"sku-{n:06d}") for n in range(8)]
-            final = decode(await store.inner.load("one-worker"))
+            stored = await store.inner.load("one-worker")
+            final = decode(stored)
+            # What the next click starts from without decoding: the stored value and exactly its state.
+            assert worker.recent.lookup("one-worker") == (stored, final)
         finally:
             await active.close()
             await store.close()
@@ -88,7 +102,7 @@ def test_one_worker_reads_a_visit_once_then_starts_from_its_own_writes(settings_
     assert all(a.served_by == "gru" and a.fallback_reason is None for a in answers)
     assert final.sequence == 8 and final.items == tuple(f"sku-{n:06d}" for n in range(8))
     assert reads == 1  # the first click of the visit; the other seven started from the recent write
-    assert (recent.hits, recent.misses) == (7, 1)
+    assert (recent.hits, recent.misses) == (8, 1)  # the lookup above is the eighth hit
 
 
 def test_a_visit_moving_between_workers_loses_no_click_and_matches_one_worker(settings_for, redis_url):
