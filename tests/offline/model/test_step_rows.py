@@ -79,7 +79,7 @@ def test_row_adagrad_updates_like_torch_adagrad() -> None:
     g = torch.Generator().manual_seed(5)
     for _ in range(4):
         rows = torch.unique(torch.randint(0, 20, (9,), generator=g))
-        grad = torch.sparse_coo_tensor(rows.unsqueeze(0), torch.randn(len(rows), 4, generator=g), table.shape).coalesce()
+        grad = torch.sparse_coo_tensor(rows.unsqueeze(0), torch.randn(len(rows), 4, generator=g), table.shape, check_invariants=True).coalesce()
         ours.grad, theirs.grad = grad.clone(), grad.clone()
         row_opt.step()
         torch_opt.step()
