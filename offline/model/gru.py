@@ -83,7 +83,11 @@ class NextClickGRU(nn.Module):
 
     def step(self, items: torch.Tensor, hidden: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """One click per session: items int64 [B], hidden [L, B, H] -> (features [B, D], new hidden [L, B, H])."""
-        x = self.drop_embedding(self.embedding(items))  # [B, E]
+        return self.recur(self.embedding(items), hidden)
+
+    def recur(self, embedded: torch.Tensor, hidden: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """`step` from the clicked items' embedding rows [B, E] (the trainer gathers them itself, see step_rows)."""
+        x = self.drop_embedding(embedded)  # [B, E]
         out, hidden = self.gru(x.unsqueeze(0), hidden)  # out [1, B, H]
         f = self.drop_hidden(out.squeeze(0))  # [B, H]
         for layer in self.ff:
@@ -97,8 +101,12 @@ class NextClickGRU(nn.Module):
     def score_candidates(self, features: torch.Tensor, candidates: torch.Tensor) -> torch.Tensor:
         """Scores of a shared candidate set (sampled output): [B, D], [C] -> [B, C]."""
         w = self.output(candidates) if self.output is not None else self.embedding(candidates)  # [C, D]
-        b = self.output_bias(candidates).squeeze(1)  # [C]
-        return features @ w.T + b
+        return score_rows(features, w, self.output_bias(candidates))
+
+
+def score_rows(features: torch.Tensor, weights: torch.Tensor, bias: torch.Tensor) -> torch.Tensor:
+    """features [B, D], the candidates' output rows [C, D] and bias rows [C, 1] -> scores [B, C]."""
+    return torch.addmm(bias.view(1, -1), features, weights.T)  # the bias added inside the product, not as a pass of its own
 
 
 def save_checkpoint(path: Path, model: NextClickGRU, extra: dict[str, Any] | None = None) -> None:

@@ -34,10 +34,12 @@ from service.errors import InputDataError, TrainingError
 from offline.model.session_batches import EveryItem, NegativeSampler, SessionParallelBatches, Step, candidate_log_q, sampling_weights
 from offline.data.dataset import PreparedData, SessionSplit
 from offline.evaluate.next_clicks import iterate_events, target_ranks
-from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint
+from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint, score_rows
 from offline.evaluate.gru_scorer import TorchGRUScorer
 from offline.model.losses import LOSS_NAMES, LossFn, get_loss, logq_corrected, negative_mask
 from offline.model.progress import LineProgress, epoch_progress
+from offline.model.row_adagrad import RowAdagrad
+from offline.model.step_rows import StepRows
 
 OPTIMIZERS = ("adagrad", "adam")
 ALL_ITEMS = "all"  # TrainSettings.negatives: every item is a negative of every row (EveryItem)
@@ -128,12 +130,13 @@ def keep_freed_memory() -> None:
 
 
 def build_optimizers(model: NextClickGRU, name: str, lr: float) -> list[torch.optim.Optimizer]:
-    """Adagrad takes sparse gradients itself; Adam needs SparseAdam for the sparse item tables."""
-    if name == "adagrad":
-        return [torch.optim.Adagrad(model.parameters(), lr=lr)]
+    """Adagrad: RowAdagrad (torch's rule on the touched rows) for the sparse item tables, torch's for the
+    rest; Adam needs SparseAdam for the item tables. Both read the coalesced gradients of step_rows."""
     sparse_ids = {id(m.weight) for m in model.modules() if isinstance(m, torch.nn.Embedding) and m.sparse}
     sparse = [p for p in model.parameters() if id(p) in sparse_ids]
     dense = [p for p in model.parameters() if id(p) not in sparse_ids]
+    if name == "adagrad":
+        return [RowAdagrad(sparse, lr=lr), torch.optim.Adagrad(dense, lr=lr)]
     return [torch.optim.SparseAdam(sparse, lr=lr), torch.optim.Adam(dense, lr=lr)]
 
 
@@ -165,14 +168,16 @@ def train_epoch(
             hidden = hidden.masked_fill(torch.from_numpy(step.reset).view(1, b, 1), 0.0)  # [L, B, H]
         candidates[:b] = targets
         candidates[b:] = sampler.draw()
-        features, hidden = model.step(inputs, hidden)  # [B, D], [L, B, H]
-        scores = model.score_candidates(features, candidates)  # [B, B + M]
+        rows = StepRows(model, inputs, candidates)  # the item-table rows this step reads, see step_rows
+        features, hidden = model.recur(rows.embedded, hidden)  # [B, D], [L, B, H]
+        scores = score_rows(features, rows.weights, rows.bias)  # [B, B + M]
         if log_q is not None:
             scores = logq_corrected(scores, log_q[candidates])
         loss = loss_fn(scores, negative_mask(targets, candidates, in_batch=sampler.in_batch))
         for opt in optimizers:
             opt.zero_grad(set_to_none=True)
         loss.backward()
+        rows.hand_over()
         for opt in optimizers:
             opt.step()
         hidden = hidden.detach()

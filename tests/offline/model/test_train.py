@@ -9,7 +9,6 @@ import numpy as np
 import pytest
 import torch
 
-from bench import training as bench
 from service.cli import main
 from offline.data.dataset import PreparedData, SessionSplit
 from offline.model.gru import GRUConfig, NextClickGRU, load_checkpoint
@@ -163,17 +162,6 @@ def test_missing_data_and_bad_values_are_named(
             main(["train", "--data", str(tmp_path), flag, value])
         assert stop.value.code == 2
         assert f"argument {flag}: '{value.split(',')[-1]}'" in capsys.readouterr().err
-
-
-def test_benchmark_reports_each_batch_size(tmp_path: Path) -> None:
-    # A smoke run of bench.training at toy size: it measures, it does not judge here.
-    out = tmp_path / "training.json"
-    argv = ["--out", str(out), "--items", "500", "--sessions", "3000", "--batch-sizes", "8,16", "--threads", "1", "--negatives", "32",
-            "--hidden-size", "8", "--warmup", "1", "--steps", "3", "--windows", "2"]
-    assert bench.main(argv) == 0
-    report = json.loads(out.read_text())
-    assert [r["batch_size"] for r in report["results"]] == [8, 16]
-    assert all(r["median_clicks_per_second"] > 0 and len(r["window_clicks_per_second"]) == 2 for r in report["results"])
 
 
 def test_each_run_leaves_an_epoch_log_readable_without_torch(data_dir: Path, tmp_path: Path) -> None:
