@@ -44,7 +44,7 @@ from service.api.schemas import (
 )
 from service.artifacts.format import list_artifacts
 from service.errors import ArtifactError, CairnError, StoreError
-from service.runtime.active import ModelChoice
+from service.runtime.active import LoadedModel, ModelChoice
 from service.runtime.timing import Timing
 from service.runtime.visits import Answer
 
@@ -180,13 +180,13 @@ async def delete_session(session_id: SessionId, request: Request, service: Servi
     return Response(status_code=204)
 
 
-def _active_answer(choice: ModelChoice) -> dict[str, str]:
-    return {"name": choice.name, "version": choice.version, "recommender": choice.recommender, "artifact": choice.tag}
+def _active_answer(choice: ModelChoice, model: LoadedModel) -> dict[str, str]:
+    return {"name": choice.name, "version": choice.version, "recommender": choice.recommender, "artifact": choice.tag, "scoring": model.scoring}
 
 
 @router.get("/v1/artifacts", response_model=ArtifactsAnswer, summary="The artifacts in the folder, and what serves now", tags=["artifacts"])
 async def get_artifacts(service: ServiceDep) -> dict[str, Any]:
-    _, choice = service.active.current
+    model, choice = service.active.current
     listings = await asyncio.to_thread(list_artifacts, service.settings.artifacts)
     artifacts = []
     for a in listings:
@@ -208,7 +208,7 @@ async def get_artifacts(service: ServiceDep) -> dict[str, Any]:
                 "hyperparameters": m.get("hyperparameters") or {},
             }
         )
-    return {"active": _active_answer(choice), "artifacts": artifacts, "workers": await _workers(service)}
+    return {"active": _active_answer(choice, model), "artifacts": artifacts, "workers": await _workers(service)}
 
 
 async def _workers(service: Service) -> list[dict[str, Any]]:
@@ -282,7 +282,8 @@ async def put_serving(
         raise ApiError(503, "store_unavailable", message) from exc
     except CairnError as exc:
         raise ApiError(422, "invalid_request", str(exc), "recommender") from exc
-    answer = _active_answer(choice)
+    model, switched = active.current
+    answer = _active_answer(switched, model)
     if body.arm is not None:
         answer["arm"] = body.arm
     return answer
@@ -322,7 +323,8 @@ async def readyz(service: ServiceDep) -> Response:
         "pid": os.getpid(),
     }
     if model_loaded:
-        body["active"] = _active_answer(service.active.current[1])
+        model, choice = service.active.current
+        body["active"] = _active_answer(choice, model)
     return Response(json.dumps(body), status_code=200 if body["ready"] else 503, media_type="application/json")
 
 

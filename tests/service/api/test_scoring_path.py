@@ -31,6 +31,9 @@ def test_each_path_answers_with_the_models_list_and_is_counted(fresh_server, off
     assert [x["item_id"] for x in answer["items"]] == want_items  # 500 items: the candidates cover the catalogue
     assert [x["score"] for x in answer["items"]] == pytest.approx(want_scores, abs=1e-5)  # exact fp32 scores on every path
     assert scoring_counts(metrics) == {scoring: 3.0}
+    with server.client() as c:  # what serves, as the listing and readiness report it
+        assert c.get("/v1/artifacts").json()["active"]["scoring"] == scoring
+        assert c.get("/readyz").json()["active"]["scoring"] == scoring
 
 
 def test_auto_scores_a_small_catalogue_exactly(fresh_server, sid) -> None:
