@@ -33,6 +33,7 @@ from typing import Any
 
 import numpy as np
 
+from service.artifacts.item_vectors import mapped_array
 from service.errors import ArtifactError
 
 CLUSTER_CENTRES = "cluster_centres.npy"
@@ -103,13 +104,7 @@ def load_item_clusters(path: Path, manifest: dict[str, Any], n_items: int, probe
     section = manifest["item_clusters"]
 
     def array(fname: str, dtype: type, ndim: int) -> np.ndarray:
-        try:
-            a = np.load(path / fname, mmap_mode="r")
-        except (OSError, ValueError) as exc:
-            raise ArtifactError(f"{path / fname}: unreadable ({exc})") from exc
-        if a.dtype != dtype or a.ndim != ndim:
-            raise ArtifactError(f"{path / fname}: {a.dtype} with {a.ndim} axes, expected {np.dtype(dtype)} with {ndim}")
-        return a.view(np.ndarray)  # a plain array over the map: slicing it per click builds no memmap objects
+        return mapped_array(path / fname, dtype, ndim).view(np.ndarray)  # a plain array over the map: slicing it per click builds no memmap objects
 
     centres = array(CLUSTER_CENTRES, np.float32, 2)
     offsets = np.array(array(CLUSTER_OFFSETS, np.int64, 1))

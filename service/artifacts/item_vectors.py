@@ -71,6 +71,17 @@ class ItemVectors:
         return self.vectors.shape[0]
 
 
+def mapped_array(file: Path, dtype: type, ndim: int) -> np.ndarray:
+    """A .npy file as a read-only memory map; ArtifactError when unreadable or of another type."""
+    try:
+        a = np.load(file, mmap_mode="r")
+    except (OSError, ValueError) as exc:
+        raise ArtifactError(f"{file}: unreadable ({exc})") from exc
+    if a.dtype != dtype or a.ndim != ndim:
+        raise ArtifactError(f"{file}: {a.dtype} with {a.ndim} axes, expected {np.dtype(dtype)} with {ndim}")
+    return a
+
+
 def has_item_vectors(manifest: dict[str, Any]) -> bool:
     files = manifest.get("files")
     return isinstance(manifest.get("item_vectors"), dict) and isinstance(files, dict) and all(f in files for f in ITEM_VECTOR_FILES)
@@ -84,13 +95,7 @@ def load_item_vectors(path: Path, manifest: dict[str, Any], n_items: int) -> Ite
         return None
 
     def array(fname: str, dtype: type, ndim: int) -> np.ndarray:
-        try:
-            a = np.load(path / fname, mmap_mode="r")
-        except (OSError, ValueError) as exc:
-            raise ArtifactError(f"{path / fname}: unreadable ({exc})") from exc
-        if a.dtype != dtype or a.ndim != ndim:
-            raise ArtifactError(f"{path / fname}: {a.dtype} with {a.ndim} axes, expected {np.dtype(dtype)} with {ndim}")
-        return a
+        return mapped_array(path / fname, dtype, ndim)
 
     embedding = array(EMBEDDING, np.float32, 2)
     vectors = array(ITEM_VECTORS, np.float32, 2)

@@ -20,7 +20,7 @@ import numpy as np
 from service.artifacts.item_clusters import ItemClusters
 from service.artifacts.item_vectors import ItemVectors
 from service.errors import StepError
-from service.runtime.onnx_step import open_session, ort_errors
+from service.runtime.feature_step import FeatureStep
 
 
 def touch_pages(table: np.ndarray, page: int = 4096) -> None:
@@ -81,7 +81,7 @@ class ClusterSearch:
         return self.clusters.items[rows], scores[best]
 
 
-class ClusteredStep:
+class ClusteredStep(FeatureStep):
     """`OnnxStep`'s `run` for an artifact with item vectors and the clustered index."""
 
     scoring = "clustered"
@@ -89,40 +89,13 @@ class ClusteredStep:
     def __init__(self, tables: ItemVectors, clusters: ItemClusters, threads: int = 1) -> None:
         if clusters.n_items != tables.n_items or clusters.vectors.shape[1] != tables.vectors.shape[1] + 1:
             raise StepError(f"the clustered index ({clusters.vectors.shape}) does not fit the item vectors ({tables.vectors.shape})")
-        self.path = tables.feature_graph
-        self.tables = tables
+        super().__init__(tables, threads)
         self.search = ClusterSearch(clusters)
-        self._features = open_session(tables.feature_graph, threads)
-        hidden_shape = {i.name: i.shape for i in self._features.get_inputs()}["hidden"]  # [L, batch, H]
-        self.layers, self.hidden_size, self.n_items = int(hidden_shape[0]), int(hidden_shape[2]), tables.n_items
         self._dim = tables.vectors.shape[1]
         touch_pages(clusters.vectors)
 
-
-    def close(self) -> None:
-        self._features = None
-
-    def zero_hidden(self, batch_size: int) -> np.ndarray:
-        return np.zeros((self.layers, batch_size, self.hidden_size), dtype=np.float32)
-
-    def run(self, items: np.ndarray, hidden: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """items int64 [B], hidden float32 [L, B, H] -> next_hidden [L, B, H], top_items int64 [B, top_n],
-        top_scores float32 [B, top_n] (descending, exact fp32 scores)."""
-        if self._features is None:
-            raise StepError(f"{self.path}: the step was closed")
-        if not isinstance(top_n, (int, np.integer)) or isinstance(top_n, bool) or not 1 <= top_n <= self.n_items:
-            raise StepError(f"top_n must be an integer from 1 to {self.n_items}, got {top_n!r}")
-        if not isinstance(items, np.ndarray) or items.size == 0 or items.ndim != 1:
-            raise StepError(f"{self.path}: a step needs items int64 [B] with B >= 1")
-        if items.min() < 0 or items.max() >= self.n_items:
-            raise StepError(f"{self.path}: item indices must be from 0 to {self.n_items - 1}")
-        x = np.ascontiguousarray(self.tables.embedding[items])  # [B, E]
-        try:
-            next_hidden, features = self._features.run(None, {"x": x, "hidden": hidden})  # [L, B, H], [B, D]
-        except ort_errors() as exc:
-            raise StepError(f"{self.path}: step failed ({' '.join(str(exc).split())})") from exc
-        query = np.empty((len(items), self._dim + 1), dtype=np.float32)  # [B, D + 1]
+    def rank(self, features: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray]:
+        query = np.empty((len(features), self._dim + 1), dtype=np.float32)  # [B, D + 1]
         query[:, : self._dim] = features
         query[:, self._dim] = 1.0
-        top_items, top_scores = self.search.top(query, int(top_n))
-        return next_hidden, top_items, top_scores
+        return self.search.top(query, top_n)
