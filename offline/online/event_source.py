@@ -50,16 +50,20 @@ def _read_folder(folder: Path) -> EventBatch:
     for path in files:
         with open(path, "rb") as f:
             for line in f:
-                try:
-                    record = json.loads(line)
-                except ValueError:
-                    batch.skipped += 1
-                    continue
-                if _check(record):
-                    batch.events.append(record)
-                else:
-                    batch.skipped += 1
+                _take(batch, line)
     return batch
+
+
+def _take(batch: EventBatch, raw: bytes | None) -> None:
+    """Add one event, as JSON text, to the batch; count it as skipped when unreadable or malformed."""
+    try:
+        record = json.loads(raw) if raw is not None else None
+    except ValueError:
+        record = None
+    if record is not None and _check(record):
+        batch.events.append(record)
+    else:
+        batch.skipped += 1
 
 
 def _read_stream(url: str, key: str) -> EventBatch:
@@ -73,16 +77,8 @@ def _read_stream(url: str, key: str) -> EventBatch:
             start = "-"
             while True:
                 page = client.xrange(key, min=start, count=STREAM_PAGE)
-                for entry_id, fields in page:
-                    try:
-                        record = json.loads(fields[STREAM_FIELD])
-                    except (KeyError, ValueError):
-                        batch.skipped += 1
-                        continue
-                    if _check(record):
-                        batch.events.append(record)
-                    else:
-                        batch.skipped += 1
+                for _, fields in page:
+                    _take(batch, fields.get(STREAM_FIELD))
                 if len(page) < STREAM_PAGE:
                     break
                 start = "(" + page[-1][0].decode()

@@ -8,6 +8,8 @@ A subclass ranks the items from f its own way; `run` keeps `OnnxStep.run`'s cont
 
 from __future__ import annotations
 
+from abc import ABC, abstractmethod
+
 import numpy as np
 
 from service.artifacts.item_vectors import ItemVectors
@@ -15,7 +17,7 @@ from service.errors import StepError
 from service.runtime.onnx_step import open_session, ort_errors
 
 
-class FeatureStep:
+class FeatureStep(ABC):
     scoring = ""  # the subclass's path name (Server-Timing, metrics)
 
     def __init__(self, tables: ItemVectors, threads: int = 1) -> None:
@@ -50,6 +52,6 @@ class FeatureStep:
             raise StepError(f"{self.path}: step failed ({' '.join(str(exc).split())})") from exc
         return next_hidden, top_items, top_scores
 
+    @abstractmethod
     def rank(self, features: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray]:
         """features float32 [B, D] -> top_items int64 [B, top_n], top_scores float32 [B, top_n], best first."""
-        raise NotImplementedError
