@@ -376,6 +376,17 @@ def quantise_int8(vectors: np.ndarray, scales: np.ndarray | None = None) -> tupl
     return codes, scales
 
 
+def half_transposed(vectors: np.ndarray) -> np.ndarray:
+    """float32 [n, D] -> float16 [D, n] (transposed for the MatMul), converted and transposed a slice
+    of items at a time: a whole-table transpose walks memory across rows (1.6 s at a million items,
+    the slices 0.5 s)."""
+    out = np.empty((vectors.shape[1], len(vectors)), dtype=np.float16)
+    step = 8192
+    for lo in range(0, len(vectors), step):
+        out[:, lo : lo + step] = vectors[lo : lo + step].astype(np.float16).T
+    return out
+
+
 def item_vector_files(w: _StepWeights) -> dict[str, Any]:
     """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py).
     The two reduced copies are made when written (callables), so only one exists at a time."""
@@ -386,7 +397,7 @@ def item_vector_files(w: _StepWeights) -> dict[str, Any]:
         EMBEDDING: w.embedding,
         ITEM_VECTORS: w.output,
         ITEM_BIAS: w.output_bias,
-        ITEM_VECTORS_FP16: lambda: np.ascontiguousarray(w.output.astype(np.float16).T),  # convert, then transpose half the bytes
+        ITEM_VECTORS_FP16: lambda: half_transposed(w.output),
         ITEM_VECTORS_INT8: lambda: quantise_int8(w.output, scales)[0],
         ITEM_SCALES: scales,
         CANDIDATES_FP16: build_candidate_graph("fp16", dim),

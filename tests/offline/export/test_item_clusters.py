@@ -93,7 +93,7 @@ def test_probe_choice_equals_the_overlap_a_search_would_find() -> None:
         assert abs(np.mean(found) - by_probe[probe - 1]) < 1e-9, probe
     assert section["agreement_top20"] >= 0.99 and section["probe"] < section["clusters"] / 2  # structure: few clusters suffice
     # The cluster-ordered rows are the items' [v, b], each cluster one contiguous block.
-    rows = files[CLUSTER_VECTORS]()  # made when the artifact writes it
+    rows = np.concatenate(list(files[CLUSTER_VECTORS].blocks()))  # made block by block when the artifact writes it
     np.testing.assert_array_equal(rows[:, :-1], vectors[order])
     np.testing.assert_array_equal(rows[:, -1], bias[order])
     assert offsets[-1] == len(vectors) and np.all(np.diff(offsets) >= 0) and sorted(order.tolist()) == list(range(len(vectors)))

@@ -17,6 +17,7 @@ from service.artifacts.format import (
     POPULARITY,
     REQUIRED_FILES,
     STEP_GRAPH,
+    RowBlocks,
     list_artifacts,
     load_artifact,
     sha256_file,
@@ -279,3 +280,29 @@ def test_versions_are_ordered_by_creation_time_not_by_name(tmp_path: Path) -> No
     time.sleep(0.01)  # created_at has millisecond resolution
     small_artifact(tmp_path, "garden", "v9")
     assert [a.version for a in list_artifacts(tmp_path)] == ["v10", "v9"]  # v9 was created last: newest
+
+
+def test_a_table_written_in_blocks_is_the_file_numpy_saves(tmp_path: Path) -> None:
+    # Reference: numpy's own np.save / np.load (the .npy format, NEP 1): the file written block by
+    # block must be byte for byte what np.save writes for the whole table, and covered by the checksums.
+    table = np.arange(7 * 3, dtype=np.float32).reshape(7, 3) / 7
+    blocks = RowBlocks((7, 3), np.dtype(np.float32), lambda: iter([table[:4], table[4:]]))
+    path = small_artifact(tmp_path, extra_files={"rows.npy": blocks})
+    np.save(tmp_path / "whole.npy", table)
+    assert (path / "rows.npy").read_bytes() == (tmp_path / "whole.npy").read_bytes()
+    assert verify_artifact(path)["files"]["rows.npy"] == sha256_file(tmp_path / "whole.npy")
+
+
+@pytest.mark.parametrize(
+    "blocks, said",
+    [
+        (lambda t: [t[:4]], "held 4 rows, the table 7"),
+        (lambda t: [t.astype(np.float64)], "a block of float64"),
+        (lambda t: [t[:, :2], t[:, 2:]], "a block of float32 (7, 2)"),
+    ],
+)
+def test_blocks_that_do_not_make_the_table_are_refused_and_nothing_is_left(tmp_path: Path, blocks, said: str) -> None:
+    table = np.zeros((7, 3), dtype=np.float32)
+    with pytest.raises(ArtifactError, match=said.replace("(", r"\(").replace(")", r"\)")):
+        small_artifact(tmp_path, extra_files={"rows.npy": RowBlocks((7, 3), np.dtype(np.float32), lambda: iter(blocks(table)))})
+    assert not (tmp_path / "garden").exists() or not any((tmp_path / "garden").iterdir())

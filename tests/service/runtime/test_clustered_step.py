@@ -16,6 +16,7 @@ import pytest
 
 from offline.export.artifact_writer import write_random_artifact
 from offline.export.item_clusters import item_cluster_files
+from service.artifacts.format import RowBlocks
 from service.artifacts.format import load_artifact
 from service.artifacts.item_clusters import CLUSTER_OFFSETS, ITEM_CLUSTER_FILES, ClusterFit, load_item_clusters
 from service.artifacts.item_vectors import load_item_vectors
@@ -43,7 +44,7 @@ def structured(n: int, d: int, groups: int, seed: int) -> tuple[np.ndarray, np.n
 def write_index(folder: Path, vectors: np.ndarray, bias: np.ndarray, features: np.ndarray) -> dict:
     files, section = item_cluster_files(vectors, bias, features)
     for name, array in files.items():
-        np.save(folder / name, array() if callable(array) else array)
+        np.save(folder / name, np.concatenate(list(array.blocks())) if isinstance(array, RowBlocks) else array)
     return {"item_clusters": section, "files": {name: "-" for name in files}}
 
 
