@@ -94,6 +94,26 @@ def has_item_clusters(manifest: dict[str, Any]) -> bool:
     return isinstance(manifest.get("item_clusters"), dict) and isinstance(files, dict) and all(f in files for f in ITEM_CLUSTER_FILES)
 
 
+def cluster_fit(manifest: dict[str, Any], n_items: int) -> ClusterFit | None:
+    """What the export measured, from the manifest alone (no file is opened: `auto` decides on it
+    before any table is mapped); None without an index. ArtifactError when the section's numbers
+    cannot be an index of `n_items` items."""
+    if not has_item_clusters(manifest):
+        return None
+    section = manifest["item_clusters"]
+    clusters, head, probe = section.get("clusters"), section.get("head"), section.get("probe")
+    whole = all(isinstance(v, int) and not isinstance(v, bool) for v in (clusters, head, probe))
+    if not whole or not (1 <= clusters <= n_items and 0 <= head < n_items and 1 <= probe <= clusters):
+        raise ArtifactError(
+            f"manifest item_clusters: clusters {clusters!r}, head {head!r}, probe {probe!r} do not describe an index of {n_items} items"
+        )
+    agreement = section.get("agreement_top20", 0.0)
+    return ClusterFit(
+        agreement=float(agreement) if isinstance(agreement, (int, float)) else 0.0,
+        read_share=(head + probe * (n_items - head) / clusters) / n_items,
+    )
+
+
 def load_item_clusters(path: Path, manifest: dict[str, Any], n_items: int, probe: int = 0) -> ItemClusters | None:
     """The index of a verified artifact (large arrays as read-only memory maps), None when it has
     none; ArtifactError when a file or the manifest section does not fit. `probe` > 0 overrides the
@@ -120,6 +140,14 @@ def load_item_clusters(path: Path, manifest: dict[str, Any], n_items: int, probe
     stored_probe = section.get("probe")
     if not isinstance(stored_probe, int) or not 1 <= stored_probe <= n_clusters:
         raise ArtifactError(f"{path}: manifest item_clusters.probe must be a whole number from 1 to {n_clusters}, got {stored_probe!r}")
+    if (section.get("clusters"), section.get("head")) != (n_clusters, int(offsets[0])):
+        raise ArtifactError(
+            f"{path}: manifest item_clusters says {section.get('clusters')!r} clusters and a head of {section.get('head')!r}, "
+            f"the files {n_clusters} and {int(offsets[0])}"
+        )
+    fit = cluster_fit(manifest, n_items)
+    if fit is None:  # cannot happen: has_item_clusters held above
+        return None
     centres64 = centres.astype(np.float64)
     return ItemClusters(
         centres=np.ascontiguousarray(centres[:, :-1]),
@@ -128,8 +156,5 @@ def load_item_clusters(path: Path, manifest: dict[str, Any], n_items: int, probe
         items=items,
         vectors=vectors,
         probe=min(probe, n_clusters) if probe > 0 else stored_probe,
-        fit=ClusterFit(
-            agreement=float(section.get("agreement_top20", 0.0)),
-            read_share=float(offsets[0] + stored_probe * (n_items - offsets[0]) / n_clusters) / n_items,
-        ),
+        fit=fit,
     )

@@ -35,7 +35,7 @@ from service.artifacts.format import Artifact, list_artifacts, load_artifact
 from service.config import ARTIFACT_PART, RECOMMENDERS, Settings
 from service.errors import ArtifactError, CairnError, ModelNotReadyError, SettingsError, StepError, StoreError
 from service.runtime.batching import StepBatcher
-from service.artifacts.item_clusters import ClusterFit, load_item_clusters
+from service.artifacts.item_clusters import ClusterFit, cluster_fit, load_item_clusters
 from service.artifacts.item_vectors import load_item_vectors
 from service.runtime.clustered_step import ClusteredStep
 from service.runtime.onnx_step import OnnxStep
@@ -171,13 +171,17 @@ def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0
     memory-mapped item tables (the exact graph with its private copy of the tables is then not
     opened). `probe` > 0 overrides the clustered index's probe count (`auto` judges by the export's)."""
     tables = load_item_vectors(artifact.path, artifact.manifest, artifact.n_items)
-    clusters = load_item_clusters(artifact.path, artifact.manifest, artifact.n_items, probe) if tables is not None else None
-    path_name = scoring_path(scoring, artifact.n_items, tables is not None, clusters.fit if clusters is not None else None)
+    fit = cluster_fit(artifact.manifest, artifact.n_items) if tables is not None else None
+    path_name = scoring_path(scoring, artifact.n_items, tables is not None, fit)
     if path_name != scoring and scoring != "auto":
         log.warning("%s has no files for CAIRN_SCORING=%s (exported by an older cairn, or too few items): scoring exactly", artifact.path, scoring)
     if path_name == "exact" or tables is None:
         return OnnxStep(artifact.step_graph, threads=threads)
-    if path_name == "clustered" and clusters is not None:
+    if path_name == "clustered":
+        # The index's arrays are opened only for the path that reads them.
+        clusters = load_item_clusters(artifact.path, artifact.manifest, artifact.n_items, probe)
+        if clusters is None:  # cannot happen: scoring_path chose clustered from the index's fit
+            raise ArtifactError(f"{artifact.path}: no clustered index to open")
         return ClusteredStep(tables, clusters, threads=threads)
     return ReducedStep(tables, path_name, threads=threads)
 

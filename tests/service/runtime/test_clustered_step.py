@@ -16,11 +16,11 @@ import pytest
 
 from offline.export.artifact_writer import write_random_artifact
 from offline.export.item_clusters import item_cluster_files
-from service.artifacts.format import RowBlocks
-from service.artifacts.format import load_artifact
-from service.artifacts.item_clusters import CLUSTER_OFFSETS, ITEM_CLUSTER_FILES, ClusterFit, load_item_clusters
+from service.artifacts.format import RowBlocks, load_artifact
+from service.artifacts.item_clusters import CLUSTER_OFFSETS, ITEM_CLUSTER_FILES, ClusterFit, cluster_fit, load_item_clusters
 from service.artifacts.item_vectors import load_item_vectors
 from service.errors import ArtifactError, StepError
+from service.runtime import active
 from service.runtime.active import AUTO_CLUSTERED_AGREEMENT, AUTO_CLUSTERED_MAX_SHARE, AUTO_REDUCED_FROM, load_model, scoring_path
 from service.runtime.clustered_step import ClusteredStep, ClusterSearch
 from service.runtime.onnx_step import OnnxStep
@@ -149,3 +149,37 @@ def test_scoring_setting_chooses_clustered_only_where_it_was_measured_to_agree_a
     assert scoring_path("clustered", 10, True, ClusterFit(0.5, 1.0)) == "clustered"  # asked for: served, whatever its fit
     model = load_model(artifact, 1, 8, "clustered", probe=2)
     assert model.scoring == "clustered" and model.gru.batcher.step.search.probe == 2
+
+
+def test_the_fit_comes_from_the_manifest_and_must_match_the_files(tmp_path: Path) -> None:
+    vectors, bias, queries = structured(3000, 8, 10, seed=4)
+    manifest = write_index(tmp_path, vectors, bias, queries(32))
+    section = manifest["item_clusters"]
+    fit = cluster_fit(manifest, len(vectors))
+    # The share a click reads: the head plus `probe` clusters of average size (by hand from the section).
+    by_hand = (section["head"] + section["probe"] * (3000 - section["head"]) / section["clusters"]) / 3000
+    assert fit == ClusterFit(section["agreement_top20"], pytest.approx(by_hand))
+    assert load_item_clusters(tmp_path, manifest, len(vectors)).fit == fit
+    for key, value in [("head", section["head"] + 1), ("clusters", section["clusters"] * 2)]:
+        bad = json.loads(json.dumps(manifest))
+        bad["item_clusters"][key] = value
+        with pytest.raises(ArtifactError, match="the files"):
+            load_item_clusters(tmp_path, bad, len(vectors))
+    for key, value in [("head", 3000), ("clusters", 0), ("probe", "all"), ("head", True)]:
+        bad = json.loads(json.dumps(manifest))
+        bad["item_clusters"][key] = value
+        with pytest.raises(ArtifactError, match="do not describe an index of 3000 items"):
+            cluster_fit(bad, 3000)
+
+
+def test_other_paths_open_no_index_file(artifact: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The clustered index is read only by its own path: a model served exactly or from int8 must not
+    # depend on the index's files.
+    opened: list[str] = []
+    real = active.load_item_clusters
+    monkeypatch.setattr(active, "load_item_clusters", lambda *a, **k: opened.append("index") or real(*a, **k))
+    a = load_artifact(artifact)
+    for scoring in ("exact", "int8", "fp16", "auto"):  # 3,000 items: auto is exact
+        active.open_step(a, scoring)
+    assert opened == []
+    assert isinstance(active.open_step(a, "clustered"), ClusteredStep) and opened == ["index"]
