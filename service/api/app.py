@@ -69,8 +69,8 @@ def create_app(settings: Settings, store: SessionStore | None = None, wrap_model
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         session_store = store if store is not None else open_store(settings)
-        guards = Guards(settings, on_change=metrics.breaker_changed)
         experiment = load_experiment(settings.experiment) if settings.experiment is not None else None
+        guards = Guards(settings, on_change=metrics.breaker_changed, arms=[arm.name for arm in experiment.arms] if experiment else ())
         arms = None
         if experiment is not None:
             arms = Arms(experiment, settings, session_store, wrap_model=wrap_model, on_replaced=guards.model_replaced)
@@ -224,7 +224,8 @@ def _collect(service: Service) -> None:
     for breaker in guards.breakers():
         m.breaker_state.set((breaker.name,), float(breaker.state))  # reading the state moves an open breaker past its cool-down
     now = time.perf_counter()
-    m.latency_estimate.set(("model",), guards.model_latency.estimate(now))
+    for guard in guards.model_guards().values():
+        m.latency_estimate.set((guard.breaker.name,), guard.latency.estimate(now))  # "model", or "model@<arm>" per arm
     if service.store.kind != "memory":
         m.latency_estimate.set(("store",), guards.store_latency.estimate(now))
 

@@ -61,8 +61,11 @@ _NO_TIMEOUT = _NoTimeout()
 
 
 class ModelGate:
-    def __init__(self, guards: Guards | None, loop_lag: LoopLag | None = None, probe_after_s: float = 1.0) -> None:
+    """The gate of one model: the only one, or one experiment arm's (`arm`), with that model's guard."""
+
+    def __init__(self, guards: Guards | None, loop_lag: LoopLag | None = None, probe_after_s: float = 1.0, arm: str | None = None) -> None:
         self.guards = guards
+        self.guard = guards.model_guard(arm) if guards is not None else None
         self.guarded = guards is not None and guards.enabled
         self.loop_lag = loop_lag
         self.probe_after_s = probe_after_s
@@ -72,17 +75,17 @@ class ModelGate:
         """An Admission when the model may run `steps` steps now, else the fallback reason."""
         if not self.guarded:
             return Admission(None, deadline, steps)
-        guards = self.guards
-        ticket = guards.model.allow()
+        guard = self.guard
+        ticket = guard.breaker.allow()
         if ticket is None:
             return "model_unavailable"
         now = time.perf_counter()
         model_deadline = deadline - TIMER_MARGIN_S - save_reserve_s
-        if now + guards.model_latency.estimate(now) * steps > model_deadline:
+        if now + guard.latency.estimate(now) * steps > model_deadline:
             if self._may_probe(now, model_deadline):
                 self._probing = True
                 return Admission(ticket, model_deadline, steps, probe=True)
-            guards.model.release(ticket)
+            guard.breaker.release(ticket)
             return "budget"
         return Admission(ticket, model_deadline, steps)
 
@@ -91,14 +94,15 @@ class ModelGate:
             self.loop_lag is not None
             and not self._probing
             and model_deadline > now
-            and now - self.guards.model_latency.last_observed_at >= self.probe_after_s
+            and now - self.guard.latency.last_observed_at >= self.probe_after_s
             and self.loop_lag.recent_max_s <= PROBE_MAX_LOOP_LAG_S
         )
 
     async def run(
-        self, call: Callable[[], Awaitable[tuple[Any, Ranking]]], admission: Admission, timing: Timing
+        self, call: Callable[[], Awaitable[tuple[Any, Ranking]]], admission: Admission, timing: Timing, what: str = "GRU step"
     ) -> tuple[tuple[Any, Ranking] | None, str | None]:
-        """(the result of `call`, None), or (None, the fallback reason) when it failed or ran past the deadline."""
+        """(the result of `call`, None), or (None, the fallback reason) when it failed or ran past the
+        deadline; `what` names the call in the log line of a failure."""
         t0 = time.perf_counter()
         try:
             async with self._timeout(admission.deadline, t0):
@@ -107,21 +111,21 @@ class ModelGate:
             timing.scoring = result[1].scoring
             if self.guarded:
                 now = time.perf_counter()
-                self.guards.model.record(admission.ticket, True)
+                self.guard.breaker.record(admission.ticket, True)
                 if admission.probe:
-                    self.guards.model_latency.clear()  # the model answers in time again: measure afresh
-                self.guards.model_latency.observe((now - t0) / admission.steps, now)
+                    self.guard.latency.clear()  # the model answers in time again: measure afresh
+                self.guard.latency.observe((now - t0) / admission.steps, now)
             return result, None
         except asyncio.CancelledError:
             if self.guarded:
-                self.guards.model.release(admission.ticket)
+                self.guard.breaker.release(admission.ticket)
             raise
         except Exception as exc:  # noqa: BLE001 - whatever the model does wrong, the visitor gets the fallback
             if self.guarded:
-                self.guards.model.record(admission.ticket, False)
+                self.guard.breaker.record(admission.ticket, False)
             if isinstance(exc, TimeoutError):
                 return None, "deadline"
-            log.error("GRU step failed, answering from the neighbour table: %s", type(exc).__name__)
+            log.error("%s failed, answering from the neighbour table: %s", what, type(exc).__name__)
             return None, "model_error"
         finally:
             timing.model_s += time.perf_counter() - t0

@@ -27,11 +27,16 @@ class Arms:
         settings: Settings,
         store: SessionStore,
         wrap_model: ModelWrapper | None = None,
-        on_replaced: Callable[[str], None] | None = None,
+        on_replaced: Callable[[str, str], None] | None = None,
     ) -> None:
+        """`on_replaced(tag, arm)` hears of each arm's new artifact (the arm's guard starts afresh)."""
         self.experiment = experiment
+
+        def replaced(arm: str) -> Callable[[str], None] | None:
+            return None if on_replaced is None else lambda tag: on_replaced(tag, arm)
+
         self.models: dict[str, ActiveModel] = {
-            arm.name: ActiveModel(settings, store, wrap_model=wrap_model, on_replaced=on_replaced, slot=f"arm:{experiment.name}:{arm.name}")
+            arm.name: ActiveModel(settings, store, wrap_model=wrap_model, on_replaced=replaced(arm.name), slot=f"arm:{experiment.name}:{arm.name}")
             for arm in experiment.arms
         }
         self._by_name = {arm.name: arm for arm in experiment.arms}

@@ -120,7 +120,10 @@ class Visits:
         probe_after_s: float = 1.0,
     ) -> None:
         self.store = GuardedStore(store, guards)
-        self.gate = ModelGate(guards, loop_lag, probe_after_s)
+        self.gate = ModelGate(guards, loop_lag, probe_after_s, arm=arms.experiment.arms[0].name if arms is not None else None)
+        # In an experiment each arm's model has a gate of its own: one arm's failing model never
+        # shuts out the other's (service/resilience/guards.py).
+        self._arm_gates = {name: ModelGate(guards, loop_lag, probe_after_s, arm=name) for name in arms.models} if arms is not None else {}
         self.active = active
         self.history_length = history_length
         self.event_memory = event_memory
@@ -147,13 +150,17 @@ class Visits:
         """exclude_seen None: the serving artifact's default (its evaluation's choice)."""
         deadline = timing.started + budget_s
         active, arm = self.active_for(session_id)
-        answer = await self._click(active, session_id, item_id, event_id, count, exclude_seen, deadline, timing)
+        answer = await self._click(active, self._gate(arm), session_id, item_id, event_id, count, exclude_seen, deadline, timing)
         answer.arm = arm
         return answer
+
+    def _gate(self, arm: str | None) -> ModelGate:
+        return self._arm_gates[arm] if arm is not None else self.gate
 
     async def _click(
         self,
         active: ActiveModel,
+        gate: ModelGate,
         session_id: str,
         item_id: str,
         event_id: str | None,
@@ -163,7 +170,7 @@ class Visits:
         timing: Timing,
     ) -> Answer:
         try:
-            async with self._locks.hold(session_id, deadline if self.gate.guarded else None):
+            async with self._locks.hold(session_id, deadline if gate.guarded else None):
                 recent = self.recent
                 for attempt in range(MAX_ATTEMPTS):
                     # Only the first round may trust the recent write: a lost check-and-set means it is stale.
@@ -176,10 +183,10 @@ class Visits:
                     model, choice = active.current
                     kind = RecommenderKind(choice.recommender)
                     if event_id is not None and state is not None and event_id in state.event_ids:
-                        answer = await self._current(model, kind, state, count, exclude_seen, deadline, timing)
+                        answer = await self._current(gate, model, kind, state, count, exclude_seen, deadline, timing)
                         answer.duplicate = True
                         return answer
-                    new_state, answer = await self._apply(model, kind, state, item_id, event_id, count, exclude_seen, deadline, timing)
+                    new_state, answer = await self._apply(gate, model, kind, state, item_id, event_id, count, exclude_seen, deadline, timing)
                     value = encode(new_state)
                     if recent is None:
                         if await self.store.save(session_id, value, token_of(raw), deadline, timing):
@@ -206,7 +213,7 @@ class Visits:
             (log.debug if self.store.guarded else log.warning)("session store unavailable, answering without the visit: %s", exc)
             answer = self._answer(model, model.popularity.top(count), "popularity", "store_unavailable", 0)
         else:
-            answer = await self._current(model, RecommenderKind(choice.recommender), state, count, exclude_seen, deadline, timing)
+            answer = await self._current(self._gate(arm), model, RecommenderKind(choice.recommender), state, count, exclude_seen, deadline, timing)
         answer.recorded = "no"  # a request without a click records nothing
         answer.arm = arm
         return answer
@@ -221,6 +228,7 @@ class Visits:
 
     async def _apply(
         self,
+        gate: ModelGate,
         model: LoadedModel,
         kind: RecommenderKind,
         state: SessionState | None,
@@ -249,7 +257,7 @@ class Visits:
         elif kind is RecommenderKind.GRU:
             gru_state = self._stored_gru_state(model, state)
             steps = 1 if gru_state is not None else 1 + len(model.known_indices(history))
-            admission = self._admit(steps, True, deadline)
+            admission = self._admit(gate, steps, True, deadline)
             reason = admission if isinstance(admission, str) else None
             if reason is None:
 
@@ -257,7 +265,7 @@ class Visits:
                     start = gru_state if gru_state is not None else await self._replay(model, history)
                     return await model.gru.step(start, index, count, seen)
 
-                ran, reason = await self.gate.run(advance, admission, timing)
+                ran, reason = await gate.run(advance, admission, timing)
                 if ran is not None:
                     new_gru, ranking = ran
                     served_by = "gru"
@@ -266,7 +274,7 @@ class Visits:
                 ranking, served_by = self._fallback(model, index, count, seen)
                 hidden = previous = tag = None  # the next request rebuilds the state by replay
         elif kind is RecommenderKind.SESSION_KNN:
-            ranking, served_by, reason = await self._session_knn(model, (*history, item_id), index, count, seen, True, deadline, timing)
+            ranking, served_by, reason = await self._session_knn(gate, model, (*history, item_id), index, count, seen, True, deadline, timing)
             hidden = previous = tag = None  # the GRU did not see this click
         else:
             ranking, served_by = self._fallback(model, index if kind is RecommenderKind.NEIGHBOURS else -1, count, seen)
@@ -291,6 +299,7 @@ class Visits:
 
     async def _current(
         self,
+        gate: ModelGate,
         model: LoadedModel,
         kind: RecommenderKind,
         state: SessionState | None,
@@ -311,7 +320,7 @@ class Visits:
             reason = None if kind is RecommenderKind.POPULARITY else "unknown_item"
             return self._answer(model, ranking, served_by, reason, state.sequence)
         if kind is RecommenderKind.SESSION_KNN:
-            ranking, served_by, reason = await self._session_knn(model, state.items, last, count, seen, False, deadline, timing)
+            ranking, served_by, reason = await self._session_knn(gate, model, state.items, last, count, seen, False, deadline, timing)
             return self._answer(model, ranking, served_by, reason, state.sequence)
         if kind is not RecommenderKind.GRU:
             ranking, served_by = self._fallback(model, last if kind is RecommenderKind.NEIGHBOURS else -1, count, seen)
@@ -319,7 +328,7 @@ class Visits:
         stored = self._stored_gru_state(model, state)
         replay = stored is None or stored.previous is None
         steps = 1 + (len(model.known_indices(state.items)) if replay else 0)
-        admission = self._admit(steps, False, deadline)
+        admission = self._admit(gate, steps, False, deadline)
         reason = admission if isinstance(admission, str) else None
         if reason is None:
 
@@ -327,14 +336,14 @@ class Visits:
                 gru_state = await self._replay(model, state.items) if replay else GruState(stored.hidden, stored.previous, last)
                 return None, await model.gru.rank(gru_state, count, seen)
 
-            ran, reason = await self.gate.run(rerank, admission, timing)
+            ran, reason = await gate.run(rerank, admission, timing)
             if ran is not None:
                 return self._answer(model, ran[1], "gru", None, state.sequence)
         ranking, served_by = self._fallback(model, last, count, seen)
         return self._answer(model, ranking, served_by, reason, state.sequence)
 
     async def _session_knn(
-        self, model: LoadedModel, items: tuple[str, ...], last: int, count: int, seen: frozenset[int], saves: bool, deadline: float, timing: Timing
+        self, gate: ModelGate, model: LoadedModel, items: tuple[str, ...], last: int, count: int, seen: frozenset[int], saves: bool, deadline: float, timing: Timing
     ) -> tuple[Ranking, str, str | None]:
         """Session-KNN over the visit's recent clicks (the stored history), through the model's gate:
         (ranking, served_by, fallback reason); the neighbour table when it cannot answer."""
@@ -342,7 +351,7 @@ class Visits:
         if knn is None:  # the switch refuses such a pair; a model swapped under a request falls back
             ranking, served_by = self._fallback(model, last, count, seen)
             return ranking, served_by, "model_unavailable"
-        admission = self._admit(1, saves, deadline)
+        admission = self._admit(gate, 1, saves, deadline)
         reason = admission if isinstance(admission, str) else None
         if reason is None:
             visit = model.known_indices(items)
@@ -350,7 +359,7 @@ class Visits:
             async def recommend() -> tuple[None, Ranking]:
                 return None, knn.recommend(visit, count, seen)
 
-            ran, reason = await self.gate.run(recommend, admission, timing)
+            ran, reason = await gate.run(recommend, admission, timing, what="session-KNN")
             if ran is not None:
                 return ran[1], "session-knn", None
         ranking, served_by = self._fallback(model, last, count, seen)
@@ -358,10 +367,10 @@ class Visits:
 
     # -- guards ---------------------------------------------------------------------------------
 
-    def _admit(self, steps: int, saves: bool, deadline: float) -> Admission | str:
+    def _admit(self, gate: ModelGate, steps: int, saves: bool, deadline: float) -> Admission | str:
         """The model gate's admission for `steps` steps, keeping the store's reserve when the click saves."""
         reserve = self.store.save_reserve_s(time.perf_counter()) if saves else 0.0
-        return self.gate.admit(steps, deadline, reserve)
+        return gate.admit(steps, deadline, reserve)
 
     async def _save_remembered(
         self, recent: RecentWrites, session_id: str, value: bytes, state: SessionState, expected: bytes, deadline: float, timing: Timing

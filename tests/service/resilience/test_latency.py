@@ -88,3 +88,35 @@ def test_a_refused_model_is_probed_only_on_an_idle_loop_and_one_at_a_time() -> N
     guards.model_latency.observe(0.001, time.perf_counter())  # a fresh sample: no probe needed for a while
     gate._probing = False
     assert gate.admit(1, deadline, 0.0) == "budget"
+
+
+def test_a_failed_call_is_logged_under_its_own_name(caplog) -> None:
+    # A session-KNN failure must not read as a GRU failure in the log (the operator looks at the
+    # wrong model otherwise).
+    import asyncio
+    import logging
+    import time
+
+    from service.config import Settings
+    from service.resilience.guards import Guards
+    from service.resilience.model_gate import ModelGate
+    from service.runtime.timing import Timing
+
+    gate = ModelGate(Guards(Settings()))
+
+    async def broken():
+        raise RuntimeError("index damaged")
+
+    async def go(what: str | None):
+        admission = gate.admit(1, time.perf_counter() + 1.0, 0.0)
+        kwargs = {} if what is None else {"what": what}
+        return await gate.run(broken, admission, Timing(), **kwargs)
+
+    with caplog.at_level(logging.ERROR, logger="cairn.service"):
+        assert asyncio.run(go("session-KNN")) == (None, "model_error")
+        assert asyncio.run(go(None)) == (None, "model_error")
+    messages = [r.getMessage() for r in caplog.records]
+    assert messages == [
+        "session-KNN failed, answering from the neighbour table: RuntimeError",
+        "GRU step failed, answering from the neighbour table: RuntimeError",
+    ]

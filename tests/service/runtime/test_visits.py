@@ -203,3 +203,71 @@ def test_guards_off_runs_the_bare_path(settings_for, offline):
     assert answer.served_by == "gru" and answer.fallback_reason is None
     assert answer.item_ids == offline["v1"].top(CLICKS[:1], count=5)[0]
     assert guards.model.window() == (0, 0)  # nothing was counted
+
+
+class BrokenGru:
+    """The GRU recommender with every call failing: a model that crashes on every step."""
+
+    name = "gru"
+
+    def __init__(self, inner) -> None:
+        self.inner = inner
+
+    def start(self):
+        return self.inner.start()
+
+    async def step(self, state, item, count, seen=frozenset()):
+        raise StepError("injected failure")
+
+    advance = rank = step
+
+
+def test_an_arm_whose_model_fails_is_shut_out_alone(settings_for, tmp_path, offline):
+    # Two GRU arms: the first arm's model fails on every step. Its own breaker opens (its visitors
+    # get the neighbour table); the other arm's visitors keep the GRU, whose breaker never counted
+    # the first arm's failures.
+    import json
+
+    from service.events.experiment import load_experiment
+    from service.runtime.arms import Arms
+
+    declaration = tmp_path / "exp.json"
+    declaration.write_text(json.dumps({"name": "breakers", "salt": "salt-of-the-test", "arms": [
+        {"name": "a", "artifact": "shop/v1", "recommender": "gru", "share": 0.5},
+        {"name": "b", "artifact": "shop/v2", "recommender": "gru", "share": 0.5},
+    ]}), encoding="utf-8")  # fmt: skip
+    settings = settings_for(experiment=declaration, model_breaker_min_calls=4, model_breaker_failure_ratio=0.5, model_breaker_cool_down_s=600.0)
+    experiment = load_experiment(declaration)
+    wrapped: list[str] = []
+
+    def wrap(inner):  # the arms load in declaration order: the first model loaded is arm a's
+        wrapped.append("a" if not wrapped else "b")
+        return BrokenGru(inner) if wrapped[-1] == "a" else inner
+
+    async def go():
+        store = open_store(settings)
+        guards = Guards(settings, arms=["a", "b"])
+        arms = Arms(experiment, settings, store, wrap_model=wrap, on_replaced=guards.model_replaced)
+        for name, active in arms.models.items():
+            await active.open(ModelChoice("shop", "v1" if name == "a" else "v2", "gru"))
+        visits = Visits(store, arms.models["a"], 20, 16, guards, arms=arms)
+        answers = {"a": [], "b": []}
+        try:
+            for n in range(40):
+                answer = await visits.click(f"visit-{n}", CLICKS[0], None, 5, True, 10.0, Timing())
+                answers[answer.arm].append(answer)
+        finally:
+            await arms.close()
+            await store.close()
+        return answers, guards
+
+    answers, guards = asyncio.run(go())
+    assert len(answers["a"]) >= 8 and len(answers["b"]) >= 8
+    reasons_a = [a.fallback_reason for a in answers["a"]]
+    assert reasons_a[:4] == ["model_error"] * 4 and set(reasons_a[4:]) == {"model_unavailable"}  # open after 4 failed calls
+    assert all(a.served_by == "gru" and a.fallback_reason is None for a in answers["b"])
+    states = {b.name: b.state.label for b in guards.breakers()}
+    assert states["model@a"] == "open" and states["model@b"] == "closed" and "model" not in states
+    assert guards.model_guard("b").breaker.window()[0] == len(answers["b"])  # b counted its own calls only
+    guards.model_replaced("shop/v3", "a")  # a new artifact for arm a: its record starts afresh
+    assert guards.model_guard("a").breaker.state.label == "closed"
