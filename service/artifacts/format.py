@@ -43,6 +43,7 @@ from typing import Any
 
 import numpy as np
 
+from service.artifacts.mapped import mapped_npz
 from service.errors import ArtifactError
 from service.runtime.session_knn import WEIGHTINGS, SessionIndex
 
@@ -313,8 +314,8 @@ def load_artifact(path: Path) -> Artifact:
     manifest = verify_artifact(path)
     try:
         item_ids = json.loads((path / ITEM_IDS).read_text(encoding="utf-8"))
-        with np.load(path / NEIGHBOURS) as z:
-            n_items_arr, n_scores = z["items"], z["scores"]
+        neighbours = mapped_npz(path / NEIGHBOURS)  # shared pages, not a private copy per worker
+        n_items_arr, n_scores = neighbours["items"], neighbours["scores"]
         popularity = np.load(path / POPULARITY)
         # verify_artifact checked every file `files` lists; names are read only when listed there.
         item_names = json.loads((path / ITEM_NAMES).read_text(encoding="utf-8")) if ITEM_NAMES in manifest["files"] else {}
@@ -335,24 +336,24 @@ def load_artifact(path: Path) -> Artifact:
     session_index = None
     if SESSIONS in manifest["files"]:
         try:
-            with np.load(path / SESSIONS) as z:
-                session_index = SessionIndex(
-                    session_indptr=z["session_indptr"].astype(np.int64),
-                    session_items=z["session_items"].astype(np.int32),
-                    item_indptr=z["item_indptr"].astype(np.int64),
-                    item_sessions=z["item_sessions"].astype(np.int32),
-                    candidates=int(manifest.get("session_knn", {}).get("candidates", 0)) if isinstance(manifest.get("session_knn"), dict) else 0,
-                )
-        except (OSError, ValueError, KeyError) as exc:
+            z = mapped_npz(path / SESSIONS)
+            session_index = SessionIndex(
+                session_indptr=z["session_indptr"].astype(np.int64, copy=False),
+                session_items=z["session_items"].astype(np.int32, copy=False),
+                item_indptr=z["item_indptr"].astype(np.int64, copy=False),
+                item_sessions=z["item_sessions"].astype(np.int32, copy=False),
+                candidates=int(manifest.get("session_knn", {}).get("candidates", 0)) if isinstance(manifest.get("session_knn"), dict) else 0,
+            )
+        except (OSError, ValueError, KeyError, ArtifactError) as exc:
             raise ArtifactError(f"{path / SESSIONS}: unreadable session index ({exc})") from exc
         _check_session_index(n, session_index, manifest.get("session_knn"), str(path))
     return Artifact(
         path=path,
         manifest=manifest,
         item_ids=item_ids,
-        neighbour_items=n_items_arr.astype(np.int32),
-        neighbour_scores=n_scores.astype(np.float32),
-        popularity=popularity.astype(np.float32),
+        neighbour_items=n_items_arr.astype(np.int32, copy=False),
+        neighbour_scores=n_scores.astype(np.float32, copy=False),
+        popularity=popularity.astype(np.float32, copy=False),
         item_index={item: i for i, item in enumerate(item_ids)},
         item_names=item_names,
         session_index=session_index,

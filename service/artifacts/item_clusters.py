@@ -33,7 +33,7 @@ from typing import Any
 
 import numpy as np
 
-from service.artifacts.item_vectors import mapped_array
+from service.artifacts.mapped import mapped_array
 from service.errors import ArtifactError
 
 CLUSTER_CENTRES = "cluster_centres.npy"

@@ -30,6 +30,7 @@ from typing import Any
 
 import numpy as np
 
+from service.artifacts.mapped import mapped_array
 from service.errors import ArtifactError
 
 FEATURE_GRAPH = "features.onnx"
@@ -69,17 +70,6 @@ class ItemVectors:
     @property
     def n_items(self) -> int:
         return self.vectors.shape[0]
-
-
-def mapped_array(file: Path, dtype: type, ndim: int) -> np.ndarray:
-    """A .npy file as a read-only memory map; ArtifactError when unreadable or of another type."""
-    try:
-        a = np.load(file, mmap_mode="r")
-    except (OSError, ValueError) as exc:
-        raise ArtifactError(f"{file}: unreadable ({exc})") from exc
-    if a.dtype != dtype or a.ndim != ndim:
-        raise ArtifactError(f"{file}: {a.dtype} with {a.ndim} axes, expected {np.dtype(dtype)} with {ndim}")
-    return a
 
 
 def has_item_vectors(manifest: dict[str, Any]) -> bool:

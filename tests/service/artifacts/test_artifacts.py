@@ -306,3 +306,18 @@ def test_blocks_that_do_not_make_the_table_are_refused_and_nothing_is_left(tmp_p
     with pytest.raises(ArtifactError, match=said.replace("(", r"\(").replace(")", r"\)")):
         small_artifact(tmp_path, extra_files={"rows.npy": RowBlocks((7, 3), np.dtype(np.float32), lambda: iter(blocks(table)))})
     assert not (tmp_path / "garden").exists() or not any((tmp_path / "garden").iterdir())
+
+
+def test_the_fallback_tables_are_mapped_from_the_files_not_copied(tmp_path: Path) -> None:
+    # Two workers on one host then share the neighbour table's pages (a million items: 160 MB each).
+    import mmap
+
+    def maps_a_file(a: np.ndarray) -> bool:
+        base = a
+        while base is not None and not isinstance(base, mmap.mmap):
+            base = base.base
+        return base is not None
+
+    a = load_artifact(small_artifact(tmp_path))
+    assert maps_a_file(a.neighbour_items) and maps_a_file(a.neighbour_scores)
+    assert a.neighbour_items.dtype == np.int32 and a.neighbour_items[0].tolist() == [1, 2]
