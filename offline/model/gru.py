@@ -22,6 +22,7 @@ from typing import Any
 import torch
 from torch import nn
 
+from offline.model.gru_cell import gru_step
 from service.artifacts.format import RENAMED_HYPERPARAMETERS
 from service.errors import InputDataError
 
@@ -85,11 +86,17 @@ class NextClickGRU(nn.Module):
         """One click per session: items int64 [B], hidden [L, B, H] -> (features [B, D], new hidden [L, B, H])."""
         return self.recur(self.embedding(items), hidden)
 
-    def recur(self, embedded: torch.Tensor, hidden: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """`step` from the clicked items' embedding rows [B, E] (the trainer gathers them itself, see step_rows)."""
+    def recur(self, embedded: torch.Tensor, hidden: torch.Tensor, hand_backward: bool = False) -> tuple[torch.Tensor, torch.Tensor]:
+        """`step` from the clicked items' embedding rows [B, E] (the trainer gathers them itself, see step_rows).
+
+        `hand_backward`: the GRU step through gru_cell (the same equations, its gradient written out; the trainer's path)."""
         x = self.drop_embedding(embedded)  # [B, E]
-        out, hidden = self.gru(x.unsqueeze(0), hidden)  # out [1, B, H]
-        f = self.drop_hidden(out.squeeze(0))  # [B, H]
+        if hand_backward:
+            out, hidden = gru_step(self.gru, x, hidden)  # [B, H], [L, B, H]
+        else:
+            out, hidden = self.gru(x.unsqueeze(0), hidden)  # out [1, B, H]
+            out = out.squeeze(0)
+        f = self.drop_hidden(out)  # [B, H]
         for layer in self.ff:
             f = torch.tanh(layer(f))  # [B, D]
         return f, hidden

@@ -169,7 +169,7 @@ def train_epoch(
         candidates[:b] = targets
         candidates[b:] = sampler.draw()
         rows = StepRows(model, inputs, candidates)  # the item-table rows this step reads, see step_rows
-        features, hidden = model.recur(rows.embedded, hidden)  # [B, D], [L, B, H]
+        features, hidden = model.recur(rows.embedded, hidden, hand_backward=True)  # [B, D], [L, B, H]
         scores = score_rows(features, rows.weights, rows.bias)  # [B, B + M]
         if log_q is not None:
             scores = logq_corrected(scores, log_q[candidates])
