@@ -26,17 +26,28 @@ closed form derived beside it. Mask, loss and gradient on one thread at [512, 25
 against these: bpr-max 19 -> 5 ms, top1-max 11 -> 6.5, top1 7 -> 5, bpr 6 -> 3.5, cross-entropy
 4.8 -> 3. tests/offline/test_losses.py checks every value against its published formula and
 every gradient with `torch.autograd.gradcheck`.
+
+Merged columns: `counts` float [C] (optional) says how many candidates column j stands for
+(step_columns merges the repeats of a sampled item into one column). A negative column then
+counts w_j = counts_j times: in the means of BPR and TOP1 (sum_j w_j f(r_j) / sum_j w_j) and in
+the softmax of BPR-max, TOP1-max and cross-entropy (w_j exp(r_j) / sum w exp(r), taken as a
+log(w_j) added to the logit). That is the loss over the unmerged columns, and its gradient per
+merged column is the sum over the copies; the backward formulas below hold for any positive w.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
-from typing import Any
+from typing import Any, Protocol
 
 import torch
 import torch.nn.functional as F
 
-LossFn = Callable[[torch.Tensor, torch.Tensor], torch.Tensor]
+
+class LossFn(Protocol):
+    """scores [B, C], negatives [B, C], counts [C] or None (see "Merged columns" above) -> the batch loss."""
+
+    def __call__(self, scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None = None) -> torch.Tensor: ...
+
 
 LOSS_NAMES = ("top1", "bpr", "cross-entropy", "bpr-max", "top1-max")
 
@@ -84,6 +95,16 @@ def _masked_logits(scores: torch.Tensor, keep: torch.Tensor) -> torch.Tensor:
     return (keep - 1.0).mul_(-_MASKED_LOGIT).add_(scores)  # [B, C]
 
 
+def _weighted(negatives: torch.Tensor, counts: torch.Tensor | None) -> torch.Tensor:
+    return negatives if counts is None else negatives * counts.to(negatives.dtype)  # [B, C]
+
+
+def _weighted_logits(scores: torch.Tensor, keep: torch.Tensor, counts: torch.Tensor | None) -> torch.Tensor:
+    """Masked logits plus log(count) per column: the softmax over them is w_j exp(r_j) / sum w exp(r)."""
+    logits = _masked_logits(scores, keep)  # [B, C]
+    return logits if counts is None else logits.add_(counts.to(scores.dtype).log())
+
+
 def _dsigmoid(s: torch.Tensor) -> torch.Tensor:
     """sigma'(x) from s = sigma(x): s (1 - s)."""
     return s * (1.0 - s)
@@ -93,8 +114,8 @@ class _BPR(torch.autograd.Function):
     # L_i = 1/n_i sum_j w_j softplus(r_j - r_p)     (-log sigmoid(x) = softplus(-x))
     # dL_i/dr_j = w_j sigmoid(r_j - r_p) / n_i;  dL_i/dr_p = -sum_j of those
     @staticmethod
-    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
-        w = negatives.to(scores.dtype)
+    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None) -> torch.Tensor:
+        w = _weighted(negatives.to(scores.dtype), counts)
         n, rho = _row_weights(w)
         d = scores - _positive(scores)  # [B, C]
         loss = ((F.softplus(d) * w).sum(1) / n * rho).sum()
@@ -102,19 +123,19 @@ class _BPR(torch.autograd.Function):
         return loss
 
     @staticmethod
-    def backward(ctx: Any, grad_out: torch.Tensor) -> tuple[torch.Tensor, None]:
+    def backward(ctx: Any, grad_out: torch.Tensor) -> tuple[torch.Tensor, None, None]:
         d, w, coef = ctx.saved_tensors
         grad = torch.sigmoid(d).mul_(w).mul_((coef * grad_out).unsqueeze(1))  # [B, C]
         grad.diagonal().sub_(grad.sum(1))  # the target column has w = 0, so it holds only this
-        return grad, None
+        return grad, None, None
 
 
 class _TOP1(torch.autograd.Function):
     # L_i = 1/n_i sum_j w_j (a_j + b_j),  a_j = sigmoid(r_j - r_p), b_j = sigmoid(r_j^2)
     # dL_i/dr_j = w_j (a_j' + 2 r_j b_j') / n_i;  dL_i/dr_p = -sum_j w_j a_j' / n_i
     @staticmethod
-    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
-        w = negatives.to(scores.dtype)
+    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None) -> torch.Tensor:
+        w = _weighted(negatives.to(scores.dtype), counts)
         n, rho = _row_weights(w)
         a = torch.sigmoid(scores - _positive(scores))  # [B, C]
         b = torch.sigmoid(scores * scores)  # [B, C]
@@ -129,18 +150,21 @@ class _TOP1(torch.autograd.Function):
         to_target = ga.sum(1)  # [B]
         grad = _dsigmoid(b).mul_(scores).mul_(2.0).mul_(w).add_(ga)  # [B, C]
         grad.diagonal().sub_(to_target)
-        return grad.mul_((coef * grad_out).unsqueeze(1)), None
+        return grad.mul_((coef * grad_out).unsqueeze(1)), None, None
 
 
 class _CrossEntropy(torch.autograd.Function):
     # L_i = -log p_i,  p = softmax over the target and its negatives;  dL_i/dr = p - onehot(i)
     @staticmethod
-    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
+    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None) -> torch.Tensor:
         negatives = negatives.to(scores.dtype)
         rho = _row_share(negatives)
         keep = negatives.clone()
         keep.diagonal().fill_(1.0)
-        log_p = torch.log_softmax(_masked_logits(scores, keep), dim=1)  # [B, C]
+        logits = _weighted_logits(scores, keep, counts)  # [B, C]
+        if counts is not None:  # the target column counts once, whatever else it stands for
+            logits.diagonal().sub_(counts[: len(scores)].to(scores.dtype).log())
+        log_p = torch.log_softmax(logits, dim=1)  # [B, C]
         ctx.save_for_backward(log_p, rho)
         return -(log_p.diagonal() * rho).sum()
 
@@ -149,7 +173,7 @@ class _CrossEntropy(torch.autograd.Function):
         log_p, rho = ctx.saved_tensors
         grad = log_p.exp()  # [B, C]
         grad.diagonal().sub_(1.0)
-        return grad.mul_((rho * grad_out).unsqueeze(1)), None
+        return grad.mul_((rho * grad_out).unsqueeze(1)), None, None
 
 
 class _BPRMax(torch.autograd.Function):
@@ -165,10 +189,11 @@ class _BPRMax(torch.autograd.Function):
     # which caps the value (at 87 in float32) but keeps the gradient right in that limit:
     # q <= sigma -> 0, so the target is still pushed up with the full weight -1.
     @staticmethod
-    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor, reg: float) -> torch.Tensor:
+    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None,
+                reg: float) -> torch.Tensor:
         negatives = negatives.to(scores.dtype)
         rho = _row_share(negatives)
-        s = torch.softmax(_masked_logits(scores, negatives), dim=1)  # [B, C], 0 off the negatives
+        s = torch.softmax(_weighted_logits(scores, negatives, counts), dim=1)  # [B, C], 0 off the negatives
         sigma = torch.sub(_positive(scores), scores).sigmoid_()  # [B, C]
         s_sigma = s * sigma  # [B, C]
         a = s_sigma.sum(1, keepdim=True).clamp_(min=torch.finfo(scores.dtype).tiny)  # [B, 1]
@@ -180,7 +205,7 @@ class _BPRMax(torch.autograd.Function):
         return loss
 
     @staticmethod
-    def backward(ctx: Any, grad_out: torch.Tensor) -> tuple[torch.Tensor, None, None]:
+    def backward(ctx: Any, grad_out: torch.Tensor) -> tuple[torch.Tensor, None, None, None]:
         scores, s, sr, aq, a, r_reg, rho = ctx.saved_tensors
         w = (rho * grad_out).unsqueeze(1)  # [B, 1]
         grad = s * (1.0 - ctx.reg * r_reg).mul_(w)  # [B, C]
@@ -188,17 +213,17 @@ class _BPRMax(torch.autograd.Function):
         grad.addcmul_(torch.add(scores, 2.0).mul_(sr), w * ctx.reg)  # + lambda s_k r_k (r_k + 2)
         # The target column has s = q = 0, so it holds only this.
         grad.diagonal().add_((aq.sum(1, keepdim=True) / a - 1.0).mul_(w).squeeze(1))
-        return grad, None, None
+        return grad, None, None, None
 
 
 class _TOP1Max(torch.autograd.Function):
     # L_i = sum_j s_j t_j,  t_j = a_j + b_j,  a_j = sigmoid(r_j - r_p),  b_j = sigmoid(r_j^2)
     #   dL_i/dr_k = s_k (t_k - L_i) + s_k (a_k' + 2 r_k b_k');   dL_i/dr_p = -sum_j s_j a_j'
     @staticmethod
-    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
+    def forward(ctx: Any, scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None) -> torch.Tensor:
         negatives = negatives.to(scores.dtype)
         rho = _row_share(negatives)
-        s = torch.softmax(_masked_logits(scores, negatives), dim=1)  # [B, C], 0 off the negatives
+        s = torch.softmax(_weighted_logits(scores, negatives, counts), dim=1)  # [B, C], 0 off the negatives
         a = torch.sigmoid(scores - _positive(scores))  # [B, C]
         b = torch.sigmoid(scores * scores)  # [B, C]
         row = (s * (a + b)).sum(1, keepdim=True)  # [B, 1]
@@ -212,27 +237,28 @@ class _TOP1Max(torch.autograd.Function):
         to_target = ga.sum(1)  # [B]
         grad = _dsigmoid(b).mul_(scores).mul_(2.0).add_(a).add_(b).sub_(row).mul_(s).add_(ga)  # [B, C]
         grad.diagonal().sub_(to_target)
-        return grad.mul_((rho * grad_out).unsqueeze(1)), None
+        return grad.mul_((rho * grad_out).unsqueeze(1)), None, None
 
 
-def bpr(scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
-    return _BPR.apply(scores, negatives)
+def bpr(scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None = None) -> torch.Tensor:
+    return _BPR.apply(scores, negatives, counts)
 
 
-def top1(scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
-    return _TOP1.apply(scores, negatives)
+def top1(scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None = None) -> torch.Tensor:
+    return _TOP1.apply(scores, negatives, counts)
 
 
-def cross_entropy(scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
-    return _CrossEntropy.apply(scores, negatives)
+def cross_entropy(scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None = None) -> torch.Tensor:
+    return _CrossEntropy.apply(scores, negatives, counts)
 
 
-def bpr_max(scores: torch.Tensor, negatives: torch.Tensor, reg: float = 1.0) -> torch.Tensor:
-    return _BPRMax.apply(scores, negatives, reg)
+def bpr_max(scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None = None,
+            reg: float = 1.0) -> torch.Tensor:
+    return _BPRMax.apply(scores, negatives, counts, reg)
 
 
-def top1_max(scores: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
-    return _TOP1Max.apply(scores, negatives)
+def top1_max(scores: torch.Tensor, negatives: torch.Tensor, counts: torch.Tensor | None = None) -> torch.Tensor:
+    return _TOP1Max.apply(scores, negatives, counts)
 
 
 def logq_corrected(scores: torch.Tensor, log_q: torch.Tensor) -> torch.Tensor:
@@ -252,7 +278,7 @@ def logq_corrected(scores: torch.Tensor, log_q: torch.Tensor) -> torch.Tensor:
 def get_loss(name: str, score_penalty: float = 1.0) -> LossFn:
     """The loss named `name` (one of LOSS_NAMES); `score_penalty` is BPR-max's score regularisation lambda."""
     if name == "bpr-max":
-        return lambda scores, negatives: bpr_max(scores, negatives, reg=score_penalty)
+        return lambda scores, negatives, counts=None: bpr_max(scores, negatives, counts, reg=score_penalty)
     table: dict[str, LossFn] = {"top1": top1, "bpr": bpr, "cross-entropy": cross_entropy, "top1-max": top1_max}
     if name not in table:
         raise ValueError(f"unknown loss {name!r}; expected one of {', '.join(LOSS_NAMES)}")

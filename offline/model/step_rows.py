@@ -48,7 +48,9 @@ def _distinct(items: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
 class StepRows:
     """Input embeddings [B, E], output rows [C, D] and biases [C, 1] of one step's clicks and candidates."""
 
-    def __init__(self, model: NextClickGRU, inputs: torch.Tensor, candidates: torch.Tensor) -> None:
+    def __init__(self, model: NextClickGRU, inputs: torch.Tensor, candidates: torch.Tensor,
+                 distinct: tuple[torch.Tensor, torch.Tensor] | None = None) -> None:
+        """`distinct`: the candidates' (sorted distinct items [U], inverse [C]) where the caller has them already."""
         b, c = len(inputs), len(candidates)
         if model.output is None:  # tied: one table serves both lookups, their gradients add up per row
             both = _TableRows(model.embedding.weight, *_distinct(torch.cat([inputs, candidates])))
@@ -56,7 +58,7 @@ class StepRows:
             self.embedded = both.lookup(0, b)  # [B, E]
             self.weights = both.lookup(b, b + c)  # [C, D]
         else:
-            rows, inverse = _distinct(candidates)  # shared by the output table and its bias
+            rows, inverse = distinct or _distinct(candidates)  # shared by the output table and its bias
             out = _TableRows(model.output.weight, rows, inverse)
             self.tables = [_TableRows(model.embedding.weight, *_distinct(inputs)), out,
                            _TableRows(model.output_bias.weight, rows, inverse)]

@@ -6,6 +6,7 @@ losses of Hidasi and Karatzoglou (CIKM 2018):
   * each step scores its B targets against each other plus M items drawn by popularity**alpha,
     so a step reads B + M output rows instead of all n_items (or, `negatives = ALL_ITEMS`, each
     target is scored against every other item: exact, and affordable for a few thousand items);
+    repeats among the sampled items are scored once and counted per copy (step_columns);
   * embedding and output tables get sparse gradients, so an optimiser step updates only those
     rows (a dense update of a 40,000-row table alone costs tens of ms);
   * the hidden state is carried from step to step and detached (one-step truncated BPTT, as in
@@ -39,6 +40,7 @@ from offline.evaluate.gru_scorer import TorchGRUScorer
 from offline.model.losses import LOSS_NAMES, LossFn, get_loss, logq_corrected, negative_mask
 from offline.model.progress import LineProgress, epoch_progress
 from offline.model.row_adagrad import RowAdagrad
+from offline.model.step_columns import merge_columns
 from offline.model.step_rows import StepRows
 
 OPTIMIZERS = ("adagrad", "adam")
@@ -157,9 +159,8 @@ def train_epoch(
 
     `log_q` float32 [n_items] (candidate_log_q): the log-Q correction of each candidate's score."""
     model.train()
-    b, m = batch_size, sampler.n_negatives
+    b = batch_size
     hidden = model.init_hidden(b)  # [L, B, H]
-    candidates = torch.empty(b + m, dtype=torch.int64)  # [B + M]: the step's targets, then its negatives
     loss_sum = torch.zeros(())  # summed without .item() per step
     n_steps = 0
     start = time.perf_counter()
@@ -168,14 +169,19 @@ def train_epoch(
         targets = torch.from_numpy(step.targets)  # [B]
         if step.reset.any():
             hidden = hidden.masked_fill(torch.from_numpy(step.reset).view(1, b, 1), 0.0)  # [L, B, H]
-        candidates[:b] = targets
-        candidates[b:] = sampler.draw()
-        rows = StepRows(model, inputs, candidates)  # the item-table rows this step reads, see step_rows
+        if sampler.in_batch:  # the targets, then each other sampled item once, counted per copy (step_columns)
+            columns = merge_columns(targets, sampler.draw())
+            candidates, negatives, counts = columns.items, columns.negatives, columns.counts  # [C], [B, C], [C]
+            distinct: tuple[torch.Tensor, torch.Tensor] | None = (columns.rows, columns.inverse)
+        else:  # every item once after the targets: nothing to merge
+            candidates = torch.cat([targets, sampler.draw()])  # [B + n_items]
+            negatives, counts, distinct = negative_mask(targets, candidates, in_batch=False), None, None
+        rows = StepRows(model, inputs, candidates, distinct)  # the item-table rows this step reads, see step_rows
         features, hidden = model.recur(rows.embedded, hidden, hand_backward=True)  # [B, D], [L, B, H]
-        scores = score_rows(features, rows.weights, rows.bias)  # [B, B + M]
+        scores = score_rows(features, rows.weights, rows.bias)  # [B, C]
         if log_q is not None:
             scores = logq_corrected(scores, log_q[candidates])
-        loss = loss_fn(scores, negative_mask(targets, candidates, in_batch=sampler.in_batch))
+        loss = loss_fn(scores, negatives, counts)
         for opt in optimizers:
             opt.zero_grad(set_to_none=True)
         loss.backward()

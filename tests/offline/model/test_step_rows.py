@@ -1,11 +1,12 @@
 """The optimised training step against a straightforward one written with plain PyTorch.
 
-Reference: lookups through `nn.Embedding(sparse=True)` (`model.step`, `model.score_candidates`),
+Reference: lookups through `nn.Embedding(sparse=True)` (`model.step`, `model.score_candidates`, nn.GRU),
 BPR-max written out with autograd from its published formula (Hidasi and Karatzoglou, CIKM 2018,
 eq. 8: -log sum_j s_j sigmoid(r_p - r_j) + lambda sum_j s_j r_j^2, s = softmax over the
-negatives), and `torch.optim.Adagrad` over every parameter. The optimised step (StepRows,
-the hand-written loss backward, RowAdagrad) must give the same loss, the same gradients and the
-same parameters after the update, up to float32 rounding.
+negatives), and `torch.optim.Adagrad` over every parameter. The optimised step (merged
+columns, StepRows, the GRU cell and the loss with hand-written backward passes, RowAdagrad) must
+give the same loss, the same gradients and the same parameters after the update, up to float32
+rounding.
 """
 
 from __future__ import annotations
@@ -17,6 +18,7 @@ import torch
 from offline.model.gru import GRUConfig, NextClickGRU, score_rows
 from offline.model.losses import get_loss, negative_mask
 from offline.model.row_adagrad import RowAdagrad
+from offline.model.step_columns import merge_columns
 from offline.model.session_batches import NegativeSampler, SessionParallelBatches, sampling_weights
 from offline.model.step_rows import StepRows
 from offline.model.train import build_optimizers, train_epoch
@@ -62,6 +64,10 @@ def test_step_rows_give_the_reference_loss_and_gradients(tie: bool) -> None:
     loss = get_loss("bpr-max")(score_rows(f, rows.weights, rows.bias), negative_mask(targets, candidates))
     loss.backward()
     rows.hand_over()
+    assert_same_step(ref, ref_loss, fast, loss)
+
+
+def assert_same_step(ref: NextClickGRU, ref_loss: torch.Tensor, fast: NextClickGRU, loss: torch.Tensor) -> None:
     torch.testing.assert_close(loss, ref_loss)
     for (name, p), q in zip(ref.named_parameters(), fast.parameters()):
         if p.grad.is_sparse:
@@ -69,6 +75,28 @@ def test_step_rows_give_the_reference_loss_and_gradients(tie: bool) -> None:
             torch.testing.assert_close(q.grad.to_dense(), p.grad.to_dense(), msg=name)  # to_dense sums repeats
         else:
             torch.testing.assert_close(q.grad, p.grad, msg=name)
+
+
+@pytest.mark.parametrize("tie", [False, True], ids=["separate-output", "tied-output"])
+def test_the_trainers_step_gives_the_reference_loss_and_gradients(tie: bool) -> None:
+    # As train_epoch runs it: repeats merged into counted columns (step_columns), their distinct rows
+    # handed to StepRows, the GRU through gru_cell; the reference is the plain step above.
+    inputs, targets, candidates = step_inputs(0)
+    hidden = torch.randn(1, B, 6, generator=torch.Generator().manual_seed(1))
+    ref = model(tie)
+    f, _ = ref.step(inputs, hidden)
+    ref_loss = reference_bpr_max(ref.score_candidates(f, candidates), targets, candidates)
+    ref_loss.backward()
+
+    fast = model(tie)
+    columns = merge_columns(targets, candidates[B:])
+    assert len(columns.items) < len(candidates)  # the example has repeats to merge
+    rows = StepRows(fast, inputs, columns.items, (columns.rows, columns.inverse))
+    f, _ = fast.recur(rows.embedded, hidden, hand_backward=True)
+    loss = get_loss("bpr-max")(score_rows(f, rows.weights, rows.bias), columns.negatives, columns.counts)
+    loss.backward()
+    rows.hand_over()
+    assert_same_step(ref, ref_loss, fast, loss)
 
 
 def test_row_adagrad_updates_like_torch_adagrad() -> None:
