@@ -105,14 +105,12 @@ class _Server:
 
 def _same_weights_checkpoint(artifact: Path, hidden: int, seed: int, out: Path) -> None:
     """The artifact's weights as a PyTorch checkpoint, rebuilt from the seed as write_random_artifact does."""
-    import torch
-
     from offline.export.onnx_graph import artifact_step_graph
-    from offline.model.gru import GRUConfig, NextClickGRU, save_checkpoint
+    from offline.export.artifact_writer import random_model
+    from offline.model.gru import GRUConfig, save_checkpoint
     from service.artifacts.item_vectors import EMBEDDING, ITEM_VECTORS
 
-    torch.manual_seed(seed)
-    model = NextClickGRU(GRUConfig(n_items=len(load_artifact(artifact).item_ids), embedding_size=hidden, hidden_size=hidden)).eval()
+    model = random_model(GRUConfig(n_items=len(load_artifact(artifact).item_ids), embedding_size=hidden, hidden_size=hidden), seed)
     # Byte-equal graphs and equal item tables (the graph refers to them) hold equal weights: the
     # torch variants then run exactly the served model.
     same_tables = np.array_equal(np.load(artifact / EMBEDDING), model.embedding.weight.detach().numpy()) and np.array_equal(

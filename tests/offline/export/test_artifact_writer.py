@@ -411,18 +411,18 @@ def test_random_artifact_weights_follow_the_training_init_and_the_seed(tmp_path:
     # the training init: the tables uniform within +-sqrt(6 / (fan_in + fan_out)) (NextClickGRU),
     # the bias zero, and the GRU's one-dimensional biases PyTorch's own nn.GRU init, uniform within
     # +-1/sqrt(hidden) (the nn.GRU documentation) -- not whatever memory held.
-    from offline.export.artifact_writer import _random_model
+    from offline.export.artifact_writer import random_model as export_random_model
     from offline.model.gru import GRUConfig
 
     config = GRUConfig(n_items=400, embedding_size=12, hidden_size=12)
-    model = _random_model(config, seed=3)
+    model = export_random_model(config, seed=3)
     bound = (6.0 / (400 + 12)) ** 0.5
     table = model.embedding.weight.detach().numpy()
     assert np.abs(table).max() <= bound and table.std() > bound / 3  # spread over the range, not zeros
     assert not model.output_bias.weight.detach().numpy().any()
     gru_bias = model.gru.bias_ih_l0.detach().numpy()
     assert np.abs(gru_bias).max() <= 1 / 12**0.5 and gru_bias.std() > 0
-    again = _random_model(config, seed=3)
+    again = export_random_model(config, seed=3)
     assert all(np.array_equal(a.detach().numpy(), b.detach().numpy()) for a, b in zip(model.parameters(), again.parameters()))
-    other = _random_model(config, seed=4)
+    other = export_random_model(config, seed=4)
     assert not np.array_equal(other.embedding.weight.detach().numpy(), table)
