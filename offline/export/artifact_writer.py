@@ -5,6 +5,7 @@ provenance; and random-weight artifacts of any size for benchmarks and tests."""
 from __future__ import annotations
 
 import json
+from concurrent.futures import ThreadPoolExecutor
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -12,6 +13,7 @@ from typing import Any
 import numpy as np
 
 from service.artifacts.format import write_artifact
+from service.artifacts.item_clusters import ITEM_CLUSTER_FILES
 from service.artifacts.item_vectors import item_vectors_manifest
 from service.errors import ArtifactError, InputDataError
 from offline.data.dataset import PreparedData, SessionSplit
@@ -267,12 +269,20 @@ def _write_model_artifact(
     files of the reduced-precision paths, the clustered index (calibrated on states of `visits`;
     `clusters` None: from CLUSTERS_FROM items on), and the model's own manifest fields."""
     weights = weights_of(model)
-    extra: dict[str, Any] = item_vector_files(weights)
-    fields = {**manifest_fields, "model": _model_fields(model.config), "item_vectors": item_vectors_manifest()}
+    vector_files = item_vector_files(weights)
+    # The tables that are ready are written first; the reduced copies are made as they are written, last.
+    extra: dict[str, Any] = {f: c for f, c in vector_files.items() if not callable(c)}
+    fields: dict[str, Any] = {**manifest_fields, "model": _model_fields(model.config), "item_vectors": item_vectors_manifest()}
     if clusters or (clusters is None and weights.n_items >= CLUSTERS_FROM):
         features = visit_features(model, visits, np.random.default_rng(0))
-        cluster_files, fields["item_clusters"] = item_cluster_files(weights.output, weights.output_bias, features)
-        extra.update(cluster_files)
+        # The index is built in a second thread while the ready files are written (numpy, torch and
+        # file writes let go of the GIL): at a million items both take seconds.
+        builder = ThreadPoolExecutor(max_workers=1, thread_name_prefix="item-clusters")
+        index = builder.submit(item_cluster_files, weights.output, weights.output_bias, features)
+        builder.shutdown(wait=False)
+        extra.update({f: (lambda f=f: index.result()[0][f]) for f in ITEM_CLUSTER_FILES})
+        fields["item_clusters"] = lambda: index.result()[1]
+    extra.update({f: c for f, c in vector_files.items() if callable(c)})
     return write_artifact(store, name, version, step_graph=graph_from_weights(weights, external=True).SerializeToString(),
                           extra_files=extra, manifest_fields=fields, **tables)  # fmt: skip
 

@@ -94,10 +94,10 @@ def kmeans(
     return centres
 
 
-def exact_top(features: np.ndarray, vectors: np.ndarray, bias: np.ndarray, k: int = AGREEMENT_TOP, step: int = _SLICE) -> np.ndarray:
+def exact_top(features: np.ndarray, vectors: np.ndarray, bias: np.ndarray, k: int = AGREEMENT_TOP, step: int = 16_384) -> np.ndarray:
     """The exact top-k item indices of each feature row (order within the k not kept): int64 [S, k].
     Slices of `step` items (torch.topk per slice, then over the kept k + k), so the temporaries stay
-    at [S, step]."""
+    at [S, step] (32 MB for 512 states)."""
     import torch
 
     f = torch.from_numpy(np.ascontiguousarray(features, dtype=np.float32))

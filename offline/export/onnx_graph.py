@@ -26,6 +26,7 @@ torch stacks (r, z, n), ONNX stacks (z, r, h) (ONNX Operators.md, GRU; torch.nn.
 from __future__ import annotations
 
 import io
+from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
 
@@ -33,6 +34,7 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
+from service.artifacts.format import RowBlocks
 from service.artifacts.item_vectors import (
     CANDIDATE_GRAPH_FORMAT,
     CANDIDATES_FP16,
@@ -57,6 +59,7 @@ OPSET = 17
 IR_VERSION = 8
 GRAPH_FORMAT = "cairn-gru-step/1"  # stored in the graph's metadata
 _QUANTISE_SLICE = 65_536  # items quantised at a time
+_TRANSPOSE_DIMS = 25  # rows of a transposed reduced copy made at a time
 
 
 @dataclass
@@ -365,31 +368,35 @@ def quantise_int8(vectors: np.ndarray, scales: np.ndarray | None = None) -> tupl
     Symmetric per item (common practice) on 7 bits (see build_candidate_graph for why):
     scale_j = max_d |v_jd| / INT8_LEVELS, code = round(v / scale_j) in -63..63,
     so |v_jd - scale_j code_jd| <= scale_j / 2. An all-zero vector gets scale 1 and codes 0.
-    Done in slices of items so a million-item table needs no full-size float temporaries.
     """
     scales = int8_scales(vectors) if scales is None else scales
-    codes = np.empty((vectors.shape[1], len(vectors)), dtype=np.int8)
-    for lo in range(0, len(vectors), _QUANTISE_SLICE):
-        v = vectors[lo : lo + _QUANTISE_SLICE]
-        s = scales[lo : lo + _QUANTISE_SLICE]
-        codes[:, lo : lo + _QUANTISE_SLICE] = np.clip(np.rint(v / s[:, None]), -INT8_LEVELS, INT8_LEVELS).astype(np.int8).T
-    return codes, scales
+    return np.concatenate(list(_transposed_blocks(vectors, np.int8, lambda v, lo: _codes(v, scales[lo : lo + len(v)])))), scales
 
 
 def half_transposed(vectors: np.ndarray) -> np.ndarray:
-    """float32 [n, D] -> float16 [D, n] (transposed for the MatMul), converted and transposed a slice
-    of items at a time: a whole-table transpose walks memory across rows (1.6 s at a million items,
-    the slices 0.5 s)."""
-    out = np.empty((vectors.shape[1], len(vectors)), dtype=np.float16)
+    """float32 [n, D] -> float16 [D, n] (transposed for the MatMul)."""
+    return np.concatenate(list(_transposed_blocks(vectors, np.float16, lambda v, lo: v)))
+
+
+def _codes(v: np.ndarray, s: np.ndarray) -> np.ndarray:
+    return np.clip(np.rint(v / s[:, None]), -INT8_LEVELS, INT8_LEVELS)
+
+
+def _transposed_blocks(vectors: np.ndarray, dtype: type, convert: Any, dims: int = _TRANSPOSE_DIMS) -> Iterator[np.ndarray]:
+    """Rows of the [D, n] table `convert(vectors[lo:hi], lo)` transposed to `dtype`, `dims` rows (one
+    block, 50 MB of fp16 at a million items) at a time, so the export writes a reduced copy without
+    holding it whole. Each block is filled a slice of 8,192 items at a time: a whole-table transpose
+    walks memory across rows (1.6 s at a million items; these blocks 0.5 s)."""
     step = 8192
-    for lo in range(0, len(vectors), step):
-        out[:, lo : lo + step] = vectors[lo : lo + step].astype(np.float16).T
-    return out
+    for a in range(0, vectors.shape[1], dims):
+        block = np.empty((min(dims, vectors.shape[1] - a), len(vectors)), dtype=dtype)
+        for lo in range(0, len(vectors), step):
+            block[:, lo : lo + step] = convert(vectors[lo : lo + step, a : a + dims], lo).astype(dtype).T
+        yield block
 
 
 def item_vector_files(w: _StepWeights) -> dict[str, Any]:
-    """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py).
-    The two reduced copies are made when written (callables), so only one exists at a time."""
+    """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py)."""
     scales = int8_scales(w.output)
     dim = w.output.shape[1]
     return {
@@ -397,8 +404,11 @@ def item_vector_files(w: _StepWeights) -> dict[str, Any]:
         EMBEDDING: w.embedding,
         ITEM_VECTORS: w.output,
         ITEM_BIAS: w.output_bias,
-        ITEM_VECTORS_FP16: lambda: half_transposed(w.output),
-        ITEM_VECTORS_INT8: lambda: quantise_int8(w.output, scales)[0],
+        # Written block by block: neither reduced copy exists whole in the export.
+        ITEM_VECTORS_FP16: RowBlocks((dim, w.n_items), np.dtype(np.float16), lambda: _transposed_blocks(w.output, np.float16, lambda v, lo: v)),
+        ITEM_VECTORS_INT8: RowBlocks(
+            (dim, w.n_items), np.dtype(np.int8), lambda: _transposed_blocks(w.output, np.int8, lambda v, lo: _codes(v, scales[lo : lo + len(v)]))
+        ),
         ITEM_SCALES: scales,
         CANDIDATES_FP16: build_candidate_graph("fp16", dim),
         CANDIDATES_INT8: build_candidate_graph("int8", dim),

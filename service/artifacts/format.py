@@ -59,7 +59,7 @@ class RowBlocks:
     blocks: Callable[[], Iterator[np.ndarray]]
 
 
-FileContent = bytes | np.ndarray | RowBlocks | Callable[[], bytes | np.ndarray]  # an optional file's content, or how to make it
+FileContent = bytes | np.ndarray | RowBlocks | Callable[[], bytes | np.ndarray | RowBlocks]  # an optional file's content, or how to make it
 
 FORMAT = "cairn-artifact/1"
 MANIFEST = "manifest.json"
@@ -162,9 +162,11 @@ def write_artifact(
     """Write one artifact atomically; returns its folder. `item_names` (id -> display name, for
     items of `item_ids` only) adds the optional item_names.json. With `session_index`, manifest_fields
     must hold its parameters as `session_knn` ({"neighbours", "candidates", "weighting"}).
-    `extra_files`: more optional files (bytes as they are, arrays as .npy; a callable returning
-    either is called when its file is written, so a large table exists only while it is written), covered by the
-    manifest's checksums like the required ones."""
+    `extra_files`: more optional files (bytes as they are, arrays as .npy, RowBlocks block by block;
+    a callable returning one of these is called when its file is written, in the order given, so a
+    large table exists only while it is written), covered by the manifest's checksums like the
+    required ones. A callable value of `manifest_fields` is called when the manifest is written,
+    after every file: a section measured while the files were being written."""
     _check_name(name, "name")
     _check_name(version, "version")
     reserved = sorted(set(manifest_fields) & _WRITER_FIELDS)
@@ -197,9 +199,9 @@ def write_artifact(
         written(STEP_GRAPH)
         (tmp / ITEM_IDS).write_text(json.dumps([str(i) for i in item_ids]), encoding="utf-8")
         written(ITEM_IDS)
-        np.savez(tmp / NEIGHBOURS, items=neighbour_items.astype(np.int32), scores=neighbour_scores.astype(np.float32))
+        np.savez(tmp / NEIGHBOURS, items=neighbour_items.astype(np.int32, copy=False), scores=neighbour_scores.astype(np.float32, copy=False))
         written(NEIGHBOURS)
-        np.save(tmp / POPULARITY, popularity.astype(np.float32))
+        np.save(tmp / POPULARITY, popularity.astype(np.float32, copy=False))
         written(POPULARITY)
         if item_names:
             (tmp / ITEM_NAMES).write_text(json.dumps(item_names, ensure_ascii=False, sort_keys=True), encoding="utf-8")
@@ -215,7 +217,7 @@ def write_artifact(
             "name": name,
             "version": version,
             "created_at": datetime.now(timezone.utc).isoformat(timespec="milliseconds"),
-            **manifest_fields,
+            **{k: v() if callable(v) else v for k, v in manifest_fields.items()},
             "files": {f: digests[f].result() for f in (*files, *(extra_files or {}))},
             "manifest_sha256": _UNSET_DIGEST,
         }
@@ -237,12 +239,11 @@ def write_artifact(
 def _write_extra(path: Path, content: FileContent) -> None:
     if path.name in (*REQUIRED_FILES, MANIFEST) or path.name != Path(path.name).name:
         raise ArtifactError(f"optional artifact file {path.name!r} would overwrite a required one")
-    if isinstance(content, RowBlocks):
-        _write_row_blocks(path, content)
-        return
     if callable(content):
         content = content()
-    if isinstance(content, bytes):
+    if isinstance(content, RowBlocks):
+        _write_row_blocks(path, content)
+    elif isinstance(content, bytes):
         path.write_bytes(content)
     else:
         np.save(path, np.ascontiguousarray(content))

@@ -426,3 +426,19 @@ def test_random_artifact_weights_follow_the_training_init_and_the_seed(tmp_path:
     assert all(np.array_equal(a.detach().numpy(), b.detach().numpy()) for a, b in zip(model.parameters(), again.parameters()))
     other = export_random_model(config, seed=4)
     assert not np.array_equal(other.embedding.weight.detach().numpy(), table)
+
+
+def test_the_reduced_copies_written_block_by_block_are_the_whole_table_conversions(tmp_path: Path) -> None:
+    # The fp16 and int8 files are written a block of dimensions at a time; they must hold exactly
+    # numpy's own conversion of the whole table (astype float16, transposed) and the quantisation
+    # rule applied to the whole table (round(v / scale), clipped to -63..63, transposed).
+    from offline.export.onnx_graph import INT8_LEVELS, int8_scales
+    from service.artifacts.item_vectors import ITEM_SCALES, ITEM_VECTORS, ITEM_VECTORS_FP16, ITEM_VECTORS_INT8
+
+    path = write_random_artifact(tmp_path, "bench", "v1", n_items=9000, hidden_size=60, seed=2)  # 60 dims: blocks of 25, 25, 10
+    vectors = np.load(path / ITEM_VECTORS)
+    assert np.array_equal(np.load(path / ITEM_VECTORS_FP16), vectors.astype(np.float16).T)
+    scales = np.load(path / ITEM_SCALES)
+    assert np.array_equal(scales, int8_scales(vectors))
+    codes = np.clip(np.rint(vectors / scales[:, None]), -INT8_LEVELS, INT8_LEVELS).astype(np.int8).T
+    assert np.array_equal(np.load(path / ITEM_VECTORS_INT8), codes)
