@@ -175,16 +175,21 @@ def build_scenario(params: ScenarioParams, rng: np.random.Generator, catalogue: 
     link_items = np.full((n, max(m, 1)), -1, dtype=np.int64)
     link_probs = np.zeros((n, max(m, 1)))
     followers = ~catalogue.is_main
+    # The follow-up distribution depends on the main item's category only: made once per category
+    # (per item it made the catalogue's build quadratic: hours at a million items).
+    follow: dict[int, _DistinctDraws] = {}
     for i in np.flatnonzero(catalogue.is_main):
         n_links = int(rng.integers(params.followups_min, params.followups_max + 1))
         if n_links == 0:
             continue
-        own = cat == cat[i]
-        rel = np.isin(cat, [CATEGORIES.index(r) for r in RELATED[CATEGORIES[int(cat[i])]]])
-        w = catalogue.popularity * followers * np.where(own, OWN_CATEGORY_FOLLOW_SHARE, np.where(rel, 1 - OWN_CATEGORY_FOLLOW_SHARE, 0.0))
-        n_links = min(n_links, int((w > 0).sum()))
-        picked = rng.choice(n, size=n_links, replace=False, p=w / w.sum())
-        link_items[i, :n_links] = picked
+        c = int(cat[i])
+        if c not in follow:
+            own = cat == c
+            rel = np.isin(cat, [CATEGORIES.index(r) for r in RELATED[CATEGORIES[c]]])
+            w = catalogue.popularity * followers * np.where(own, OWN_CATEGORY_FOLLOW_SHARE, np.where(rel, 1 - OWN_CATEGORY_FOLLOW_SHARE, 0.0))
+            follow[c] = _DistinctDraws(w / w.sum())
+        n_links = min(n_links, follow[c].support)
+        link_items[i, :n_links] = follow[c].draw(rng, n_links)
         link_probs[i, :n_links] = np.sort(rng.dirichlet(np.ones(n_links)))[::-1]
     scenario = Scenario(
         item_ids=catalogue.item_ids,
@@ -200,6 +205,40 @@ def build_scenario(params: ScenarioParams, rng: np.random.Generator, catalogue: 
 
 
 # --- sampling ----------------------------------------------------------------------------------
+
+
+class _DistinctDraws:
+    """`size` distinct indices drawn with probabilities `p`, many times from one distribution.
+
+    The rounds of numpy's `Generator.choice(n, size, replace=False, p=p)`: draw the missing number
+    by the cumulative distribution, keep the new distinct ones in order of first appearance, and
+    redraw the rest with the found ones' probability set to 0. So a seed draws what that call draws
+    (checked against it in tests/offline/demo), but the first round's cumulative distribution, all
+    that a draw of a few items from many needs, is made once instead of at every call.
+    """
+
+    def __init__(self, p: np.ndarray) -> None:
+        self.p = p
+        self.support = int(np.count_nonzero(p > 0))
+        self._cdf = np.cumsum(p)
+        self._cdf /= self._cdf[-1]
+
+    def draw(self, rng: np.random.Generator, size: int) -> np.ndarray:
+        if size > self.support:
+            raise ValueError(f"{size} distinct draws from {self.support} items with a chance")
+        found = np.empty(0, dtype=np.int64)
+        cdf = self._cdf
+        while len(found) < size:
+            x = rng.random(size - len(found))
+            if len(found):
+                p = self.p.copy()
+                p[found] = 0
+                cdf = np.cumsum(p)
+                cdf /= cdf[-1]
+            new = cdf.searchsorted(x, side="right")
+            _, first = np.unique(new, return_index=True)
+            found = np.concatenate([found, new[np.sort(first)]])
+        return found
 
 
 class _RowSampler:

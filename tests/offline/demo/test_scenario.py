@@ -256,3 +256,24 @@ def test_cli_rejects_bad_parameters(tmp_path: Path, capsys: pytest.CaptureFixtur
 def test_params_validate_names_the_value() -> None:
     with pytest.raises(ScenarioError, match="intents=0"):
         ScenarioParams(intents=0).validate()
+
+
+def test_distinct_draws_are_numpys_choice_without_replacement() -> None:
+    # Reference: numpy's Generator.choice(n, size, replace=False, p=p). From the same seed the
+    # shop's follow-up links must come out as that call draws them (so a seed gives the catalogue
+    # it always gave), including skewed distributions where the first round draws repeats.
+    from offline.demo.scenario import _DistinctDraws
+
+    for trial in range(500):
+        r = np.random.default_rng(trial)
+        n = int(r.integers(5, 300))
+        w = r.random(n) ** 3
+        w[r.random(n) < 0.3] = 0
+        draws = _DistinctDraws(w / w.sum())
+        size = int(r.integers(1, min(draws.support, 8) + 1))
+        ours, numpys = np.random.default_rng(trial + 1), np.random.default_rng(trial + 1)
+        for _ in range(3):  # several draws from one distribution, as the catalogue makes them
+            assert draws.draw(ours, size).tolist() == numpys.choice(n, size=size, replace=False, p=w / w.sum()).tolist(), trial
+        assert ours.random() == numpys.random()  # the same share of the stream was used
+    with pytest.raises(ValueError, match="3 distinct draws from 2 items"):
+        _DistinctDraws(np.array([0.5, 0.0, 0.5])).draw(np.random.default_rng(0), 3)
