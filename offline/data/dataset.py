@@ -49,6 +49,14 @@ class SessionSplit:
     def sessions(self) -> list[np.ndarray]:
         return [self.session(s) for s in range(self.n_sessions)]
 
+    def subset(self, sessions: np.ndarray) -> "SessionSplit":
+        """The split of these sessions (indices into this split), in the order given."""
+        sessions = np.asarray(sessions, dtype=np.int64)
+        lengths = self.lengths()[sessions]
+        offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+        clicks = np.concatenate([np.arange(self.offsets[s], self.offsets[s + 1]) for s in sessions.tolist()]) if len(sessions) else np.zeros(0, np.int64)
+        return SessionSplit(items=self.items[clicks], offsets=offsets, times=self.times[clicks])
+
     @staticmethod
     def from_sessions(sessions: list[list[int]] | list[np.ndarray], times: list[list[int]] | None = None) -> "SessionSplit":
         """Build a split from Python lists (tests and small tools)."""

@@ -97,6 +97,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
                    help=f"sessions side by side (default {d.batch_size})")
     g.add_argument("--patience", type=_count, default=d.patience, metavar="N",
                    help=f"stop after N epochs without a better validation MRR@20; 0 = never (default {d.patience})")
+    g.add_argument("--valid-sessions", type=_count, default=d.valid_sessions, metavar="N",
+                   help=f"validate on a seeded sample of at most N validation sessions, the same each epoch; 0 = all (default {d.valid_sessions:,})")
     g.add_argument("--seed", type=int, default=d.seed, help=f"seeds weights, dropout and sampling (default {d.seed})")
     g.add_argument("--threads", type=_positive_int, default=len(os.sched_getaffinity(0)),
                    help="torch CPU threads (default: the cores this process may use)")
@@ -144,6 +146,7 @@ def run(args: argparse.Namespace) -> int:
         epochs=args.epochs,
         batch_size=args.batch_size,
         patience=args.patience,
+        valid_sessions=args.valid_sessions,
         seed=args.seed,
     )
     # Every flag, as JSON-friendly values, with the learning rate actually used.
