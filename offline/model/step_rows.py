@@ -40,6 +40,10 @@ class _TableRows:
         index = self.rows.unsqueeze(0)  # [1, U], sorted and distinct by construction: no check needed
         self.table.grad = torch.sparse_coo_tensor(index, grad, self.table.shape, is_coalesced=True, check_invariants=False)
 
+    def current(self) -> torch.Tensor:
+        """The rows' values as gathered, which are the table's until the optimiser writes them [U, D]."""
+        return self.leaf.detach()
+
 
 def _distinct(items: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     return torch.unique(items, sorted=True, return_inverse=True)  # [U], [N]
@@ -70,3 +74,8 @@ class StepRows:
         """After backward: each table's gradient, coalesced, where the optimisers look for it."""
         for table in self.tables:
             table.hand_over()
+
+    def gathered(self) -> dict[torch.Tensor, torch.Tensor]:
+        """Table -> the rows its gradient covers as gathered for this step (RowAdagrad.step's `gathered`):
+        the optimiser updates them in place instead of gathering them again. Valid until a table changes."""
+        return {t.table: t.current() for t in self.tables if t.leaf.grad is not None}

@@ -17,7 +17,7 @@ import torch
 
 from offline.model.gru import GRUConfig, NextClickGRU, score_rows
 from offline.model.losses import get_loss, negative_mask
-from offline.model.row_adagrad import RowAdagrad
+from offline.model.row_adagrad import RowAdagrad, write_rows
 from offline.model.step_columns import merge_columns
 from offline.model.session_batches import NegativeSampler, SessionParallelBatches, sampling_weights
 from offline.model.step_rows import StepRows
@@ -99,22 +99,39 @@ def test_the_trainers_step_gives_the_reference_loss_and_gradients(tie: bool) -> 
     assert_same_step(ref, ref_loss, fast, loss)
 
 
-def test_row_adagrad_updates_like_torch_adagrad() -> None:
-    # torch.optim.Adagrad on coalesced sparse gradients is the reference; several steps, rows repeating.
-    table = torch.randn(N_ITEMS, 4)
+@pytest.mark.parametrize("pass_gathered", [False, True], ids=["gathers-itself", "rows-handed-in"])
+def test_row_adagrad_updates_like_torch_adagrad(pass_gathered: bool) -> None:
+    # torch.optim.Adagrad (its default, non-fused path) is the reference: coalesced sparse gradients on a
+    # table, several steps, rows repeating, and a dense parameter updated in the same call.
+    table, dense = torch.randn(N_ITEMS, 4), torch.randn(3, 5)
     ours, theirs = torch.nn.Parameter(table.clone()), torch.nn.Parameter(table.clone())
-    row_opt, torch_opt = RowAdagrad([ours], lr=0.3), torch.optim.Adagrad([theirs], lr=0.3)
+    ours_dense, theirs_dense = torch.nn.Parameter(dense.clone()), torch.nn.Parameter(dense.clone())
+    row_opt = RowAdagrad([ours, ours_dense], lr=0.3)
+    torch_opt = torch.optim.Adagrad([theirs, theirs_dense], lr=0.3)
     g = torch.Generator().manual_seed(5)
     for _ in range(4):
         rows = torch.unique(torch.randint(0, 20, (9,), generator=g))
         grad = torch.sparse_coo_tensor(rows.unsqueeze(0), torch.randn(len(rows), 4, generator=g), table.shape, check_invariants=True).coalesce()
+        dense_grad = torch.randn(3, 5, generator=g)
         ours.grad, theirs.grad = grad.clone(), grad.clone()
-        row_opt.step()
+        ours_dense.grad, theirs_dense.grad = dense_grad.clone(), dense_grad.clone()
+        row_opt.step(gathered={ours: ours.detach()[rows].clone()} if pass_gathered else None)
         torch_opt.step()
         torch.testing.assert_close(ours, theirs)
-    ours.grad = torch.zeros_like(table)
+        torch.testing.assert_close(ours_dense, theirs_dense)
+    ours.grad = torch.sparse_coo_tensor(torch.tensor([[1, 1]]), torch.ones(2, 4), table.shape)  # a repeat: not coalesced
     with pytest.raises(ValueError, match="coalesced sparse"):
         row_opt.step()
+
+
+def test_write_rows_is_index_copy() -> None:
+    # torch's index_copy_ is the reference, on a contiguous table (the numpy path) and a strided one.
+    table = torch.randn(10, 3)
+    rows, values = torch.tensor([7, 2, 4]), torch.randn(3, 3)
+    for t in (table.clone(), table.clone().t().contiguous().t()):
+        expected = t.clone().index_copy_(0, rows, values)
+        write_rows(t, rows, values)
+        assert torch.equal(t, expected)
 
 
 def test_train_epoch_follows_the_reference_loop() -> None:
