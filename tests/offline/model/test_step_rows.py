@@ -49,15 +49,21 @@ def step_inputs(seed: int) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
     return inputs, targets, torch.cat([targets, negatives])
 
 
-@pytest.mark.parametrize("tie", [False, True], ids=["separate-output", "tied-output"])
-def test_step_rows_give_the_reference_loss_and_gradients(tie: bool) -> None:
+def reference_step(tie: bool) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor, NextClickGRU, torch.Tensor]:
+    """The plain PyTorch step (nn.Embedding lookups, every candidate its own column) on step_inputs(0),
+    its loss backpropagated: (inputs, targets, candidates, hidden, model, loss)."""
     inputs, targets, candidates = step_inputs(0)
     hidden = torch.randn(1, B, 6, generator=torch.Generator().manual_seed(1))
     ref = model(tie)
     f, _ = ref.step(inputs, hidden)
     ref_loss = reference_bpr_max(ref.score_candidates(f, candidates), targets, candidates)
     ref_loss.backward()
+    return inputs, targets, candidates, hidden, ref, ref_loss
 
+
+@pytest.mark.parametrize("tie", [False, True], ids=["separate-output", "tied-output"])
+def test_step_rows_give_the_reference_loss_and_gradients(tie: bool) -> None:
+    inputs, targets, candidates, hidden, ref, ref_loss = reference_step(tie)
     fast = model(tie)
     rows = StepRows(fast, inputs, candidates)
     f, _ = fast.recur(rows.embedded, hidden)
@@ -81,13 +87,7 @@ def assert_same_step(ref: NextClickGRU, ref_loss: torch.Tensor, fast: NextClickG
 def test_the_trainers_step_gives_the_reference_loss_and_gradients(tie: bool) -> None:
     # As train_epoch runs it: repeats merged into counted columns (step_columns), their distinct rows
     # handed to StepRows, the GRU through gru_cell; the reference is the plain step above.
-    inputs, targets, candidates = step_inputs(0)
-    hidden = torch.randn(1, B, 6, generator=torch.Generator().manual_seed(1))
-    ref = model(tie)
-    f, _ = ref.step(inputs, hidden)
-    ref_loss = reference_bpr_max(ref.score_candidates(f, candidates), targets, candidates)
-    ref_loss.backward()
-
+    inputs, targets, candidates, hidden, ref, ref_loss = reference_step(tie)
     fast = model(tie)
     columns = merge_columns(targets, candidates[B:])
     assert len(columns.items) < len(candidates)  # the example has repeats to merge
