@@ -57,6 +57,15 @@ class SessionSplit:
         clicks = np.concatenate([np.arange(self.offsets[s], self.offsets[s + 1]) for s in sessions.tolist()]) if len(sessions) else np.zeros(0, np.int64)
         return SessionSplit(items=self.items[clicks], offsets=offsets, times=self.times[clicks])
 
+    def sample(self, sessions: int, seed: int) -> "SessionSplit":
+        """At most `sessions` of the sessions that have a next click to predict (0: all of them),
+        drawn without replacement from `seed` and kept in their order in the split; this split
+        itself when that is every session."""
+        usable = np.flatnonzero(self.lengths() >= 2)
+        if 0 < sessions < len(usable):
+            usable = np.sort(np.random.default_rng(seed).choice(usable, size=sessions, replace=False))
+        return self if len(usable) == self.n_sessions else self.subset(usable)
+
     @staticmethod
     def from_sessions(sessions: list[list[int]] | list[np.ndarray], times: list[list[int]] | None = None) -> "SessionSplit":
         """Build a split from Python lists (tests and small tools)."""

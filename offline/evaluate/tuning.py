@@ -27,11 +27,7 @@ SAMPLE_SESSIONS = 3000
 
 def validation_sample(split: SessionSplit, max_sessions: int = SAMPLE_SESSIONS, seed: int = 0) -> SessionSplit:
     """At most `max_sessions` sessions of two or more clicks, drawn at random (time order kept)."""
-    lengths = split.lengths()
-    usable = np.flatnonzero(lengths >= 2)
-    if len(usable) > max_sessions:
-        usable = np.sort(np.random.default_rng(seed).choice(usable, size=max_sessions, replace=False))
-    return SessionSplit.from_sessions([split.session(s) for s in usable], [split.times[split.offsets[s] : split.offsets[s + 1]] for s in usable])
+    return split.sample(max_sessions, seed)
 
 
 def tune_session_knn(

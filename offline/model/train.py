@@ -208,6 +208,390 @@ def train_epoch(
     return EpochStats(loss=mean_loss, steps=n_steps, clicks=n_steps * b, seconds=seconds)
 
 
+def validate(self) -> None:
+        if self.loss not in LOSS_NAMES:
+            raise TrainingError(f"unknown loss {self.loss!r}; expected one of {', '.join(LOSS_NAMES)}")
+        if self.optimizer not in OPTIMIZERS:
+            raise TrainingError(f"unknown optimizer {self.optimizer!r}; expected one of {', '.join(OPTIMIZERS)}")
+        checks = [
+            ("negatives", self.negatives in (ALL_ITEMS, AUTO) or (isinstance(self.negatives, int) and self.negatives >= 0)),
+            ("negative_skew", self.negative_skew >= 0),
+            ("score_penalty", self.score_penalty >= 0),
+            ("lr", self.lr > 0),
+            ("epochs", self.epochs >= 1),
+            ("batch_size", self.batch_size >= 1),
+            ("patience", self.patience >= 0),
+            ("valid_sessions", self.valid_sessions >= 0),
+        ]
+        for name, ok in checks:
+            if not ok:
+                raise TrainingError(f"{name} = {getattr(self, name)!r} is out of range")
+
+
+@dataclass
+class EpochStats:
+    loss: float  # mean batch loss
+    steps: int
+    clicks: int  # input/target pairs trained on
+    seconds: float
+
+    @property
+    def clicks_per_second(self) -> float:
+        return self.clicks / self.seconds if self.seconds > 0 else 0.0
+
+
+@dataclass
+class TrainResult:
+    best_epoch: int
+    best_metrics: dict[str, float]
+    history: list[dict[str, Any]] = field(default_factory=list)  # one record per epoch
+
+
+def keep_freed_memory() -> None:
+    """Ask glibc to keep freed blocks of up to 32 MiB for reuse instead of returning them to the OS.
+
+    A training step allocates a dozen [B, B + M] temporaries (5 MB each at B = 512). By default
+    glibc hands much of that back to the OS between steps (large blocks are separate mappings,
+    the heap top is trimmed), so the next step page-faults it in again. Measured on one thread at
+    batch 512 with 2,048 negatives: 1,500-6,900 page faults and 23-43 ms a step without this,
+    none and 21 ms with it. Process-wide and harmless elsewhere; a no-op off glibc.
+    """
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+        libc.mallopt(_M_MMAP_THRESHOLD, 32 << 20)  # 32 MiB: glibc's ceiling for this knob on 64-bit
+        libc.mallopt(_M_TRIM_THRESHOLD, 128 << 20)
+    except (OSError, AttributeError):
+        pass
+
+
+def build_optimizers(model: NextClickGRU, name: str, lr: float) -> list[torch.optim.Optimizer]:
+    """Adagrad: RowAdagrad for every parameter (torch's rule, on the touched rows of the sparse item
+    tables, in one fused kernel call); Adam needs SparseAdam for the item tables. Both read the
+    coalesced gradients of step_rows."""
+    sparse_ids = {id(m.weight) for m in model.modules() if isinstance(m, torch.nn.Embedding) and m.sparse}
+    sparse = [p for p in model.parameters() if id(p) in sparse_ids]
+    dense = [p for p in model.parameters() if id(p) not in sparse_ids]
+    if name == "adagrad":
+        return [RowAdagrad([*sparse, *dense], lr=lr)]
+    return [torch.optim.SparseAdam(sparse, lr=lr), torch.optim.Adam(dense, lr=lr)]
+
+
+def train_epoch(
+    model: NextClickGRU,
+    steps: Iterable[Step],
+    sampler: NegativeSampler | EveryItem,
+    loss_fn: LossFn,
+    optimizers: list[torch.optim.Optimizer],
+    batch_size: int,
+    max_steps: int | None = None,
+    progress: tqdm | LineProgress | None = None,
+    log_q: torch.Tensor | None = None,
+) -> EpochStats:
+    """One pass over `steps` (or its first `max_steps`); the model is left in train mode.
+
+    `log_q` float32 [n_items] (candidate_log_q): the log-Q correction of each candidate's score."""
+    model.train()
+    b = batch_size
+    params = [p for opt in optimizers for group in opt.param_groups for p in group["params"]]
+    hidden = model.init_hidden(b)  # [L, B, H]
+    loss_sum = torch.zeros(())  # summed without .item() per step
+    n_steps = 0
+    start = time.perf_counter()
+    for step in steps if max_steps is None else itertools.islice(steps, max_steps):
+        inputs = torch.from_numpy(step.inputs)  # [B]
+        targets = torch.from_numpy(step.targets)  # [B]
+        if step.reset.any():
+            hidden = hidden.masked_fill(torch.from_numpy(step.reset).view(1, b, 1), 0.0)  # [L, B, H]
+        if sampler.in_batch:  # the targets, then each other sampled item once, counted per copy (step_columns)
+            columns = merge_columns(targets, sampler.draw())
+            candidates, negatives, counts = columns.items, columns.negatives, columns.counts  # [C], [B, C], [C]
+            distinct: tuple[torch.Tensor, torch.Tensor] | None = (columns.rows, columns.inverse)
+        else:  # every item once after the targets: nothing to merge
+            candidates = torch.cat([targets, sampler.draw()])  # [B + n_items]
+            negatives, counts, distinct = negative_mask(targets, candidates, in_batch=False), None, None
+        rows = StepRows(model, inputs, candidates, distinct)  # the item-table rows this step reads, see step_rows
+        features, hidden = model.recur(rows.embedded, hidden, hand_backward=True)  # [B, D], [L, B, H]
+        scores = score_rows(features, rows.weights, rows.bias)  # [B, C]
+        if log_q is not None:
+            scores = logq_corrected(scores, log_q[candidates])
+        loss = loss_fn(scores, negatives, counts)
+        for p in params:  # zero_grad(set_to_none=True), without its per-call overhead (no hooks are registered)
+            p.grad = None
+        loss.backward()
+        rows.hand_over()
+        for opt in optimizers:
+            if isinstance(opt, RowAdagrad):
+                opt.step(gathered=rows.gathered())  # the rows StepRows read, updated in place: no second gather
+            else:
+                opt.step()
+        hidden = hidden.detach()
+        loss_sum += loss.detach()
+        n_steps += 1
+        if progress is not None:
+            progress.update(b)
+            if n_steps % 50 == 0:
+                progress.set_postfix(loss=f"{loss_sum.item() / n_steps:.4f}", refresh=False)
+    seconds = time.perf_counter() - start
+    mean_loss = loss_sum.item() / n_steps if n_steps else float("nan")
+    return EpochStats(loss=mean_loss, steps=n_steps, clicks=n_steps * b, seconds=seconds)
+
+
+def validate(self) -> None:
+        if self.loss not in LOSS_NAMES:
+            raise TrainingError(f"unknown loss {self.loss!r}; expected one of {', '.join(LOSS_NAMES)}")
+        if self.optimizer not in OPTIMIZERS:
+            raise TrainingError(f"unknown optimizer {self.optimizer!r}; expected one of {', '.join(OPTIMIZERS)}")
+        checks = [
+            ("negatives", self.negatives in (ALL_ITEMS, AUTO) or (isinstance(self.negatives, int) and self.negatives >= 0)),
+            ("negative_skew", self.negative_skew >= 0),
+            ("score_penalty", self.score_penalty >= 0),
+            ("lr", self.lr > 0),
+            ("epochs", self.epochs >= 1),
+            ("batch_size", self.batch_size >= 1),
+            ("patience", self.patience >= 0),
+            ("valid_sessions", self.valid_sessions >= 0),
+        ]
+        for name, ok in checks:
+            if not ok:
+                raise TrainingError(f"{name} = {getattr(self, name)!r} is out of range")
+
+
+@dataclass
+class EpochStats:
+    loss: float  # mean batch loss
+    steps: int
+    clicks: int  # input/target pairs trained on
+    seconds: float
+
+    @property
+    def clicks_per_second(self) -> float:
+        return self.clicks / self.seconds if self.seconds > 0 else 0.0
+
+
+@dataclass
+class TrainResult:
+    best_epoch: int
+    best_metrics: dict[str, float]
+    history: list[dict[str, Any]] = field(default_factory=list)  # one record per epoch
+
+
+def keep_freed_memory() -> None:
+    """Ask glibc to keep freed blocks of up to 32 MiB for reuse instead of returning them to the OS.
+
+    A training step allocates a dozen [B, B + M] temporaries (5 MB each at B = 512). By default
+    glibc hands much of that back to the OS between steps (large blocks are separate mappings,
+    the heap top is trimmed), so the next step page-faults it in again. Measured on one thread at
+    batch 512 with 2,048 negatives: 1,500-6,900 page faults and 23-43 ms a step without this,
+    none and 21 ms with it. Process-wide and harmless elsewhere; a no-op off glibc.
+    """
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+        libc.mallopt(_M_MMAP_THRESHOLD, 32 << 20)  # 32 MiB: glibc's ceiling for this knob on 64-bit
+        libc.mallopt(_M_TRIM_THRESHOLD, 128 << 20)
+    except (OSError, AttributeError):
+        pass
+
+
+def build_optimizers(model: NextClickGRU, name: str, lr: float) -> list[torch.optim.Optimizer]:
+    """Adagrad: RowAdagrad for every parameter (torch's rule, on the touched rows of the sparse item
+    tables, in one fused kernel call); Adam needs SparseAdam for the item tables. Both read the
+    coalesced gradients of step_rows."""
+    sparse_ids = {id(m.weight) for m in model.modules() if isinstance(m, torch.nn.Embedding) and m.sparse}
+    sparse = [p for p in model.parameters() if id(p) in sparse_ids]
+    dense = [p for p in model.parameters() if id(p) not in sparse_ids]
+    if name == "adagrad":
+        return [RowAdagrad([*sparse, *dense], lr=lr)]
+    return [torch.optim.SparseAdam(sparse, lr=lr), torch.optim.Adam(dense, lr=lr)]
+
+
+def train_epoch(
+    model: NextClickGRU,
+    steps: Iterable[Step],
+    sampler: NegativeSampler | EveryItem,
+    loss_fn: LossFn,
+    optimizers: list[torch.optim.Optimizer],
+    batch_size: int,
+    max_steps: int | None = None,
+    progress: tqdm | LineProgress | None = None,
+    log_q: torch.Tensor | None = None,
+) -> EpochStats:
+    """One pass over `steps` (or its first `max_steps`); the model is left in train mode.
+
+    `log_q` float32 [n_items] (candidate_log_q): the log-Q correction of each candidate's score."""
+    model.train()
+    b = batch_size
+    params = [p for opt in optimizers for group in opt.param_groups for p in group["params"]]
+    hidden = model.init_hidden(b)  # [L, B, H]
+    loss_sum = torch.zeros(())  # summed without .item() per step
+    n_steps = 0
+    start = time.perf_counter()
+    for step in steps if max_steps is None else itertools.islice(steps, max_steps):
+        inputs = torch.from_numpy(step.inputs)  # [B]
+        targets = torch.from_numpy(step.targets)  # [B]
+        if step.reset.any():
+            hidden = hidden.masked_fill(torch.from_numpy(step.reset).view(1, b, 1), 0.0)  # [L, B, H]
+        if sampler.in_batch:  # the targets, then each other sampled item once, counted per copy (step_columns)
+            columns = merge_columns(targets, sampler.draw())
+            candidates, negatives, counts = columns.items, columns.negatives, columns.counts  # [C], [B, C], [C]
+            distinct: tuple[torch.Tensor, torch.Tensor] | None = (columns.rows, columns.inverse)
+        else:  # every item once after the targets: nothing to merge
+            candidates = torch.cat([targets, sampler.draw()])  # [B + n_items]
+            negatives, counts, distinct = negative_mask(targets, candidates, in_batch=False), None, None
+        rows = StepRows(model, inputs, candidates, distinct)  # the item-table rows this step reads, see step_rows
+        features, hidden = model.recur(rows.embedded, hidden, hand_backward=True)  # [B, D], [L, B, H]
+        scores = score_rows(features, rows.weights, rows.bias)  # [B, C]
+        if log_q is not None:
+            scores = logq_corrected(scores, log_q[candidates])
+        loss = loss_fn(scores, negatives, counts)
+        for p in params:  # zero_grad(set_to_none=True), without its per-call overhead (no hooks are registered)
+            p.grad = None
+        loss.backward()
+        rows.hand_over()
+        for opt in optimizers:
+            if isinstance(opt, RowAdagrad):
+                opt.step(gathered=rows.gathered())  # the rows StepRows read, updated in place: no second gather
+            else:
+                opt.step()
+        hidden = hidden.detach()
+        loss_sum += loss.detach()
+        n_steps += 1
+        if progress is not None:
+            progress.update(b)
+            if n_steps % 50 == 0:
+                progress.set_postfix(loss=f"{loss_sum.item() / n_steps:.4f}", refresh=False)
+    seconds = time.perf_counter() - start
+    mean_loss = loss_sum.item() / n_steps if n_steps else float("nan")
+    return EpochStats(loss=mean_loss, steps=n_steps, clicks=n_steps * b, seconds=seconds)
+
+
+def validate(self) -> None:
+        if self.loss not in LOSS_NAMES:
+            raise TrainingError(f"unknown loss {self.loss!r}; expected one of {', '.join(LOSS_NAMES)}")
+        if self.optimizer not in OPTIMIZERS:
+            raise TrainingError(f"unknown optimizer {self.optimizer!r}; expected one of {', '.join(OPTIMIZERS)}")
+        checks = [
+            ("negatives", self.negatives in (ALL_ITEMS, AUTO) or (isinstance(self.negatives, int) and self.negatives >= 0)),
+            ("negative_skew", self.negative_skew >= 0),
+            ("score_penalty", self.score_penalty >= 0),
+            ("lr", self.lr > 0),
+            ("epochs", self.epochs >= 1),
+            ("batch_size", self.batch_size >= 1),
+            ("patience", self.patience >= 0),
+            ("valid_sessions", self.valid_sessions >= 0),
+        ]
+        for name, ok in checks:
+            if not ok:
+                raise TrainingError(f"{name} = {getattr(self, name)!r} is out of range")
+
+
+@dataclass
+class EpochStats:
+    loss: float  # mean batch loss
+    steps: int
+    clicks: int  # input/target pairs trained on
+    seconds: float
+
+    @property
+    def clicks_per_second(self) -> float:
+        return self.clicks / self.seconds if self.seconds > 0 else 0.0
+
+
+@dataclass
+class TrainResult:
+    best_epoch: int
+    best_metrics: dict[str, float]
+    history: list[dict[str, Any]] = field(default_factory=list)  # one record per epoch
+
+
+def keep_freed_memory() -> None:
+    """Ask glibc to keep freed blocks of up to 32 MiB for reuse instead of returning them to the OS.
+
+    A training step allocates a dozen [B, B + M] temporaries (5 MB each at B = 512). By default
+    glibc hands much of that back to the OS between steps (large blocks are separate mappings,
+    the heap top is trimmed), so the next step page-faults it in again. Measured on one thread at
+    batch 512 with 2,048 negatives: 1,500-6,900 page faults and 23-43 ms a step without this,
+    none and 21 ms with it. Process-wide and harmless elsewhere; a no-op off glibc.
+    """
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+        libc.mallopt(_M_MMAP_THRESHOLD, 32 << 20)  # 32 MiB: glibc's ceiling for this knob on 64-bit
+        libc.mallopt(_M_TRIM_THRESHOLD, 128 << 20)
+    except (OSError, AttributeError):
+        pass
+
+
+def build_optimizers(model: NextClickGRU, name: str, lr: float) -> list[torch.optim.Optimizer]:
+    """Adagrad: RowAdagrad for every parameter (torch's rule, on the touched rows of the sparse item
+    tables, in one fused kernel call); Adam needs SparseAdam for the item tables. Both read the
+    coalesced gradients of step_rows."""
+    sparse_ids = {id(m.weight) for m in model.modules() if isinstance(m, torch.nn.Embedding) and m.sparse}
+    sparse = [p for p in model.parameters() if id(p) in sparse_ids]
+    dense = [p for p in model.parameters() if id(p) not in sparse_ids]
+    if name == "adagrad":
+        return [RowAdagrad([*sparse, *dense], lr=lr)]
+    return [torch.optim.SparseAdam(sparse, lr=lr), torch.optim.Adam(dense, lr=lr)]
+
+
+def train_epoch(
+    model: NextClickGRU,
+    steps: Iterable[Step],
+    sampler: NegativeSampler | EveryItem,
+    loss_fn: LossFn,
+    optimizers: list[torch.optim.Optimizer],
+    batch_size: int,
+    max_steps: int | None = None,
+    progress: tqdm | LineProgress | None = None,
+    log_q: torch.Tensor | None = None,
+) -> EpochStats:
+    """One pass over `steps` (or its first `max_steps`); the model is left in train mode.
+
+    `log_q` float32 [n_items] (candidate_log_q): the log-Q correction of each candidate's score."""
+    model.train()
+    b = batch_size
+    params = [p for opt in optimizers for group in opt.param_groups for p in group["params"]]
+    hidden = model.init_hidden(b)  # [L, B, H]
+    loss_sum = torch.zeros(())  # summed without .item() per step
+    n_steps = 0
+    start = time.perf_counter()
+    for step in steps if max_steps is None else itertools.islice(steps, max_steps):
+        inputs = torch.from_numpy(step.inputs)  # [B]
+        targets = torch.from_numpy(step.targets)  # [B]
+        if step.reset.any():
+            hidden = hidden.masked_fill(torch.from_numpy(step.reset).view(1, b, 1), 0.0)  # [L, B, H]
+        if sampler.in_batch:  # the targets, then each other sampled item once, counted per copy (step_columns)
+            columns = merge_columns(targets, sampler.draw())
+            candidates, negatives, counts = columns.items, columns.negatives, columns.counts  # [C], [B, C], [C]
+            distinct: tuple[torch.Tensor, torch.Tensor] | None = (columns.rows, columns.inverse)
+        else:  # every item once after the targets: nothing to merge
+            candidates = torch.cat([targets, sampler.draw()])  # [B + n_items]
+            negatives, counts, distinct = negative_mask(targets, candidates, in_batch=False), None, None
+        rows = StepRows(model, inputs, candidates, distinct)  # the item-table rows this step reads, see step_rows
+        features, hidden = model.recur(rows.embedded, hidden, hand_backward=True)  # [B, D], [L, B, H]
+        scores = score_rows(features, rows.weights, rows.bias)  # [B, C]
+        if log_q is not None:
+            scores = logq_corrected(scores, log_q[candidates])
+        loss = loss_fn(scores, negatives, counts)
+        for p in params:  # zero_grad(set_to_none=True), without its per-call overhead (no hooks are registered)
+            p.grad = None
+        loss.backward()
+        rows.hand_over()
+        for opt in optimizers:
+            if isinstance(opt, RowAdagrad):
+                opt.step(gathered=rows.gathered())  # the rows StepRows read, updated in place: no second gather
+            else:
+                opt.step()
+        hidden = hidden.detach()
+        loss_sum += loss.detach()
+        n_steps += 1
+        if progress is not None:
+            progress.update(b)
+            if n_steps % 50 == 0:
+                progress.set_postfix(loss=f"{loss_sum.item() / n_steps:.4f}", refresh=False)
+    seconds = time.perf_counter() - start
+    mean_loss = loss_sum.item() / n_steps if n_steps else float("nan")
+    return EpochStats(loss=mean_loss, steps=n_steps, clicks=n_steps * b, seconds=seconds)
+
+
 def validation_sample(split: SessionSplit, sessions: int, seed: int) -> SessionSplit:
     """At most `sessions` of the split's sessions that have a next click to predict, drawn without
     replacement from `seed` (in their order in the split); the whole split when `sessions` is 0 or
@@ -341,8 +725,8 @@ def train(
         log("--logq-correction: every item is a negative (no sampling), so there is nothing to correct")
     fingerprint = data.fingerprint()
 
-    valid = validation_sample(data.valid, settings.valid_sessions, settings.seed)
-    if valid is not data.valid:
+    valid = data.valid.sample(settings.valid_sessions, settings.seed)
+    if valid.n_sessions < int((data.valid.lengths() >= 2).sum()):
         log(f"validating on {valid.n_sessions:,} of {data.valid.n_sessions:,} validation sessions, the same each epoch (--valid-sessions)")
     valid_events = int((valid.lengths() - 1).clip(min=0).sum())
 

@@ -256,6 +256,22 @@ def test_cairn_evaluate_on_the_validation_split_with_default_report(prepared: Pa
     assert list(report) == ["pop", "markov", "decision", "provenance"]
 
 
+def test_cairn_evaluate_on_a_sample_of_sessions(prepared: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    # --sessions N: every recommender on the same seeded sample of N test sessions; the figures are
+    # those of evaluating the sampled split directly (SessionSplit.sample, the reference here).
+    out = tmp_path / "sample.json"
+    assert main(["evaluate", "--data", str(prepared), "--recommenders", "pop,markov", "--sessions", "25", "--bootstrap", "20", "--out", str(out)]) == 0
+    assert "evaluating on 25 of 60 test sessions (--sessions)" in capsys.readouterr().err
+    report = json.loads(out.read_text())
+    assert report["provenance"]["sessions"] == 25 and report["pop"]["sessions"] == report["markov"]["sessions"] == 25
+    data = PreparedData.load(prepared)
+    counts = click_counts(data.train, data.n_items)
+    direct = evaluate(Popularity(counts), data.test.sample(25, 0), popularity=counts, bootstrap=20)
+    assert report["pop"]["recall@20"]["value"] == pytest.approx(direct.metrics["recall@20"].value)
+    assert main(["evaluate", "--data", str(prepared), "--recommenders", "pop", "--bootstrap", "20", "--out", str(out)]) == 0
+    assert json.loads(out.read_text())["provenance"]["sessions"] is None  # all of them
+
+
 def test_bad_paths_fail_before_any_work(prepared: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     import time
 
@@ -281,6 +297,7 @@ def test_bad_paths_fail_before_any_work(prepared: Path, tmp_path: Path, capsys: 
         (["--recommenders", "pop,gru"], "unknown recommender 'gru'"),
         (["--bootstrap", "-3"], "--bootstrap must be a positive integer, got '-3'"),
         (["--knn-regulariser", "x"], "--knn-regulariser must be a number >= 0, got 'x'"),
+        (["--sessions", "-5"], "--sessions must be an integer >= 0, got '-5'"),
     ],
 )
 def test_cairn_evaluate_bad_options_exit_2_with_one_line(

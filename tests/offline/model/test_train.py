@@ -188,23 +188,6 @@ def test_progress_in_a_pipe_is_plain_lines() -> None:
     assert "\r" not in "".join(lines)
 
 
-def test_validation_sample_is_seeded_and_of_sessions_with_a_next_click() -> None:
-    from offline.model.train import validation_sample
-
-    whole = SessionSplit.from_sessions([[1, 2], [3], [4, 5, 6], [7, 8], [9], [10, 11]], times=[[0, 1], [2], [3, 4, 5], [6, 7], [8], [9, 10]])
-    sample = validation_sample(whole, 2, seed=5)
-    assert sample.n_sessions == 2 and all(len(s) >= 2 for s in sample.sessions())
-    kept = [s.tolist() for s in sample.sessions()]
-    assert all(s in [w.tolist() for w in whole.sessions()] for s in kept)
-    assert kept == [s.tolist() for s in validation_sample(whole, 2, seed=5).sessions()]  # the same every epoch
-    assert validation_sample(whole, 0, seed=5) is whole and validation_sample(whole, 4, seed=5) is whole  # 4 usable: all
-    # subset against a split built directly from those sessions (their clicks and times follow them)
-    part = whole.subset(np.array([2, 0]))
-    expected = SessionSplit.from_sessions([[4, 5, 6], [1, 2]], times=[[3, 4, 5], [0, 1]])
-    for field in ("items", "offsets", "times"):
-        assert np.array_equal(getattr(part, field), getattr(expected, field)), field
-
-
 def test_training_validates_on_the_sample_and_says_so(data_dir: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     from offline.model.train import EPOCH_LOG
 
