@@ -63,19 +63,25 @@ def two_workers(model_store, redis_url, tmp_path, token):
 
 def test_two_workers_share_one_visit_and_follow_a_switch(two_workers, offline, sid, token, tmp_path):
     url = two_workers
-    session = sid("w")
-    with fresh(url) as c:
-        before = clicks_served(c.get("/metrics").text)
-        for n, item in enumerate(CLICKS[:8], start=1):
-            answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
-            assert answer["sequence"] == n and answer["served_by"] == "gru"
-            assert [i["item_id"] for i in answer["items"]] == offline["v1"].top(CLICKS[:n], count=6)[0]
-    # One scrape, of whichever worker answers it, counts the clicks both workers answered.
-    for pid, text in worker_of_each_scrape(url).items():
-        assert clicks_served(text) - before == 8, (pid, clicks_served(text), before)
-    time.sleep(0.3)  # the access log lines are written as the answers go out
-    served = clicks_in_access_log((tmp_path / "serve.log").read_text(), session)
-    assert sum(served.values()) == 8 and len(served) == 2, f"one worker served the whole visit: {served}"
+    # The kernel hands each new connection to either worker; now and then it hands all eight of a
+    # visit to one, which proves nothing either way: then the test takes another visit (3 at most).
+    for attempt in range(3):
+        session = sid("w")
+        with fresh(url) as c:
+            before = clicks_served(c.get("/metrics").text)
+            for n, item in enumerate(CLICKS[:8], start=1):
+                answer = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 6}).json()
+                assert answer["sequence"] == n and answer["served_by"] == "gru"
+                assert [i["item_id"] for i in answer["items"]] == offline["v1"].top(CLICKS[:n], count=6)[0]
+        # One scrape, of whichever worker answers it, counts the clicks both workers answered.
+        for pid, text in worker_of_each_scrape(url).items():
+            assert clicks_served(text) - before == 8, (pid, clicks_served(text), before)
+        time.sleep(0.3)  # the access log lines are written as the answers go out
+        served = clicks_in_access_log((tmp_path / "serve.log").read_text(), session)
+        assert sum(served.values()) == 8, served
+        if len(served) == 2:
+            break
+    assert len(served) == 2, f"one worker served the whole visit, {attempt + 1} visits in a row: {served}"
 
     with fresh(url) as c:
         r = c.put("/v1/serving", json={"name": "shop", "version": "v2"}, headers={"authorization": f"Bearer {token}"})
