@@ -297,7 +297,7 @@ def build_candidate_graph(precision: str, dim: int) -> bytes:
     The item tables are inputs, not initialisers: the service feeds its read-only memory maps of the
     artifact's arrays, so every worker reads the same pages. int8: MatMulInteger (uint8 features
     with zero point 128, int8 item codes), accumulated in int32, then acc * feature_scale *
-    item_scale + bias. Why item codes of 7 bits (-63..63, see quantise_int8): ONNX Runtime's
+    item_scale + bias. Why item codes of 7 bits (-63..63, see _codes): ONNX Runtime's
     uint8 x int8 kernel on AVX2 without VNNI adds pairs of products in saturating int16
     (vpmaddubsw); 255 * 63 * 2 < 32767 keeps every pair exact (ONNX Runtime's quantisation tool
     offers the same "reduce_range" for this). Its int8 x int8 and uint8 x uint8 kernels are exact
@@ -353,7 +353,7 @@ def build_candidate_graph(precision: str, dim: int) -> bytes:
 
 
 def int8_scales(vectors: np.ndarray) -> np.ndarray:
-    """float32 [n]: scale_j = max_d |v_jd| / INT8_LEVELS (1 for an all-zero vector); see quantise_int8."""
+    """float32 [n]: scale_j = max_d |v_jd| / INT8_LEVELS (1 for an all-zero vector); see _codes."""
     scales = np.empty(len(vectors), dtype=np.float32)
     for lo in range(0, len(vectors), _QUANTISE_SLICE):
         s = np.abs(vectors[lo : lo + _QUANTISE_SLICE]).max(axis=1) / INT8_LEVELS
@@ -362,23 +362,10 @@ def int8_scales(vectors: np.ndarray) -> np.ndarray:
     return scales
 
 
-def quantise_int8(vectors: np.ndarray, scales: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """float32 [n, D] -> int8 codes [D, n] (transposed for the MatMul), float32 scales [n].
-
-    Symmetric per item (common practice) on 7 bits (see build_candidate_graph for why):
-    scale_j = max_d |v_jd| / INT8_LEVELS, code = round(v / scale_j) in -63..63,
-    so |v_jd - scale_j code_jd| <= scale_j / 2. An all-zero vector gets scale 1 and codes 0.
-    """
-    scales = int8_scales(vectors) if scales is None else scales
-    return np.concatenate(list(_transposed_blocks(vectors, np.int8, lambda v, lo: _codes(v, scales[lo : lo + len(v)])))), scales
-
-
-def half_transposed(vectors: np.ndarray) -> np.ndarray:
-    """float32 [n, D] -> float16 [D, n] (transposed for the MatMul)."""
-    return np.concatenate(list(_transposed_blocks(vectors, np.float16, lambda v, lo: v)))
-
-
 def _codes(v: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """int8 codes (still as floats) of float32 rows v [m, D] with their scales s [m]: symmetric per
+    item (common practice) on 7 bits (see build_candidate_graph for why), code = round(v / scale) in
+    -63..63, so |v_jd - scale_j code_jd| <= scale_j / 2; an all-zero vector has scale 1 and codes 0."""
     return np.clip(np.rint(v / s[:, None]), -INT8_LEVELS, INT8_LEVELS)
 
 
