@@ -22,16 +22,15 @@ from tqdm import tqdm
 from service.errors import InputDataError
 from offline.data.dataset import SessionSplit
 from offline.evaluate.breakdowns import GroupSums, popularity_groups
-from offline.evaluate.next_clicks import iterate_events, target_ranks
+from offline.evaluate.next_clicks import best_items, iterate_events, target_ranks
 from offline.evaluate.ranking_metrics import (
     bootstrap_weights,
     coverage_replicates,
     percentile_interval,
     popularity_shares,
     ratio_replicates,
-    top_k_items,
 )
-from offline.evaluate.scorer import SessionScorer
+from offline.evaluate.scorer import SessionScorer, TopLists
 
 # The baselines a GRU must beat for its verdict line: the strongest sequential simple models
 # (the full decision, over every simple recommender and with the cost per click, is decision.py).
@@ -131,7 +130,9 @@ def evaluate(
     for batch in iterate_events(scorer, split, batch_size):
         scores = _without_seen(batch.scores, batch.sessions, batch.positions, split) if exclude_seen else batch.scores
         ranks = target_ranks(scores, batch.targets)  # [m]
-        top = top_k_items(scores, kmax)  # [m, kk], best first
+        if isinstance(scores, TopLists) and scores.width < min(kmax, n_items):
+            raise InputDataError(f"cut-off {kmax} is beyond the {scores.width} items {scorer.name} finds per click")
+        top = best_items(scores, kmax)  # [m, kk], best first
         pop_cumulative = np.cumsum(shares[top], axis=1)  # [m, kk]
         values = np.empty((len(ranks), len(columns)), dtype=np.float64)  # [m, columns]
         for i, k in enumerate(ks):
@@ -164,15 +165,18 @@ def evaluate(
     return result
 
 
-def _without_seen(scores: np.ndarray, sessions: np.ndarray, positions: np.ndarray, split: SessionSplit) -> np.ndarray:
+def _without_seen(scores: np.ndarray | TopLists, sessions: np.ndarray, positions: np.ndarray, split: SessionSplit) -> np.ndarray | TopLists:
     """A copy of `scores` [m, n_items] with the items each visit clicked before its target at -inf.
 
     A copy: scorers own the buffer they return and may build the next scores on it.
     """
-    out = np.array(scores, dtype=scores.dtype, copy=True)
     rows = np.repeat(np.arange(len(sessions)), positions)  # event m has positions[m] clicks before it
     within = np.arange(len(rows)) - np.repeat(np.cumsum(positions) - positions, positions)
-    out[rows, split.items[np.repeat(split.offsets[sessions], positions) + within]] = -np.inf
+    seen = split.items[np.repeat(split.offsets[sessions], positions) + within].astype(np.int64)
+    if isinstance(scores, TopLists):
+        return scores.without(rows, seen)
+    out = np.array(scores, dtype=scores.dtype, copy=True)
+    out[rows, seen] = -np.inf
     return out
 
 

@@ -13,14 +13,15 @@ from dataclasses import dataclass
 import numpy as np
 
 from offline.data.dataset import SessionSplit
-from offline.evaluate.scorer import SessionScorer
+from offline.evaluate.ranking_metrics import top_k_items
+from offline.evaluate.scorer import SessionScorer, TopLists
 
 
 @dataclass
 class EventBatch:
     sessions: np.ndarray  # int64 [m], index of the session in the split
     positions: np.ndarray  # int64 [m], index of the target click within its session (>= 1)
-    scores: np.ndarray  # float32 [m, n_items], scores given before the target click
+    scores: np.ndarray | TopLists  # float32 [m, n_items] (or each row's best), scores given before the target click
     targets: np.ndarray  # int64 [m], the clicked item
 
 
@@ -41,7 +42,7 @@ def iterate_events(scorer: SessionScorer, split: SessionSplit, batch_size: int =
                 break
             if hasattr(scorer, "needed"):
                 scorer.needed = active  # optional: a scorer may skip the rows whose scores are dropped
-            scores = scorer.advance(split.items[pos].astype(np.int64))  # [n, n_items]
+            scores = scorer.advance(split.items[pos].astype(np.int64))  # [n, n_items] or TopLists
             targets = split.items[begins[active] + t + 1].astype(np.int64)
             yield EventBatch(
                 sessions=chunk[active].astype(np.int64),
@@ -51,11 +52,18 @@ def iterate_events(scorer: SessionScorer, split: SessionSplit, batch_size: int =
             )
 
 
-def target_ranks(scores: np.ndarray, targets: np.ndarray) -> np.ndarray:
+def target_ranks(scores: np.ndarray | TopLists, targets: np.ndarray) -> np.ndarray:
     """1-based rank of each target: 1 + the number of items scored strictly higher.
 
     Ties resolve in the target's favour, as in the evaluation code published with the GRU
     recommender paper (from memory); scorers add a small popularity term so ties are rare.
     """
+    if isinstance(scores, TopLists):
+        return scores.ranks(targets)
     target_scores = scores[np.arange(len(targets)), targets]  # [m]
     return (scores > target_scores[:, None]).sum(axis=1) + 1
+
+
+def best_items(scores: np.ndarray | TopLists, k: int) -> np.ndarray:
+    """The k best items of every row, best first, equal scores by lower index, int64 [m, min(k, n_items)]."""
+    return scores.best(k) if isinstance(scores, TopLists) else top_k_items(scores, k)

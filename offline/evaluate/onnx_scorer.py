@@ -2,9 +2,9 @@
 as the PyTorch model and the baselines (and any difference between them shows up there).
 
 `scoring` picks the path as the service's CAIRN_SCORING does (service/runtime/active.open_step):
-exact scores every item; the other paths (fp16, int8, clustered) return the best KEEP items each,
-the rest at -inf, which is what they serve, so their Recall@k and MRR@k (k <= KEEP) show the
-offline cost of the approximation next to the exact row.
+exact scores every item; the other paths (fp16, int8, clustered) return the best KEEP items each
+as `TopLists` (the rest rank below them), which is what they serve, so their Recall@k and MRR@k
+(k <= KEEP) show the offline cost of the approximation next to the exact row.
 """
 
 from __future__ import annotations
@@ -16,6 +16,8 @@ import numpy as np
 from service.artifacts.format import load_artifact
 from service.runtime.active import Step, open_step
 from service.runtime.onnx_step import OnnxStep
+
+from offline.evaluate.scorer import TopLists
 
 KEEP = 100  # items a top-N path returns per click: above any k the evaluation reports, plus the visit's seen items
 
@@ -31,15 +33,13 @@ class OnnxScorer:
     def begin(self, n_sessions: int) -> None:
         self._hidden = self._step.zero_hidden(n_sessions)  # [L, n, H]
 
-    def advance(self, items: np.ndarray) -> np.ndarray:
+    def advance(self, items: np.ndarray) -> np.ndarray | TopLists:
         items = np.ascontiguousarray(items, dtype=np.int64)  # [n]
         if isinstance(self._step, OnnxStep):
             self._hidden, scores = self._step.run_scores(items, self._hidden)  # [L, n, H], [n, n_items]
             return scores
         self._hidden, top_items, top_scores = self._step.run(items, self._hidden, self._keep)  # [n, KEEP] each
-        scores = np.full((len(items), self.n_items), -np.inf, dtype=np.float32)
-        np.put_along_axis(scores, top_items, top_scores, axis=1)
-        return scores
+        return TopLists(top_items, top_scores, self.n_items)
 
 
 def load_onnx_scorer(path: Path, threads: int = 1, scoring: str = "exact") -> OnnxScorer:

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from offline.data.dataset import SessionSplit
-from offline.evaluate.ranking_metrics import top_k_items
+from offline.evaluate.next_clicks import best_items
 from offline.evaluate.scorer import SessionScorer
 
 LIST_LENGTH = 20
@@ -45,7 +45,7 @@ def scorer_clicker(scorer: SessionScorer) -> tuple[Callable[[], None], Clicker]:
 
     def click(visit: list[int]) -> object:
         scores = scorer.advance(np.array([visit[-1]], dtype=np.int64))
-        return top_k_items(scores, LIST_LENGTH + len(visit))
+        return best_items(scores, LIST_LENGTH + len(visit))
 
     return (lambda: scorer.begin(1)), click
 
