@@ -1,4 +1,4 @@
-"""Large catalogues: each scoring path (exact, fp16, int8, clustered) at 200,000 and 1,000,000 items, side by side.
+"""Large catalogues: each scoring path (exact, fp16, int8, int4, clustered) at 200,000 and 1,000,000 items, side by side.
 
 Per size: `cairn export --random --items N` (wall time, and peak memory from getrusage in the export's own process),
 the artifact's size on disk, then per path (CAIRN_SCORING; `clustered@P` = clustered with
@@ -44,7 +44,7 @@ from service.errors import BenchError
 TOP = 20
 PACED_RATE = 50.0  # clicks/s over all connections
 PACED_CONNECTIONS = 4
-SCORINGS = ("exact", "fp16", "int8", "clustered")
+SCORINGS = ("exact", "fp16", "int8", "int4", "clustered")
 
 
 def export(store: Path, n_items: int, log: Path) -> dict:
@@ -239,7 +239,7 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--sizes", type=int, nargs="*", default=[200_000, 1_000_000])
     p.add_argument("--paths", nargs="+", default=["exact", "int8", "clustered", "clustered@32"], metavar="PATH",
-                   help="scoring paths: exact, fp16, int8, clustered, clustered@N (N clusters probed)")  # fmt: skip
+                   help="scoring paths: exact, fp16, int8, int4, clustered, clustered@N (N clusters probed)")  # fmt: skip
     p.add_argument("--trained", type=Path, metavar="ARTIFACT", help="a trained model's artifact folder, measured too")
     p.add_argument("--trained-data", type=Path, metavar="PREPARED", help="the prepared data it was trained on (test-split visits)")
     p.add_argument("--paced-clicks", type=int, default=400)

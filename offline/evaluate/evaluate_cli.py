@@ -31,7 +31,7 @@ from offline.evaluate.tuning import choose_exclude_seen, tune_session_knn
 
 BASELINES = ("pop", "spop", "markov", "item-knn", "session-knn")
 EXCLUDE_SEEN = ("on", "off", "auto")
-SCORING_PATHS = ("exact", "fp16", "int8", "clustered")  # CAIRN_SCORING's paths, auto aside: a row names the path it measured
+SCORING_PATHS = ("exact", "fp16", "int8", "int4", "clustered")  # CAIRN_SCORING's paths, auto aside: a row names the path it measured
 DEFAULT_RECOMMENDERS = ",".join(BASELINES)
 
 

@@ -2,7 +2,7 @@
 as the PyTorch model and the baselines (and any difference between them shows up there).
 
 `scoring` picks the path as the service's CAIRN_SCORING does (service/runtime/active.open_step):
-exact scores every item; the other paths (fp16, int8, clustered) return the best KEEP items each
+exact scores every item; the other paths (fp16, int8, int4, clustered) return the best KEEP items each
 as `TopLists` (the rest rank below them), which is what they serve, so their Recall@k and MRR@k
 (k <= KEEP) show the offline cost of the approximation next to the exact row.
 """

@@ -38,17 +38,24 @@ from service.artifacts.format import RowBlocks
 from service.artifacts.item_vectors import (
     CANDIDATE_GRAPH_FORMAT,
     CANDIDATES_FP16,
+    CANDIDATES_INT4,
     CANDIDATES_INT8,
     EMBEDDING,
     FEATURE_GRAPH,
     FEATURE_GRAPH_FORMAT,
     FEATURE_ZERO_POINT,
+    INT4_BLOCK,
+    INT4_LEVELS,
+    INT4_ZERO_POINT,
     INT8_LEVELS,
     ITEM_BIAS,
     ITEM_SCALES,
+    ITEM_SCALES_INT4,
     ITEM_VECTORS,
     ITEM_VECTORS_FP16,
+    ITEM_VECTORS_INT4,
     ITEM_VECTORS_INT8,
+    int4_blocks,
 )
 from service.errors import ArtifactError
 from offline.model.gru import NextClickGRU
@@ -198,8 +205,9 @@ def _initialiser_list() -> tuple[list[onnx.TensorProto], Any]:
     return inits, const
 
 
-def _finish(graph: onnx.GraphProto, kind: str, check: bool = True) -> onnx.ModelProto:
-    model = helper.make_model(graph, producer_name="cairn", opset_imports=[helper.make_opsetid("", OPSET)])
+def _finish(graph: onnx.GraphProto, kind: str, check: bool = True, domains: tuple[str, ...] = ()) -> onnx.ModelProto:
+    opsets = [helper.make_opsetid("", OPSET), *(helper.make_opsetid(d, 1) for d in domains)]
+    model = helper.make_model(graph, producer_name="cairn", opset_imports=opsets)
     model.ir_version = IR_VERSION
     helper.set_model_props(model, {"cairn.graph": kind})
     if not check:
@@ -352,6 +360,84 @@ def build_candidate_graph(precision: str, dim: int) -> bytes:
     return _finish(graph, f"{CANDIDATE_GRAPH_FORMAT}-{precision}").SerializeToString()
 
 
+def build_int4_candidate_graph(dim: int, n_items: int) -> bytes:
+    """Approximate scores of every item from the int4 table (item_vectors_int4.npy), and the best `k`.
+
+    inputs   features float32 [B, D]; bias float32 [n_items]; k int64 [1]
+    outputs  candidates int64 [B, k], approx float32 [B, k] (descending)
+
+    ONNX Runtime's MatMulNBits (com.microsoft domain; 4 bits, blocks of INT4_BLOCK, no zero points
+    given: 8) computes features . dequantised vectors. Its tables are initialisers, because its fast
+    kernels need them packed at load; the graph holds two one-item placeholders named `codes` and
+    `scales`, which the service replaces with the artifact's memory-mapped arrays
+    (`SessionOptions.add_initializer`), so the file stays small and the table exists once on disk.
+    ONNX Runtime then packs its own copy (about 64 bytes an item: a private 64 MB per worker at a
+    million items). accuracy_level 4 quantises each block of the features to int8 and multiplies in
+    integers: on this machine (AVX2) 5-8x faster than the float path, and the exact re-scoring of
+    the candidates takes out the extra error.
+    """
+    blocks = int4_blocks(dim)
+    inits = [
+        numpy_helper.from_array(np.full((1, blocks, INT4_BLOCK // 2), INT4_ZERO_POINT * 17, dtype=np.uint8), "codes"),  # code 0 in both halves
+        numpy_helper.from_array(np.ones(blocks, dtype=np.float32), "scales"),
+    ]
+    nodes = [
+        helper.make_node("MatMulNBits", ["features", "codes", "scales"], ["logits"], domain="com.microsoft",
+                         K=dim, N=n_items, bits=4, block_size=INT4_BLOCK, accuracy_level=4),  # fmt: skip
+        helper.make_node("Add", ["logits", "bias"], ["approx_all"]),
+        helper.make_node("TopK", ["approx_all", "k"], ["approx", "candidates"], axis=-1, largest=1, sorted=1),
+    ]
+    graph = helper.make_graph(
+        nodes,
+        "cairn_candidates_int4",
+        inputs=[
+            helper.make_tensor_value_info("features", TensorProto.FLOAT, ["batch", dim]),
+            helper.make_tensor_value_info("bias", TensorProto.FLOAT, [n_items]),
+            helper.make_tensor_value_info("k", TensorProto.INT64, [1]),
+        ],
+        outputs=[
+            helper.make_tensor_value_info("candidates", TensorProto.INT64, ["batch", "k"]),
+            helper.make_tensor_value_info("approx", TensorProto.FLOAT, ["batch", "k"]),
+        ],
+        initializer=inits,
+    )
+    # The ONNX checker knows no com.microsoft operators; ONNX Runtime checks the graph when it opens it.
+    return _finish(graph, f"{CANDIDATE_GRAPH_FORMAT}-int4", check=False, domains=("com.microsoft",)).SerializeToString()
+
+
+def int4_scales(vectors: np.ndarray) -> np.ndarray:
+    """float32 [n, blocks]: max |v| of each block of INT4_BLOCK coordinates / INT4_LEVELS (1 for an all-zero block)."""
+    n, dim = vectors.shape
+    blocks = int4_blocks(dim)
+    scales = np.empty((n, blocks), dtype=np.float32)
+    for lo in range(0, n, _QUANTISE_SLICE):
+        v = np.abs(vectors[lo : lo + _QUANTISE_SLICE])
+        for j in range(blocks):
+            scales[lo : lo + len(v), j] = v[:, j * INT4_BLOCK : (j + 1) * INT4_BLOCK].max(axis=1) / INT4_LEVELS
+    scales[scales == 0] = 1.0
+    return scales
+
+
+def int4_codes(v: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """Packed int4 codes of float32 rows v [m, D] with their block scales s [m, blocks]: uint8
+    [m, blocks, INT4_BLOCK / 2]. code = round(v / scale) in -7..7 (symmetric per block, common
+    practice), so |v - scale code| <= scale / 2; stored code + 8, two a byte, the even coordinate
+    in the low four bits (MatMulNBits' layout); padding coordinates are code 0."""
+    m, dim = v.shape
+    blocks = s.shape[1]
+    padded = np.zeros((m, blocks * INT4_BLOCK), dtype=np.float32)
+    padded[:, :dim] = v
+    codes = np.clip(np.rint(padded.reshape(m, blocks, INT4_BLOCK) / s[:, :, None]), -INT4_LEVELS, INT4_LEVELS).astype(np.int8)
+    codes = (codes + INT4_ZERO_POINT).view(np.uint8)  # 1..15
+    return codes[:, :, 0::2] | (codes[:, :, 1::2] << 4)
+
+
+def _int4_rows(vectors: np.ndarray, scales: np.ndarray) -> Iterator[np.ndarray]:
+    """The int4 table in blocks of _QUANTISE_SLICE items, for RowBlocks."""
+    for lo in range(0, len(vectors), _QUANTISE_SLICE):
+        yield int4_codes(vectors[lo : lo + _QUANTISE_SLICE], scales[lo : lo + _QUANTISE_SLICE])
+
+
 def int8_scales(vectors: np.ndarray) -> np.ndarray:
     """float32 [n]: scale_j = max_d |v_jd| / INT8_LEVELS (1 for an all-zero vector); see _codes."""
     scales = np.empty(len(vectors), dtype=np.float32)
@@ -385,6 +471,7 @@ def _transposed_blocks(vectors: np.ndarray, dtype: type, convert: Any, dims: int
 def item_vector_files(w: _StepWeights) -> dict[str, Any]:
     """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py)."""
     scales = int8_scales(w.output)
+    scales4 = int4_scales(w.output)
     dim = w.output.shape[1]
     return {
         FEATURE_GRAPH: build_feature_graph(w),
@@ -399,4 +486,7 @@ def item_vector_files(w: _StepWeights) -> dict[str, Any]:
         ITEM_SCALES: scales,
         CANDIDATES_FP16: build_candidate_graph("fp16", dim),
         CANDIDATES_INT8: build_candidate_graph("int8", dim),
+        ITEM_VECTORS_INT4: RowBlocks((w.n_items, int4_blocks(dim), INT4_BLOCK // 2), np.dtype(np.uint8), lambda: _int4_rows(w.output, scales4)),
+        ITEM_SCALES_INT4: scales4,
+        CANDIDATES_INT4: build_int4_candidate_graph(dim, w.n_items),
     }

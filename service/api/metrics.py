@@ -185,7 +185,7 @@ class ServiceMetrics:
             Gauge("cairn_gru_batched_clicks", "Clicks scored by those calls; divided by cairn_gru_batches, the mean batch size.", registry=reg, mode="livesum")
         )
         self.gru_scoring: Counter = (
-            Counter("cairn_gru_scoring_total", "GRU answers by scoring path: exact (every item, float32), fp16 or int8 (approximate candidates re-scored exactly), clustered (the nearest clusters' items, exact).", ("scoring",), registry=reg)
+            Counter("cairn_gru_scoring_total", "GRU answers by scoring path: exact (every item, float32), fp16, int8 or int4 (approximate candidates re-scored exactly), clustered (the nearest clusters' items, exact).", ("scoring",), registry=reg)
         )
         self.state_cache: Gauge = (
             Gauge("cairn_state_cache_lookups", "Clicks whose session state was found in this worker's recent writes (hit) or read from the store (miss).", ("result",), registry=reg, mode="livesum")

@@ -113,7 +113,7 @@ class ServingAnswer(BaseModel):
     version: str
     recommender: str
     artifact: str = Field(description="name/version, as answers carry it")
-    scoring: str = Field(description="how this worker's GRU ranks the items: exact, fp16, int8 or clustered (CAIRN_SCORING as resolved for the artifact)")
+    scoring: str = Field(description="how this worker's GRU ranks the items: exact, fp16, int8, int4 or clustered (CAIRN_SCORING as resolved for the artifact)")
 
 
 class SwitchAnswer(ServingAnswer):

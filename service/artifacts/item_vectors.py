@@ -16,6 +16,12 @@ reduced-precision copies of the output vectors for a cheaper first pass over eve
                              7 bits: see offline/export/onnx_graph.build_candidate_graph)
     candidates_fp16.onnx     approximate scores from the fp16 table -> the best k (see onnx_graph.build_candidate_graph)
     candidates_int8.onnx     the same from the int8 table
+    item_vectors_int4.npy    uint8 [n_items, blocks, INT4_BLOCK / 2]: each item's vector in blocks of
+                             INT4_BLOCK coordinates (zero-padded to whole blocks), round(v / scale)
+                             + 8 in 1..15, two codes a byte, the lower coordinate in the low half:
+                             the layout of ONNX Runtime's MatMulNBits operator (com.microsoft domain)
+    item_scales_int4.npy     float32 [n_items, blocks], max |v| of the block / 7 (symmetric per block)
+    candidates_int4.onnx     approximate scores from the int4 table (optional: exports before it lack it)
 
 Every file is in the manifest's checksums. The manifest's `item_vectors` section names the
 precisions present. An artifact without them is still served, by the exact path.
@@ -45,16 +51,31 @@ CANDIDATES_INT8 = "candidates_int8.onnx"
 ITEM_VECTOR_FILES = (
     FEATURE_GRAPH, EMBEDDING, ITEM_VECTORS, ITEM_BIAS, ITEM_VECTORS_FP16, ITEM_VECTORS_INT8, ITEM_SCALES, CANDIDATES_FP16, CANDIDATES_INT8,
 )
+ITEM_VECTORS_INT4 = "item_vectors_int4.npy"
+ITEM_SCALES_INT4 = "item_scales_int4.npy"
+CANDIDATES_INT4 = "candidates_int4.onnx"
+INT4_FILES = (ITEM_VECTORS_INT4, ITEM_SCALES_INT4, CANDIDATES_INT4)  # optional beside ITEM_VECTOR_FILES
 FEATURE_GRAPH_FORMAT = "cairn-gru-features/1"
 CANDIDATE_GRAPH_FORMAT = "cairn-candidates/1"
-PRECISIONS = ("fp16", "int8")
+PRECISIONS = ("fp16", "int8", "int4")
 INT8_LEVELS = 63  # item codes in -63..63
 FEATURE_ZERO_POINT = 128  # features go to the int8 candidate graph as uint8 code + 128
+INT4_BLOCK = 32  # coordinates per int4 block (one scale each)
+INT4_LEVELS = 7  # int4 codes in -7..7, stored + INT4_ZERO_POINT
+INT4_ZERO_POINT = 8  # MatMulNBits' zero point for 4 bits when none is given
+
+
+def int4_blocks(dim: int) -> int:
+    """Blocks of INT4_BLOCK coordinates that hold a vector of `dim` (the last one zero-padded)."""
+    return -(-dim // INT4_BLOCK)
 
 
 def item_vectors_manifest() -> dict[str, Any]:
     """The manifest's `item_vectors` section, written by the export."""
-    return {"format": FEATURE_GRAPH_FORMAT, "precisions": list(PRECISIONS), "int8": f"symmetric per item: scale = max|v| / {INT8_LEVELS}"}
+    return {
+        "format": FEATURE_GRAPH_FORMAT, "precisions": list(PRECISIONS), "int8": f"symmetric per item: scale = max|v| / {INT8_LEVELS}",
+        "int4": f"symmetric per block of {INT4_BLOCK} coordinates: scale = max|v| / {INT4_LEVELS}, stored code + {INT4_ZERO_POINT}",
+    }  # fmt: skip
 
 
 @dataclass
@@ -63,9 +84,10 @@ class ItemVectors:
     embedding: np.ndarray  # float32 [n_items, E], read-only memory map
     vectors: np.ndarray  # float32 [n_items, D], read-only memory map
     bias: np.ndarray  # float32 [n_items]
-    codes: dict[str, np.ndarray]  # precision -> [D, n_items] (float16 or int8), read-only memory maps
+    codes: dict[str, np.ndarray]  # precision -> [D, n_items] (float16 or int8; int4: see the docstring), read-only memory maps
     scales: np.ndarray  # float32 [n_items], the int8 scale of each item
     candidate_graphs: dict[str, Path]  # precision -> its candidate graph
+    int4_scales: np.ndarray | None = None  # float32 [n_items, blocks], with codes["int4"] when the artifact has it
 
     @property
     def n_items(self) -> int:
@@ -98,10 +120,8 @@ def load_item_vectors(path: Path, manifest: dict[str, Any], n_items: int) -> Ite
         EMBEDDING: (n_items, embedding.shape[1]), ITEM_VECTORS: (n_items, dim), ITEM_BIAS: (n_items,),
         ITEM_VECTORS_FP16: (dim, n_items), ITEM_VECTORS_INT8: (dim, n_items), ITEM_SCALES: (n_items,),
     }
-    for fname, a in zip(expected, (embedding, vectors, bias, fp16, int8, scales)):
-        if a.shape != expected[fname]:
-            raise ArtifactError(f"{path / fname}: shape {a.shape}, expected {expected[fname]} for {n_items} items")
-    return ItemVectors(
+    tables = {EMBEDDING: embedding, ITEM_VECTORS: vectors, ITEM_BIAS: bias, ITEM_VECTORS_FP16: fp16, ITEM_VECTORS_INT8: int8, ITEM_SCALES: scales}
+    out = ItemVectors(
         feature_graph=path / FEATURE_GRAPH,
         embedding=embedding,
         vectors=vectors,
@@ -110,3 +130,13 @@ def load_item_vectors(path: Path, manifest: dict[str, Any], n_items: int) -> Ite
         scales=np.ascontiguousarray(scales),
         candidate_graphs={"fp16": path / CANDIDATES_FP16, "int8": path / CANDIDATES_INT8},
     )
+    if all(f in manifest["files"] for f in INT4_FILES):
+        blocks = int4_blocks(dim)
+        tables[ITEM_VECTORS_INT4] = out.codes["int4"] = array(ITEM_VECTORS_INT4, np.uint8, 3)
+        tables[ITEM_SCALES_INT4] = out.int4_scales = array(ITEM_SCALES_INT4, np.float32, 2)
+        out.candidate_graphs["int4"] = path / CANDIDATES_INT4
+        expected |= {ITEM_VECTORS_INT4: (n_items, blocks, INT4_BLOCK // 2), ITEM_SCALES_INT4: (n_items, blocks)}
+    for fname, a in tables.items():
+        if a.shape != expected[fname]:
+            raise ArtifactError(f"{path / fname}: shape {a.shape}, expected {expected[fname]} for {n_items} items")
+    return out

@@ -95,7 +95,7 @@ class LoadedModel:
             raise ArtifactError(f"{artifact.path}: step graph scores {step.n_items} items, the id map has {artifact.n_items}")
         self.artifact = artifact
         self.tag = f"{artifact.name}/{artifact.version}"
-        self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8 | clustered: which path scores the GRU's answers
+        self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8 | int4 | clustered: which path scores the GRU's answers
         self.item_index = artifact.item_index
         self.item_ids = artifact.item_ids  # index -> id
         self.popularity = PopularityRecommender(artifact.popularity)
@@ -149,16 +149,19 @@ AUTO_CLUSTERED_AGREEMENT = 0.99
 AUTO_CLUSTERED_MAX_SHARE = 0.25
 
 
-def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters: ClusterFit | None = None) -> str:
+def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters: ClusterFit | None = None, has_int4: bool = False) -> str:
     """What answers: `setting` when the artifact can do it, else exact (logged by the caller).
-    `clusters`: what the export measured for the artifact's clustered index, None without one."""
+    `clusters`: what the export measured for the artifact's clustered index, None without one;
+    `has_int4`: the artifact has the int4 table (exports before it do not)."""
     if setting == "auto":
         if not has_vectors or n_items < AUTO_REDUCED_FROM:
             return "exact"
         if clusters is not None and clusters.agreement >= AUTO_CLUSTERED_AGREEMENT and clusters.read_share <= AUTO_CLUSTERED_MAX_SHARE:
             return "clustered"
-        return "int8"
+        return "int4" if has_int4 else "int8"
     if setting in ("fp16", "int8") and not has_vectors:
+        return "exact"
+    if setting == "int4" and not (has_vectors and has_int4):
         return "exact"
     if setting == "clustered" and (not has_vectors or clusters is None):
         return "exact"
@@ -166,13 +169,13 @@ def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters: Cluste
 
 
 def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0) -> Step:
-    """The GRU step of a verified artifact for a scoring setting (exact | fp16 | int8 | clustered |
-    auto; see `scoring_path`): the exact step graph, or for the other paths the feature graph over
+    """The GRU step of a verified artifact for a scoring setting (exact | fp16 | int8 | int4 |
+    clustered | auto; see `scoring_path`): the exact step graph, or for the other paths the feature graph over
     memory-mapped item tables (the exact graph with its private copy of the tables is then not
     opened). `probe` > 0 overrides the clustered index's probe count (`auto` judges by the export's)."""
     tables = load_item_vectors(artifact.path, artifact.manifest, artifact.n_items)
     fit = cluster_fit(artifact.manifest, artifact.n_items) if tables is not None else None
-    path_name = scoring_path(scoring, artifact.n_items, tables is not None, fit)
+    path_name = scoring_path(scoring, artifact.n_items, tables is not None, fit, has_int4=tables is not None and "int4" in tables.codes)
     if path_name != scoring and scoring != "auto":
         log.warning("%s has no files for CAIRN_SCORING=%s (exported by an older cairn, or too few items): scoring exactly", artifact.path, scoring)
     if path_name == "exact" or tables is None:

@@ -33,11 +33,15 @@ def ort_errors() -> tuple[type[BaseException], ...]:
     return _ORT_ERRORS
 
 
-def open_session(path: Path, threads: int = 1) -> ort.InferenceSession:
-    """An ONNX Runtime session on the CPU with cairn's options; ArtifactError when it cannot be opened."""
+def open_session(path: Path, threads: int = 1, initializers: dict[str, ort.OrtValue] | None = None) -> ort.InferenceSession:
+    """An ONNX Runtime session on the CPU with cairn's options; ArtifactError when it cannot be opened.
+    `initializers` replace the graph's initialisers of those names (the caller keeps them alive
+    as long as the session)."""
     if threads < 1:
         raise StepError(f"threads must be at least 1, got {threads}")
     options = ort.SessionOptions()
+    for name, value in (initializers or {}).items():
+        options.add_initializer(name, value)
     options.intra_op_num_threads = threads  # 1: no thread pool, the call runs on the caller's thread
     options.inter_op_num_threads = 1
     options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL

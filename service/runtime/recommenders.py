@@ -30,7 +30,7 @@ class Ranking:
     items: list[int]  # best first, k <= count
     scores: list[float]
     step_s: float = 0.0  # GRU: seconds ONNX Runtime spent on the call that scored it (Server-Timing `step`)
-    scoring: str = ""  # GRU: the scoring path, exact | fp16 | int8 (Server-Timing `scoring`)
+    scoring: str = ""  # GRU: the scoring path, exact | fp16 | int8 | int4 | clustered (Server-Timing `scoring`)
 
 
 class Recommender(Protocol):

@@ -1,7 +1,8 @@
 """One GRU step with reduced-precision scoring: approximate top candidates, then exact re-scoring.
 
 Scoring every item is memory-bandwidth bound: at a million items and D = 100 one click reads
-400 MB of float32 output vectors. This path reads a quarter of that (int8) or a half (fp16):
+400 MB of float32 output vectors. This path reads a half of that (fp16), a quarter (int8) or
+about a sixth (int4, 64 bytes an item with its block scales):
 
     x = embedding[items]                        numpy, rows of a read-only memory map
     next_hidden, f = features.onnx(x, hidden)   ONNX Runtime, the GRU without item tables
@@ -10,14 +11,17 @@ Scoring every item is memory-bandwidth bound: at a million items and D = 100 one
     exact = vectors[candidates] . f + bias      numpy, float32, the candidates only
     top_n of the exact scores                   so answers carry exact fp32 scores
 
-The item tables go into ONNX Runtime as inputs, fed from the memory maps each call (CPU inputs are
-used in place, not copied), so the pages are the OS's page cache, shared by every worker. Same
+The fp16 and int8 tables go into ONNX Runtime as inputs, fed from the memory maps each call (CPU
+inputs are used in place, not copied), so the pages are the OS's page cache, shared by every
+worker. The int4 table goes in once, as the graph's initialiser, and ONNX Runtime packs a private
+copy of it (64 MB at a million items). Same
 call contract as `OnnxStep.run`; `scoring` names the path for Server-Timing.
 """
 
 from __future__ import annotations
 
 import numpy as np
+import onnxruntime as ort
 
 from service.artifacts.item_vectors import FEATURE_ZERO_POINT, ItemVectors
 from service.errors import StepError
@@ -44,21 +48,27 @@ def quantise_rows(features: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 class ReducedStep(FeatureStep):
-    """`OnnxStep`'s `run` for an artifact with item vectors, scoring in `precision` (fp16 | int8)."""
+    """`OnnxStep`'s `run` for an artifact with item vectors, scoring in `precision` (fp16 | int8 | int4)."""
 
     def __init__(self, tables: ItemVectors, precision: str, threads: int = 1) -> None:
         if precision not in tables.codes:
             raise StepError(f"no {precision!r} item vectors; the artifact has {', '.join(tables.codes)}")
         super().__init__(tables, threads)
         self.scoring = precision
-        self._candidates = open_session(tables.candidate_graphs[precision], threads)
-        self._feed = {"codes": tables.codes[precision], "bias": tables.bias}
+        self._feed = {"bias": tables.bias}
+        # int4: the table goes in as the graph's initialisers (see build_int4_candidate_graph),
+        # over the memory maps; ONNX Runtime packs its own copy when the session opens.
+        self._tables = {"codes": ort.OrtValue.ortvalue_from_numpy(tables.codes["int4"]),
+                        "scales": ort.OrtValue.ortvalue_from_numpy(tables.int4_scales)} if precision == "int4" else {}  # fmt: skip
+        self._candidates = open_session(tables.candidate_graphs[precision], threads, self._tables)
+        if precision != "int4":
+            self._feed["codes"] = tables.codes[precision]
         if precision == "int8":
             self._feed["scales"] = tables.scales
         self._k: dict[int, np.ndarray] = {}
 
     def _query(self, features: np.ndarray) -> dict[str, np.ndarray]:
-        if self.scoring != "int8":
+        if self.scoring != "int8":  # fp16 and int4 take float32 features (int4 quantises them per block in the graph)
             return {"features": features}
         codes, scales = quantise_rows(features)
         return {"features": codes, "feature_scales": scales}

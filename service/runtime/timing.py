@@ -12,4 +12,4 @@ class Timing:
     store_s: float = 0.0
     model_s: float = 0.0  # the model as the request saw it: queue, thread hand-over, replay, scoring
     step_s: float = 0.0  # of that, ONNX Runtime's call that scored this click
-    scoring: str = ""  # which scoring path the GRU took (exact | fp16 | int8); empty when it did not answer
+    scoring: str = ""  # which scoring path the GRU took (exact | fp16 | int8 | int4 | clustered); empty when it did not answer

@@ -257,23 +257,25 @@ def test_onnx_evaluation_equals_torch_evaluation(trained, tmp_path: Path) -> Non
 
 
 def test_each_scoring_path_is_evaluated_as_it_serves(trained, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
-    # `cairn evaluate --artifact P --scoring ...`: a row per path. int8 re-scores its 512 candidates
-    # exactly, and 512 candidates cover these 120 items, so its figures must equal the exact row's.
+    # `cairn evaluate --artifact P --scoring ...`: a row per path. int8 and int4 re-score their 512
+    # candidates exactly, and 512 candidates cover these 120 items, so their figures must equal the exact row's.
     _, checkpoint, data_dir, _ = trained
     path = export_artifact(checkpoint, data_dir, tmp_path / "store", "garden", "v1", neighbours=5, clusters=True)
     out = tmp_path / "eval.json"
-    argv = ["evaluate", "--data", str(data_dir), "--recommenders", "pop", "--artifact", str(path), "--scoring", "exact", "int8", "clustered"]
+    argv = ["evaluate", "--data", str(data_dir), "--recommenders", "pop", "--artifact", str(path), "--scoring", "exact", "int8", "int4", "clustered"]
     assert cairn([*argv, "--bootstrap", "20", "--cost-clicks", "0", "--out", str(out)]) == 0
     report = json.loads(out.read_text())
     rows = [n for n in report if n.startswith("gru")]
-    assert rows == ["gru-bpr-max-onnx", "gru-bpr-max-onnx-int8", "gru-bpr-max-onnx-clustered"]
-    exact, int8 = report["gru-bpr-max-onnx"], report["gru-bpr-max-onnx-int8"]
-    assert int8["recall@20"]["value"] == exact["recall@20"]["value"] and int8["mrr@20"]["value"] == pytest.approx(exact["mrr@20"]["value"], abs=1e-9)
+    assert rows == ["gru-bpr-max-onnx", "gru-bpr-max-onnx-int8", "gru-bpr-max-onnx-int4", "gru-bpr-max-onnx-clustered"]
+    exact = report["gru-bpr-max-onnx"]
+    for reduced in (report["gru-bpr-max-onnx-int8"], report["gru-bpr-max-onnx-int4"]):
+        assert reduced["recall@20"]["value"] == exact["recall@20"]["value"]
+        assert reduced["mrr@20"]["value"] == pytest.approx(exact["mrr@20"]["value"], abs=1e-9)
     assert 0 < report["gru-bpr-max-onnx-clustered"]["recall@20"]["value"] <= 1
     assert report["provenance"]["artifacts"] == {r: str(path) for r in rows}
     capsys.readouterr()
     with pytest.raises(SystemExit) as refused:  # argparse's usage error, exit status 2
-        cairn([*argv[:-4], "--scoring", "int4"])
+        cairn([*argv[:-5], "--scoring", "int2"])
     assert refused.value.code == 2
     assert "--scoring" in capsys.readouterr().err
 

@@ -15,7 +15,7 @@ def scoring_counts(text: str) -> dict[str, float]:
     return {k: float(v) for k, v in re.findall(r'cairn_gru_scoring_total\{scoring="(\w+)"\} ([\d.e+]+)', text)}
 
 
-@pytest.mark.parametrize("scoring", ["exact", "fp16", "int8", "clustered"])
+@pytest.mark.parametrize("scoring", ["exact", "fp16", "int8", "int4", "clustered"])
 def test_each_path_answers_with_the_models_list_and_is_counted(fresh_server, offline, sid, scoring: str) -> None:
     # clustered: every cluster probed (CAIRN_PROBE_CLUSTERS above the count), so the list must be
     # the exact one; tests/service/runtime/test_clustered_step.py measures a partial probe.
@@ -45,6 +45,6 @@ def test_auto_scores_a_small_catalogue_exactly(fresh_server, sid) -> None:
 
 
 def test_an_unknown_scoring_path_is_refused_naming_the_setting(monkeypatch) -> None:
-    monkeypatch.setenv("CAIRN_SCORING", "int4")
+    monkeypatch.setenv("CAIRN_SCORING", "int2")
     with pytest.raises(ValueError, match="scoring"):
         Settings()

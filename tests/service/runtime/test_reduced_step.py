@@ -1,10 +1,16 @@
-"""Reduced-precision scoring (fp16, int8 + exact re-scoring) against exact float32 scoring.
+"""Reduced-precision scoring (fp16, int8, int4 + exact re-scoring) against exact float32 scoring.
 
 References: the exact top-N is `numpy.argpartition` over f . v + b in float64 (NumPy's own
 selection); the int8 error bound is the usual one for symmetric per-vector quantisation
 (common practice): with v = s c + e_v, |e_v| <= s/2 per coordinate, and each feature row
 quantised the same way (f = s_f c_f + e_f, |e_f| <= s_f/2),
 |f.v - approx| <= ||f||_1 s/2 + ||v||_1 s_f/2 + D s s_f/4.
+int4 follows the same rule per block of 32 coordinates; the features are quantised to int8 inside
+ONNX Runtime's MatMulNBits (accuracy_level 4), per block, so a step of at most max|f| / 127
+(a whole-row scale bounds every block's): |f.v - approx| <= ||f||_1 s_v/2 + ||v_hat||_1 s_f/2
+summed over blocks, v_hat the dequantised vector. The packed layout (two codes a byte, low half
+first, zero point 8) is ONNX Runtime's for MatMulNBits (its contrib operator documentation);
+that the operator's results meet the bound checks the layout against ONNX Runtime itself.
 """
 
 from __future__ import annotations
@@ -18,7 +24,7 @@ import pytest
 
 from offline.export.artifact_writer import write_random_artifact
 from service.artifacts.format import load_artifact, write_artifact
-from service.artifacts.item_vectors import ITEM_VECTOR_FILES, load_item_vectors
+from service.artifacts.item_vectors import INT4_BLOCK, INT4_FILES, ITEM_VECTOR_FILES, load_item_vectors
 from service.errors import StepError
 from service.runtime.active import AUTO_REDUCED_FROM, load_model, scoring_path
 from service.runtime.onnx_step import OnnxStep, open_session
@@ -72,7 +78,52 @@ def test_int8_scores_stay_within_the_quantisation_bound(artifact: Path) -> None:
     assert np.all(np.abs(recon - t.vectors) <= t.scales[:, None] / 2 + 1e-7)
 
 
-@pytest.mark.parametrize("precision", ["fp16", "int8"])
+def unpack_int4(packed: np.ndarray, scales: np.ndarray, dim: int) -> np.ndarray:
+    """float32 [n, dim]: the dequantised vectors of a packed int4 table [n, blocks, 16] with its block scales [n, blocks]."""
+    codes = np.empty((*packed.shape[:2], INT4_BLOCK), dtype=np.int16)
+    codes[:, :, 0::2] = packed & 0x0F
+    codes[:, :, 1::2] = packed >> 4
+    return ((codes - 8) * scales[:, :, None]).reshape(len(packed), -1)[:, :dim].astype(np.float32)
+
+
+def test_int4_scores_stay_within_the_quantisation_bound(artifact: Path) -> None:
+    a = load_artifact(artifact)
+    t = load_item_vectors(artifact, a.manifest, a.n_items)
+    vectors = np.asarray(t.vectors)
+    packed, scales = np.asarray(t.codes["int4"]), np.asarray(t.int4_scales)
+    # The stored codes reproduce the vectors within half a step per coordinate, block by block.
+    codes = np.stack([packed & 0x0F, packed >> 4], axis=-1)
+    assert codes.min() >= 1 and codes.max() <= 15  # -7..7 + 8: symmetric
+    v_hat = unpack_int4(packed, scales, HIDDEN)
+    step = np.repeat(scales, INT4_BLOCK, axis=1)[:, :HIDDEN]
+    assert np.all(np.abs(v_hat - vectors) <= step / 2 + 1e-6)
+    # The candidate graph's scores of every item against the bound.
+    reduced = ReducedStep(t, "int4")
+    features = np.random.default_rng(0).normal(0, 1, (8, HIDDEN)).astype(np.float32)
+    k = np.array([a.n_items], dtype=np.int64)
+    cand, approx = reduced._candidates.run(None, {"features": features, "bias": t.bias, "k": k})
+    exact = features.astype(np.float64) @ vectors.T.astype(np.float64) + t.bias  # [8, n]
+    s_f = np.abs(features).max(axis=1, keepdims=True) / 127.0  # [8, 1]
+    bound = np.abs(features) @ (step / 2).T + s_f / 2 * np.abs(v_hat).sum(1)[None, :] + 1e-4  # [8, n]
+    err = np.abs(approx - np.take_along_axis(exact, cand, 1))
+    bound = np.take_along_axis(bound, cand, 1)
+    assert np.all(err <= bound), float((err - bound).max())
+    assert err.max() > 0.1 * bound.max()  # an approximation that comes near its bound, not one that never does
+
+
+def test_an_artifact_without_int4_files_serves_int8_for_auto(artifact: Path) -> None:
+    # Exports made before the int4 table: the other reduced paths are still there.
+    a = load_artifact(artifact)
+    older = {**a.manifest, "files": {f: v for f, v in a.manifest["files"].items() if f not in INT4_FILES}}
+    t = load_item_vectors(artifact, older, a.n_items)
+    assert sorted(t.codes) == ["fp16", "int8"] and t.int4_scales is None
+    with pytest.raises(StepError, match="no 'int4' item vectors"):
+        ReducedStep(t, "int4")
+    assert scoring_path("auto", AUTO_REDUCED_FROM, True, has_int4=False) == "int8"
+    assert scoring_path("int4", AUTO_REDUCED_FROM, True, has_int4=False) == "exact"
+
+
+@pytest.mark.parametrize("precision", ["fp16", "int8", "int4"])
 def test_top_20_agrees_with_exact_argpartition(artifact: Path, precision: str) -> None:
     a = load_artifact(artifact)
     t = load_item_vectors(artifact, a.manifest, a.n_items)
@@ -105,11 +156,13 @@ def test_reduced_step_refuses_bad_calls(artifact: Path) -> None:
 
 def test_scoring_setting_picks_the_path_and_falls_back_to_exact(artifact: Path, tmp_path: Path) -> None:
     assert scoring_path("auto", AUTO_REDUCED_FROM, True) == "int8"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, True, has_int4=True) == "int4"
+    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, True, has_int4=True) == "exact"
     assert scoring_path("auto", AUTO_REDUCED_FROM - 1, True) == "exact"
     assert scoring_path("auto", 10**6, False) == "exact"
     assert scoring_path("fp16", 10, True) == "fp16" and scoring_path("int8", 10, False) == "exact"
     assert scoring_path("exact", 10**6, True) == "exact"
-    for scoring in ("exact", "fp16", "int8"):
+    for scoring in ("exact", "fp16", "int8", "int4"):
         model = load_model(artifact, 1, 8, scoring)
         assert model.scoring == scoring and model.gru.scoring == scoring
     # An artifact written without item vectors (an older export, its tables inside the graph):
@@ -121,7 +174,7 @@ def test_scoring_setting_picks_the_path_and_falls_back_to_exact(artifact: Path, 
         neighbour_scores=a.neighbour_scores, popularity=a.popularity, manifest_fields={"model": a.manifest["model"]},
     )
     assert not set(ITEM_VECTOR_FILES) & {p.name for p in plain.iterdir()}
-    for scoring in ("auto", "int8", "fp16"):
+    for scoring in ("auto", "int8", "fp16", "int4"):
         assert load_model(plain, 1, 8, scoring).scoring == "exact"
 
 
