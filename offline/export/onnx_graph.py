@@ -408,12 +408,10 @@ def build_int4_candidate_graph(dim: int, n_items: int) -> bytes:
 def int4_scales(vectors: np.ndarray) -> np.ndarray:
     """float32 [n, blocks]: max |v| of each block of INT4_BLOCK coordinates / INT4_LEVELS (1 for an all-zero block)."""
     n, dim = vectors.shape
-    blocks = int4_blocks(dim)
-    scales = np.empty((n, blocks), dtype=np.float32)
+    starts = np.arange(0, dim, INT4_BLOCK)
+    scales = np.empty((n, len(starts)), dtype=np.float32)
     for lo in range(0, n, _QUANTISE_SLICE):
-        v = np.abs(vectors[lo : lo + _QUANTISE_SLICE])
-        for j in range(blocks):
-            scales[lo : lo + len(v), j] = v[:, j * INT4_BLOCK : (j + 1) * INT4_BLOCK].max(axis=1) / INT4_LEVELS
+        scales[lo : lo + _QUANTISE_SLICE] = np.maximum.reduceat(np.abs(vectors[lo : lo + _QUANTISE_SLICE]), starts, axis=1) / INT4_LEVELS
     scales[scales == 0] = 1.0
     return scales
 
