@@ -38,13 +38,13 @@ import numpy as np
 from bench.harness.ports import free_port
 from bench.harness.processes import launch, stop_process, wait_http
 from bench.reporting import write_report
+from offline.evaluate.scoring_paths import parse_scoring
 from bench.service import COUNT, Connection, bench_cores, click_stream, pct, saturate, service_environment
 from service.errors import BenchError
 
 TOP = 20
 PACED_RATE = 50.0  # clicks/s over all connections
 PACED_CONNECTIONS = 4
-SCORINGS = ("exact", "fp16", "int8", "int4", "clustered")
 
 
 def export(store: Path, n_items: int, log: Path) -> dict:
@@ -72,11 +72,11 @@ def export(store: Path, n_items: int, log: Path) -> dict:
 
 
 def parse_path(text: str) -> tuple[str, int]:
-    """`clustered@32` -> ("clustered", 32); `int8` -> ("int8", 0)."""
-    scoring, _, probe = text.partition("@")
-    if scoring not in SCORINGS or (probe and (scoring != "clustered" or not probe.isdigit() or int(probe) < 1)):
-        raise argparse.ArgumentTypeError(f"expected one of {', '.join(SCORINGS)} or clustered@N, got {text!r}")
-    return scoring, int(probe or 0)
+    """`clustered@32` -> ("clustered", 32); `int8` -> ("int8", 0) (the rule `cairn evaluate --scoring` uses)."""
+    try:
+        return parse_scoring(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from exc
 
 
 def random_states(step, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray]:

@@ -25,13 +25,13 @@ from offline.data.dataset import PreparedData
 from offline.evaluate.evaluation import Result, evaluate, format_table, results_json, verdict_lines
 from offline.evaluate.decision import build_decision
 from offline.evaluate.scorer import SessionScorer
+from offline.evaluate.scoring_paths import SCORING_PATHS, parse_scoring
 from offline.evaluate.serving_cost import click_costs
 from offline.evaluate.training_curve import validation_curve
 from offline.evaluate.tuning import choose_exclude_seen, tune_session_knn
 
 BASELINES = ("pop", "spop", "markov", "item-knn", "session-knn")
 EXCLUDE_SEEN = ("on", "off", "auto")
-SCORING_PATHS = ("exact", "fp16", "int8", "int4", "clustered")  # CAIRN_SCORING's paths, auto aside: a row names the path it measured
 DEFAULT_RECOMMENDERS = ",".join(BASELINES)
 
 
@@ -54,9 +54,10 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--checkpoint", type=Path, nargs="+", action="extend", default=[], metavar="PATH", help="GRU checkpoints from `cairn train`")
     parser.add_argument("--artifact", type=Path, nargs="+", action="extend", default=[], metavar="PATH", help="model artifacts (ONNX) from `cairn export`")
     parser.add_argument(
-        "--scoring", nargs="+", choices=SCORING_PATHS, default=["exact"], metavar="PATH",
-        help=f"how each --artifact scores the items, as CAIRN_SCORING does: {', '.join(SCORING_PATHS)}; several give a row each "
-        "(e.g. --scoring exact clustered: the offline cost of the approximation) (default exact)",
+        "--scoring", nargs="+", type=_scoring, default=["exact"], metavar="PATH",
+        help=f"how each --artifact scores the items, as CAIRN_SCORING does: {', '.join(SCORING_PATHS)}, or clustered@N "
+        "(N clusters probed, as CAIRN_PROBE_CLUSTERS=N); several give a row each "
+        "(e.g. --scoring exact clustered clustered@100: the offline cost of the approximation at two probe counts) (default exact)",
     )  # fmt: skip
     parser.add_argument("--knn-neighbours", default="100", metavar="N", help="neighbours kept per item by item-knn (default 100)")
     parser.add_argument("--knn-regulariser", default="20", metavar="L", help="item-knn support regulariser lambda (default 20)")
@@ -263,6 +264,15 @@ def parse_recommenders(value: str) -> list[str]:
         if name not in names:
             names.append(name)
     return names
+
+
+def _scoring(text: str) -> str:
+    """--scoring's type: a path name or clustered@N (argparse reports the ValueError's message as a usage error)."""
+    try:
+        parse_scoring(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from exc
+    return text
 
 
 def _integer(option: str, value: str, minimum: int) -> int:

@@ -1,7 +1,8 @@
 """An exported artifact as a `SessionScorer`, so the served graph goes through the same evaluation
 as the PyTorch model and the baselines (and any difference between them shows up there).
 
-`scoring` picks the path as the service's CAIRN_SCORING does (service/runtime/active.open_step):
+`scoring` picks the path as the service's CAIRN_SCORING does (service/runtime/active.open_step),
+`clustered@N` the clustered path probing N clusters as CAIRN_PROBE_CLUSTERS=N does:
 exact scores every item; the other paths (fp16, int8, int4, clustered) return the best KEEP items each
 as `TopLists` (the rest rank below them), which is what they serve, so their Recall@k and MRR@k
 (k <= KEEP) show the offline cost of the approximation next to the exact row.
@@ -18,6 +19,7 @@ from service.runtime.active import Step, open_step
 from service.runtime.onnx_step import OnnxStep
 
 from offline.evaluate.scorer import TopLists
+from offline.evaluate.scoring_paths import parse_scoring
 
 KEEP = 100  # items a top-N path returns per click: above any k the evaluation reports, plus the visit's seen items
 
@@ -44,10 +46,13 @@ class OnnxScorer:
 
 def load_onnx_scorer(path: Path, threads: int = 1, scoring: str = "exact") -> OnnxScorer:
     """The artifact folder at `path`, verified, as a scorer named after its training loss (and the
-    scoring path when it is not exact)."""
+    scoring path when it is not exact, with `@N` for a probe count given)."""
+    path_name, probe = parse_scoring(scoring)
     artifact = load_artifact(Path(path))
     hyperparameters = artifact.manifest.get("hyperparameters") or {}
     loss = hyperparameters.get("loss") if isinstance(hyperparameters, dict) else None
     name = f"gru-{loss}-onnx" if isinstance(loss, str) and loss else "gru-onnx"
-    step = open_step(artifact, scoring, threads)
-    return OnnxScorer(step, name if step.scoring == "exact" else f"{name}-{step.scoring}")
+    step = open_step(artifact, path_name, threads, probe=probe)
+    if step.scoring == "exact":
+        return OnnxScorer(step, name)
+    return OnnxScorer(step, f"{name}-{step.scoring}" + (f"@{probe}" if probe and step.scoring == "clustered" else ""))

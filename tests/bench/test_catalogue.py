@@ -23,7 +23,7 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
         item_ids=[f"sku-{i:06d}" for i in range(3000)],
     ).save(tmp_path / "prepared")
     out = tmp_path / "catalogue.json"
-    argv = ["--sizes", "3000", "--paths", "exact", "int8", "clustered@4", "--paced-clicks", "20", "--max-clicks", "60", "--max-seconds", "1",
+    argv = ["--sizes", "3000", "--paths", "exact", "int8", "int4", "clustered@4", "--paced-clicks", "20", "--max-clicks", "60", "--max-seconds", "1",
             "--trained", str(trained), "--trained-data", str(tmp_path / "prepared"), "--out", str(out)]  # fmt: skip
     assert main(argv) == 0
     report = json.loads(out.read_text())
@@ -31,7 +31,7 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
     assert size["export"]["seconds"] > 0 and size["export"]["peak_rss_mb"] > 0 and size["export"]["artifact_mb"] > 0
     assert size["export"]["item_clusters"]["clusters"] == 64  # about sqrt(3000), a power of two
     for rows in (size["paths"], report["trained"]["paths"]):
-        for path in ("exact", "int8", "clustered@4"):
+        for path in ("exact", "int8", "int4", "clustered@4"):
             r = rows[path]
             assert r["paced_50_per_s"]["clicks"] == 20 and r["paced_50_per_s"]["errors"] == 0
             assert r["concurrency_8"]["clicks"] > 0 and r["concurrency_8"]["errors"] == 0
@@ -39,13 +39,13 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
             scoring = path.partition("@")[0]
             assert r["answers"][f"scoring_{scoring}"] == r["answers"]["served_by_gru"] > 0  # every answer from the path asked for
         assert rows["exact"]["top20_agreement"] == 1.0
-        assert rows["int8"]["top20_agreement"] >= 0.99
+        assert rows["int8"]["top20_agreement"] >= 0.99 and rows["int4"]["top20_agreement"] >= 0.99
         assert 0 < rows["clustered@4"]["top20_agreement"] < 1  # 4 of 64 clusters of random weights: a visible loss
     assert report["trained"]["items"] == 3000
 
 
 def test_path_names_are_checked() -> None:
     assert parse_path("clustered@32") == ("clustered", 32) and parse_path("int8") == ("int8", 0)
-    for bad in ("int4", "int8@3", "clustered@0", "clustered@x"):
+    for bad in ("int2", "int8@3", "clustered@0", "clustered@x"):
         with pytest.raises(Exception, match="expected one of"):
             parse_path(bad)

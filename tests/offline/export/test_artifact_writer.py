@@ -262,22 +262,25 @@ def test_each_scoring_path_is_evaluated_as_it_serves(trained, tmp_path: Path, ca
     _, checkpoint, data_dir, _ = trained
     path = export_artifact(checkpoint, data_dir, tmp_path / "store", "garden", "v1", neighbours=5, clusters=True)
     out = tmp_path / "eval.json"
-    argv = ["evaluate", "--data", str(data_dir), "--recommenders", "pop", "--artifact", str(path), "--scoring", "exact", "int8", "int4", "clustered"]
+    argv = ["evaluate", "--data", str(data_dir), "--recommenders", "pop", "--artifact", str(path), "--scoring", "exact", "int8", "int4", "clustered", "clustered@1000"]
     assert cairn([*argv, "--bootstrap", "20", "--cost-clicks", "0", "--out", str(out)]) == 0
     report = json.loads(out.read_text())
     rows = [n for n in report if n.startswith("gru")]
-    assert rows == ["gru-bpr-max-onnx", "gru-bpr-max-onnx-int8", "gru-bpr-max-onnx-int4", "gru-bpr-max-onnx-clustered"]
+    assert rows == ["gru-bpr-max-onnx", "gru-bpr-max-onnx-int8", "gru-bpr-max-onnx-int4", "gru-bpr-max-onnx-clustered", "gru-bpr-max-onnx-clustered@1000"]
     exact = report["gru-bpr-max-onnx"]
-    for reduced in (report["gru-bpr-max-onnx-int8"], report["gru-bpr-max-onnx-int4"]):
+    # clustered@1000 probes every cluster: the exact top 100, as CAIRN_PROBE_CLUSTERS=1000 serves it.
+    for reduced in (report["gru-bpr-max-onnx-int8"], report["gru-bpr-max-onnx-int4"], report["gru-bpr-max-onnx-clustered@1000"]):
         assert reduced["recall@20"]["value"] == exact["recall@20"]["value"]
         assert reduced["mrr@20"]["value"] == pytest.approx(exact["mrr@20"]["value"], abs=1e-9)
     assert 0 < report["gru-bpr-max-onnx-clustered"]["recall@20"]["value"] <= 1
     assert report["provenance"]["artifacts"] == {r: str(path) for r in rows}
     capsys.readouterr()
-    with pytest.raises(SystemExit) as refused:  # argparse's usage error, exit status 2
-        cairn([*argv[:-5], "--scoring", "int2"])
-    assert refused.value.code == 2
-    assert "--scoring" in capsys.readouterr().err
+    for bad in ("int2", "clustered@0", "int8@4"):
+        with pytest.raises(SystemExit) as refused:  # argparse's usage error, exit status 2
+            cairn([*argv[:-6], "--scoring", bad])
+        assert refused.value.code == 2
+        err = capsys.readouterr().err
+        assert "--scoring" in err and repr(bad) in err
 
 
 def test_export_refuses_a_checkpoint_of_another_data_set(trained, tmp_path: Path) -> None:
