@@ -51,21 +51,29 @@ class GRUConfig:
             )
 
 
+def _item_table(n_items: int, size: int) -> nn.Embedding:
+    """An item table left uninitialised: nn.Embedding's own normal init is overwritten by
+    reset_parameters or a checkpoint anyway (at a million items it cost seconds)."""
+    return nn.Embedding(n_items, size, sparse=True, _weight=torch.empty(n_items, size))
+
+
 class NextClickGRU(nn.Module):
-    def __init__(self, config: GRUConfig) -> None:
+    def __init__(self, config: GRUConfig, init: bool = True) -> None:
+        """`init` False leaves the item tables uninitialised, for weights loaded next."""
         super().__init__()
         config.validate()
         self.config = config
         c = config
-        self.embedding = nn.Embedding(c.n_items, c.embedding_size, sparse=True)
+        self.embedding = _item_table(c.n_items, c.embedding_size)
         self.gru = nn.GRU(c.embedding_size, c.hidden_size, num_layers=c.layers)
         sizes = [c.hidden_size, *c.ff_sizes]
         self.ff = nn.ModuleList(nn.Linear(a, b) for a, b in zip(sizes[:-1], sizes[1:]))
-        self.output = None if c.tie_output else nn.Embedding(c.n_items, c.output_size, sparse=True)
-        self.output_bias = nn.Embedding(c.n_items, 1, sparse=True)
+        self.output = None if c.tie_output else _item_table(c.n_items, c.output_size)
+        self.output_bias = _item_table(c.n_items, 1)
         self.drop_embedding = nn.Dropout(c.input_dropout)
         self.drop_hidden = nn.Dropout(c.state_dropout)
-        self.reset_parameters()
+        if init:
+            self.reset_parameters()
 
     def reset_parameters(self) -> None:
         # Small uniform init, as in common GRU recommender practice (from memory: +-sqrt(6/(fan_in+fan_out))).
@@ -136,7 +144,7 @@ def load_checkpoint(path: Path) -> tuple[NextClickGRU, dict[str, Any]]:
     blob = torch.load(Path(path), map_location="cpu", weights_only=True)
     check_renamed_keys(blob["config"], str(path))
     check_renamed_keys(blob.get("extra", {}).get("hyperparameters", {}), str(path))
-    model = NextClickGRU(GRUConfig(**blob["config"]))
+    model = NextClickGRU(GRUConfig(**blob["config"]), init=False)
     model.load_state_dict(blob["state_dict"])
     model.eval()
     return model, blob.get("extra", {})
