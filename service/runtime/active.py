@@ -139,8 +139,9 @@ class LoadedModel:
 
 # `scoring = auto` leaves exact scoring from this many items on: below it the exact step is at least
 # as fast (two ONNX Runtime calls and a re-scoring cost more than one small pass). bench/catalogue.py
-# measured int8 level with exact (0-15% ahead at 200,000 items, level at 1,000,000) on a 2-core AVX2
-# machine, and the clustered index of a trained 105,402-item model at half exact's p99.
+# measured int4 level with exact at 200,000 random items (1.05x the clicks/s at 8 visits), 1.2x at
+# 631,430 trained and 1.4x at 1,000,000 random, int8 no faster than exact, on a 2-core AVX2
+# machine; and the clustered index of a trained 105,402-item model at half exact's p99.
 AUTO_REDUCED_FROM = 100_000
 # `auto` takes the clustered index only when the export measured at least this top-20 agreement
 # with exact scoring at its probe count (random weights, with no structure to cluster, do not) and
