@@ -10,6 +10,7 @@ p50/p99 per click at a paced 50 clicks/s (four connections, each sending every 8
 answer), then at 8 visits at once (closed loop), the worker's RSS split into private and shared
 (/proc/<pid>/smaps_rollup), and which path and recommender answered (from /metrics). Budgets are
 raised to 1 s so every answer comes from the GRU: this measures the scoring path, not the guards.
+Beside the JSON a PNG (same name) plots each row's p99 against its agreement (bench/catalogue_chart.py).
 
 `--trained ARTIFACT --trained-data PREPARED` adds the same rows for a trained model's artifact,
 with agreement over visit states from the prepared data's test split (real visits: where the
@@ -35,6 +36,7 @@ from pathlib import Path
 
 import numpy as np
 
+from bench.catalogue_chart import write_chart
 from bench.harness.ports import free_port
 from bench.harness.processes import launch, stop_process, wait_http
 from bench.reporting import write_report
@@ -288,7 +290,8 @@ def main(argv: list[str] | None = None) -> int:
         else:
             print(f"kept {work}")
     write_report(args.out, report)
-    print(f"wrote {args.out}")
+    chart = write_chart(report, args.out.with_suffix(".png"))
+    print(f"wrote {args.out} and {chart}")
     return 0
 
 

@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from bench.catalogue import main, parse_path
+from bench.catalogue_chart import catalogue_rows
 from offline.data.dataset import PreparedData, SessionSplit
 from offline.export.artifact_writer import write_random_artifact
 
@@ -42,6 +43,10 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
         assert rows["int8"]["top20_agreement"] >= 0.99 and rows["int4"]["top20_agreement"] >= 0.99
         assert 0 < rows["clustered@4"]["top20_agreement"] < 1  # 4 of 64 clusters of random weights: a visible loss
     assert report["trained"]["items"] == 3000
+    # The picture beside the JSON: one point per row (each size's paths and the trained model's).
+    assert out.with_suffix(".png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (RFC 2083, section 3.1)
+    rows = catalogue_rows(report)
+    assert len(rows) == 2 * 4 and {model for model, _, _ in rows} == {"random, 3,000", "trained, 3,000"}
 
 
 def test_path_names_are_checked() -> None:
