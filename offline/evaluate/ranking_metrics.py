@@ -55,28 +55,31 @@ def top_k_items(scores: np.ndarray, k: int) -> np.ndarray:
 
     [m, n_items] -> int64 [m, min(k, n_items)]. Finding each row's k-th best score with
     `np.partition` and gathering the items at or above it is several times faster than
-    `np.argpartition` over the whole row; rows with many ties at the k-th score fall back to it.
+    `np.argpartition` over the whole row; a row with many ties at its k-th score (or a NaN) is
+    sorted whole, stably, so the rule holds for it too.
     """
     m, n = scores.shape
     k = min(k, n)
-    if k < n:
-        kth = np.partition(scores, n - k, axis=1)[:, n - k]  # [m], the k-th best score of each row
-        # at least k per row, more only on ties; flat indices: 2-D np.nonzero is many times slower
-        rows, cols = np.divmod(np.flatnonzero(scores >= kth[:, None]), n)
-        if len(rows) <= 2 * m * k:
-            order = np.lexsort((cols, -scores[rows, cols], rows))  # by row, best first, then index
-            rows, cols = rows[order], cols[order]
-            position = np.arange(len(rows)) - np.searchsorted(rows, rows)  # place within its row
-            keep = position < k
-            if np.count_nonzero(keep) == m * k:  # fewer only when a row holds NaN
-                top = np.empty((m, k), dtype=np.int64)
-                top[rows[keep], position[keep]] = cols[keep]
-                return top
-        part = np.argpartition(scores, n - k, axis=1)[:, n - k :]  # [m, k], unordered
-    else:
-        part = np.broadcast_to(np.arange(n), scores.shape)
-    order = np.argsort(-np.take_along_axis(scores, part, axis=1), axis=1, kind="stable")  # [m, k]
-    return np.take_along_axis(part, order, axis=1).astype(np.int64)
+    if k == n:
+        return np.argsort(-scores, axis=1, kind="stable").astype(np.int64)
+    top = np.empty((m, k), dtype=np.int64)
+    kth = np.partition(scores, n - k, axis=1)[:, n - k]  # [m], the k-th best score of each row
+    # Every item at or above it: at least k per row, more only on ties, none in a row with NaN.
+    # Flat indices: 2-D np.nonzero is many times slower.
+    rows, cols = np.divmod(np.flatnonzero(scores >= kth[:, None]), n)
+    counts = np.bincount(rows, minlength=m)
+    whole = (counts < k) | (counts > 2 * k)  # rows sorted whole
+    if whole.any():
+        kept = ~whole[rows]
+        rows, cols = rows[kept], cols[kept]
+    order = np.lexsort((cols, -scores[rows, cols], rows))  # by row, best first, then index
+    rows, cols = rows[order], cols[order]
+    position = np.arange(len(rows)) - np.searchsorted(rows, rows)  # place within its row
+    keep = position < k
+    top[rows[keep], position[keep]] = cols[keep]
+    for row in np.flatnonzero(whole):
+        top[row] = np.argsort(-scores[row], kind="stable")[:k]
+    return top
 
 
 def bootstrap_weights(n_sessions: int, resamples: int, seed: int) -> Iterator[np.ndarray]:
