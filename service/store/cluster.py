@@ -140,6 +140,11 @@ class RedisClusterStore(RedisCommands):
             self._refresher = asyncio.get_running_loop().create_task(self._client.refresh_when_wanted(), name="cairn-cluster-refresh")
         return await super()._call(what, pending)
 
+    async def ping(self) -> None:
+        # redis-py sends PING to one node (its default) unless told which: every master must answer,
+        # or the store is degraded (a master down loses its visits).
+        await self._call("PING", self._client.ping(target_nodes=RedisCluster.PRIMARIES))
+
     async def close(self) -> None:
         if self._refresher is not None:
             await stop_task(self._refresher)

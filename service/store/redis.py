@@ -115,7 +115,7 @@ class RedisCommands:
             await self._call("HDEL", self._client.hdel(self._serving_key, *workers))
 
     async def ping(self) -> None:
-        await self._call("PING", self._client.ping())  # a cluster pings every node: one down is a degraded store
+        await self._call("PING", self._client.ping())
 
     async def close(self) -> None:
         try:

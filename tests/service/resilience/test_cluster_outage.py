@@ -11,6 +11,7 @@ from collections.abc import Iterator
 import pytest
 import redis as redis_sync
 
+from service.errors import StoreError
 from service.store.cluster import REFRESH_S, RedisClusterStore
 from service.store.state import NEW_TOKEN, SessionState, encode
 from tests.service.resilience.cluster_support import master_of_slot_zero, running_cluster, url_of
@@ -61,6 +62,29 @@ def test_failed_commands_rebuild_the_slot_map_at_most_once_a_second(cluster):
     assert ok
     # redis-py alone rebuilds before the next command after every failure (hundreds here).
     assert 1 <= refreshes <= elapsed / REFRESH_S + 2, refreshes
+
+
+def test_ping_asks_every_master(cluster):
+    # redis-py's PING goes to one default node; readiness must see any master down.
+    async def go() -> tuple[bool, bool]:
+        store = RedisClusterStore(url_of(cluster), ttl_s=60, pool_size=4, timeout_s=0.5, connect_timeout_s=0.2, prefix="ping:")
+        try:
+            await store.ping()
+            whole = True
+            for node in cluster:
+                if node.port != store._client.get_default_node().port:
+                    node.kill()  # a master that is not the one PING would go to by default
+                    break
+            try:
+                await store.ping()
+                return whole, False
+            except StoreError:
+                return whole, True
+        finally:
+            await store.close()
+
+    whole, refused = asyncio.run(go())
+    assert whole and refused
 
 
 def test_a_worker_started_while_a_master_is_down_serves_degraded_and_heals(cluster, start_server, sid):
