@@ -22,7 +22,8 @@ def test_fast_and_framework_paths_give_the_same_answers(server, sid):
     fast, slow = sid("fast"), sid("slow")
     with server.client() as c:
         for n, item in enumerate(CLICKS):
-            body = {"item_id": item, "count": 4, "event_id": f"e-{n}"}
+            # A budget no loaded machine runs past: both answers must come from the model to compare.
+            body = {"item_id": item, "count": 4, "event_id": f"e-{n}", "budget_ms": 5000}
             a = c.post(f"/v1/sessions/{fast}/clicks", json=body)  # Content-Type: application/json: the fast path
             # A structured-syntax JSON type (RFC 6839, "+json"): FastAPI reads it as JSON, the fast path leaves it alone.
             b = c.post(
