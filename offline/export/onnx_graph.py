@@ -371,8 +371,8 @@ def build_int4_candidate_graph(dim: int, n_items: int) -> bytes:
     kernels need them packed at load; the graph holds two one-item placeholders named `codes` and
     `scales`, which the service replaces with the artifact's memory-mapped arrays
     (`SessionOptions.add_initializer`), so the file stays small and the table exists once on disk.
-    ONNX Runtime then packs its own copy (about 64 bytes an item: a private 64 MB per worker at a
-    million items). accuracy_level 4 quantises each block of the features to int8 and multiplies in
+    ONNX Runtime then packs its own copy (about 80 bytes an item with the scales at D = 100: a
+    private 80 MB per worker at a million items). accuracy_level 4 quantises each block of the features to int8 and multiplies in
     integers: on this machine (AVX2) 5-8x faster than the float path, and the exact re-scoring of
     the candidates takes out the extra error.
     """

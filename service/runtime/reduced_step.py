@@ -2,7 +2,7 @@
 
 Scoring every item is memory-bandwidth bound: at a million items and D = 100 one click reads
 400 MB of float32 output vectors. This path reads a half of that (fp16), a quarter (int8) or
-about a sixth (int4, 64 bytes an item with its block scales):
+a fifth (int4 at D = 100: 64 bytes of codes and 16 of block scales an item):
 
     x = embedding[items]                        numpy, rows of a read-only memory map
     next_hidden, f = features.onnx(x, hidden)   ONNX Runtime, the GRU without item tables
@@ -14,7 +14,7 @@ about a sixth (int4, 64 bytes an item with its block scales):
 The fp16 and int8 tables go into ONNX Runtime as inputs, fed from the memory maps each call (CPU
 inputs are used in place, not copied), so the pages are the OS's page cache, shared by every
 worker. The int4 table goes in once, as the graph's initialiser, and ONNX Runtime packs a private
-copy of it (64 MB at a million items). Same
+copy of it (about 80 MB at a million items). Same
 call contract as `OnnxStep.run`; `scoring` names the path for Server-Timing.
 """
 
