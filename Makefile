@@ -65,7 +65,8 @@ demo: $(STAMP)
 	  --out $(DEMO_REPORTS)/evaluation.json --report $(DEMO_REPORTS)
 	@echo "The decision, with its plots: $(DEMO_REPORTS)/report.html"
 	$(BIN)/cairn export --checkpoint $(CK)/$(DEMO_BEST)/best.pt --data $(DEMO_DATA)/prepared \
-	  --name garden-gru --version demo --overwrite --metrics $(DEMO_REPORTS)/evaluation.json --names $(DEMO_DATA)/raw/catalogue.csv
+	  --name garden-gru --version demo --overwrite --metrics $(DEMO_REPORTS)/evaluation.json --names $(DEMO_DATA)/raw/catalogue.csv \
+	  --clustered-index always
 	# The exported graph through the same evaluation: it must agree with the PyTorch model above
 	# (with the exclude-seen setting the evaluation above chose, so the two are comparable); beside it
 	# the clustered index's row, the offline cost of serving with CAIRN_SCORING=clustered.
@@ -113,7 +114,7 @@ bench-large: $(STAMP)
 	  --session-column session_id --item-column item_id --time-column timestamp --min-item-clicks 1
 	$(BIN)/cairn train --data $(LARGE)/prepared --out checkpoints/large --epochs 1 --patience 0
 	$(BIN)/cairn export --checkpoint checkpoints/large/best.pt --data $(LARGE)/prepared --artifacts $(LARGE)/model_store \
-	  --name garden-large --version bench --overwrite
+	  --name garden-large --version bench --overwrite --clustered-index always
 	$(BIN)/cairn evaluate --data $(LARGE)/prepared --recommenders '' --artifact $(LARGE)/model_store/garden-large/bench \
 	  --scoring exact clustered --cost-clicks 0 --out reports/bench/large-scoring.json
 	$(BIN)/python -m bench.catalogue --trained $(LARGE)/model_store/garden-large/bench --trained-data $(LARGE)/prepared \
@@ -129,7 +130,7 @@ bench-million: $(STAMP)
 	  --session-column session_id --item-column item_id --time-column timestamp --min-item-clicks 1
 	$(BIN)/cairn train --data $(MILLION)/prepared --out checkpoints/million --epochs 1 --patience 0
 	$(BIN)/cairn export --checkpoint checkpoints/million/best.pt --data $(MILLION)/prepared --artifacts $(MILLION)/model_store \
-	  --name garden-million --version bench --overwrite
+	  --name garden-million --version bench --overwrite --clustered-index always
 	$(BIN)/cairn evaluate --data $(MILLION)/prepared --recommenders '' --artifact $(MILLION)/model_store/garden-million/bench \
 	  --scoring exact clustered --sessions 5000 --cost-clicks 0 --out reports/bench/million-scoring.json
 	$(BIN)/python -m bench.catalogue --sizes --trained $(MILLION)/model_store/garden-million/bench --trained-data $(MILLION)/prepared \

@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from service.artifacts.format import load_artifact
+from service.errors import InputDataError
 from service.runtime.active import Step, open_step
 from service.runtime.onnx_step import OnnxStep
 
@@ -53,6 +54,11 @@ def load_onnx_scorer(path: Path, threads: int = 1, scoring: str = "exact") -> On
     loss = hyperparameters.get("loss") if isinstance(hyperparameters, dict) else None
     name = f"gru-{loss}-onnx" if isinstance(loss, str) and loss else "gru-onnx"
     step = open_step(artifact, path_name, threads, probe=probe)
+    if step.scoring != path_name:  # the service would answer exactly; a row under this path's name would not be it
+        step.close()
+        skipped = artifact.manifest.get("item_clusters_skipped")
+        why = f" ({skipped.get('reason')}; `cairn export --clustered-index always` builds it)" if path_name == "clustered" and isinstance(skipped, dict) else ""
+        raise InputDataError(f"--scoring {scoring}: {path} has no files for that path{why}")
     if step.scoring == "exact":
         return OnnxScorer(step, name)
     return OnnxScorer(step, f"{name}-{step.scoring}" + (f"@{probe}" if probe and step.scoring == "clustered" else ""))

@@ -259,22 +259,30 @@ def _write_model_artifact(
 ) -> Path:
     """`write_artifact` for a GRU: its step graph (item tables as external data), the item-vector
     files of the reduced-precision paths, the clustered index (calibrated on states of `visits`;
-    `clusters` None: from CLUSTERS_FROM items on), and the model's own manifest fields."""
+    `clusters` True: always, False: never, None: from CLUSTERS_FROM items on, and only when
+    `CAIRN_SCORING=auto` would serve it; else the manifest's `item_clusters_skipped` says why), and
+    the model's own manifest fields."""
     weights = weights_of(model)
     vector_files = item_vector_files(weights)
-    # The tables that are ready are written first; the reduced copies are made as they are written, last.
+    # The tables that are ready are written first, then the reduced copies, made as they are
+    # written, while a second thread builds the clustered index; its files come last.
     extra: dict[str, Any] = {f: c for f, c in vector_files.items() if not callable(c)}
+    extra.update({f: c for f, c in vector_files.items() if callable(c)})
     fields: dict[str, Any] = {**manifest_fields, "model": _model_fields(model.config), "item_vectors": item_vectors_manifest()}
     if clusters or (clusters is None and weights.n_items >= CLUSTERS_FROM):
         features = visit_features(model, visits, np.random.default_rng(0))
-        # The index is built in a second thread while the ready files are written (numpy, torch and
-        # file writes let go of the GIL): at a million items both take seconds.
+        # numpy, torch and file writes let go of the GIL: at a million items both sides take seconds.
         builder = ThreadPoolExecutor(max_workers=1, thread_name_prefix="item-clusters")
-        index = builder.submit(item_cluster_files, weights.output, weights.output_bias, features)
+        index = builder.submit(item_cluster_files, weights.output, weights.output_bias, features, only_if_served=clusters is None)
         builder.shutdown(wait=False)
-        extra.update({f: (lambda f=f: index.result()[0][f]) for f in ITEM_CLUSTER_FILES})
-        fields["item_clusters"] = lambda: index.result()[1]
-    extra.update({f: c for f, c in vector_files.items() if callable(c)})
+
+        def index_file(fname: str) -> Any:
+            files, _ = index.result()
+            return None if files is None else files[fname]
+
+        extra.update({f: (lambda f=f: index_file(f)) for f in ITEM_CLUSTER_FILES})
+        fields["item_clusters"] = lambda: index.result()[1] if index.result()[0] is not None else None
+        fields["item_clusters_skipped"] = lambda: index.result()[1] if index.result()[0] is None else None
     return write_artifact(store, name, version, step_graph=graph_from_weights(weights, external=True).SerializeToString(),
                           extra_files=extra, manifest_fields=fields, **tables)  # fmt: skip
 

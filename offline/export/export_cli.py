@@ -14,11 +14,13 @@ import csv
 import json
 from pathlib import Path
 
+from service.artifacts.format import MANIFEST
 from service.errors import InputDataError
 
 DEFAULT_STORE = Path("model_store")
 DEFAULT_KNN_NEIGHBOURS = 100
 DEFAULT_RANDOM_NEIGHBOURS = 20
+CLUSTERED_INDEX = {"auto": None, "always": True, "never": False}  # --clustered-index -> the writers' `clusters`
 
 
 def _positive_int(text: str) -> int:
@@ -63,6 +65,13 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--names", type=Path, metavar="CSV", help="item display names to include (CSV with item_id and name columns, e.g. the demo's catalogue.csv)"
     )
+    parser.add_argument(
+        "--clustered-index",
+        choices=CLUSTERED_INDEX,
+        default="auto",
+        help="the approximate top-N index over the items (CAIRN_SCORING=clustered): auto builds it from 1,000 items on "
+        "when the calibration says CAIRN_SCORING=auto would serve it (not for random weights); always; never (default: %(default)s)",
+    )
     random = parser.add_argument_group("with --random")
     random.add_argument("--items", type=_positive_int, metavar="N", help="number of items (default: 40000)")
     random.add_argument("--hidden-size", type=_positive_int, metavar="H", help="GRU state and embedding size (default: 100)")
@@ -88,6 +97,7 @@ def run(args: argparse.Namespace) -> int:
             neighbours=args.knn_neighbours or DEFAULT_RANDOM_NEIGHBOURS,
             seed=args.seed or 0,
             overwrite=args.overwrite,
+            clusters=CLUSTERED_INDEX[args.clustered_index],
         )
     else:
         given = [flag for flag, value in random_only.items() if value is not None]
@@ -106,8 +116,12 @@ def run(args: argparse.Namespace) -> int:
             metrics=_read_metrics(args.metrics) if args.metrics is not None else None,
             overwrite=args.overwrite,
             names=read_names(args.names) if args.names is not None else None,
+            clusters=CLUSTERED_INDEX[args.clustered_index],
         )
     print(f"wrote {path}")
+    skipped = json.loads((path / MANIFEST).read_text(encoding="utf-8")).get("item_clusters_skipped")
+    if isinstance(skipped, dict):
+        print(f"no clustered index: {skipped.get('reason')} (--clustered-index always builds it anyway)")
     return 0
 
 

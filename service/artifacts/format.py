@@ -59,7 +59,7 @@ class RowBlocks:
     blocks: Callable[[], Iterator[np.ndarray]]
 
 
-FileContent = bytes | np.ndarray | RowBlocks | Callable[[], bytes | np.ndarray | RowBlocks]  # an optional file's content, or how to make it
+FileContent = bytes | np.ndarray | RowBlocks | Callable[[], bytes | np.ndarray | RowBlocks | None]  # an optional file's content, or how to make it (None: no file)
 
 FORMAT = "cairn-artifact/1"
 MANIFEST = "manifest.json"
@@ -164,9 +164,10 @@ def write_artifact(
     must hold its parameters as `session_knn` ({"neighbours", "candidates", "weighting"}).
     `extra_files`: more optional files (bytes as they are, arrays as .npy, RowBlocks block by block;
     a callable returning one of these is called when its file is written, in the order given, so a
-    large table exists only while it is written), covered by the manifest's checksums like the
-    required ones. A callable value of `manifest_fields` is called when the manifest is written,
-    after every file: a section measured while the files were being written."""
+    large table exists only while it is written; one returning None leaves its file out), covered
+    by the manifest's checksums like the required ones. A callable value of `manifest_fields` is
+    called when the manifest is written, after every file: a section measured while the files were
+    being written (None: the field is left out)."""
     _check_name(name, "name")
     _check_name(version, "version")
     reserved = sorted(set(manifest_fields) & _WRITER_FIELDS)
@@ -210,15 +211,16 @@ def write_artifact(
             np.savez(tmp / SESSIONS, **session_index.arrays())
             written(SESSIONS)
         for fname, content in (extra_files or {}).items():
-            _write_extra(tmp / fname, content)
-            written(fname)
+            if _write_extra(tmp / fname, content):
+                written(fname)
+        made = {k: v() if callable(v) else v for k, v in manifest_fields.items()}
         manifest = {
             "format": FORMAT,
             "name": name,
             "version": version,
             "created_at": datetime.now(timezone.utc).isoformat(timespec="milliseconds"),
-            **{k: v() if callable(v) else v for k, v in manifest_fields.items()},
-            "files": {f: digests[f].result() for f in (*files, *(extra_files or {}))},
+            **{k: v for k, v in made.items() if v is not None},
+            "files": {f: digests[f].result() for f in (*files, *(extra_files or {})) if f in digests},
             "manifest_sha256": _UNSET_DIGEST,
         }
         (tmp / MANIFEST).write_bytes(_sealed_manifest(manifest))
@@ -236,17 +238,21 @@ def write_artifact(
     return target
 
 
-def _write_extra(path: Path, content: FileContent) -> None:
+def _write_extra(path: Path, content: FileContent) -> bool:
+    """Write one optional file; False when its callable made nothing (the file is left out)."""
     if path.name in (*REQUIRED_FILES, MANIFEST) or path.name != Path(path.name).name:
         raise ArtifactError(f"optional artifact file {path.name!r} would overwrite a required one")
     if callable(content):
         content = content()
+        if content is None:
+            return False
     if isinstance(content, RowBlocks):
         _write_row_blocks(path, content)
     elif isinstance(content, bytes):
         path.write_bytes(content)
     else:
         np.save(path, np.ascontiguousarray(content))
+    return True
 
 
 def _write_row_blocks(path: Path, content: RowBlocks) -> None:

@@ -43,6 +43,13 @@ CLUSTER_VECTORS = "cluster_vectors.npy"
 ITEM_CLUSTER_FILES = (CLUSTER_CENTRES, CLUSTER_OFFSETS, CLUSTER_ITEMS, CLUSTER_VECTORS)
 ITEM_CLUSTERS_FORMAT = "cairn-item-clusters/1"
 AGREEMENT_TOP = 20  # the agreement in the manifest is over the top 20, the list a page shows
+# `CAIRN_SCORING=auto` serves the clustered index only when the export measured at least this
+# top-20 agreement with exact scoring at its probe count (random weights, with no structure to
+# cluster, do not) and that probe count reads at most this share of the item rows (beyond it a
+# full pass of the int4 table, a fifth of the float32 bytes, is faster). An automatic export
+# builds no index that `auto` would not serve (offline/export/item_clusters.py).
+AUTO_CLUSTERED_AGREEMENT = 0.99
+AUTO_CLUSTERED_MAX_SHARE = 0.25
 
 
 @dataclass(frozen=True)
@@ -52,6 +59,16 @@ class ClusterFit:
 
     agreement: float
     read_share: float
+
+    @classmethod
+    def of(cls, n_items: int, n_clusters: int, head: int, probe: int, agreement: float) -> ClusterFit:
+        """The fit of an index whose clusters hold the non-head items in equal shares on average."""
+        return cls(agreement=float(agreement), read_share=(head + probe * (n_items - head) / n_clusters) / n_items)
+
+    @property
+    def served_by_auto(self) -> bool:
+        """Whether `CAIRN_SCORING=auto` takes the clustered index with this fit."""
+        return self.agreement >= AUTO_CLUSTERED_AGREEMENT and self.read_share <= AUTO_CLUSTERED_MAX_SHARE
 
 
 @dataclass
@@ -108,10 +125,7 @@ def cluster_fit(manifest: dict[str, Any], n_items: int) -> ClusterFit | None:
             f"manifest item_clusters: clusters {clusters!r}, head {head!r}, probe {probe!r} do not describe an index of {n_items} items"
         )
     agreement = section.get("agreement_top20", 0.0)
-    return ClusterFit(
-        agreement=float(agreement) if isinstance(agreement, (int, float)) else 0.0,
-        read_share=(head + probe * (n_items - head) / clusters) / n_items,
-    )
+    return ClusterFit.of(n_items, clusters, head, probe, float(agreement) if isinstance(agreement, (int, float)) else 0.0)
 
 
 def load_item_clusters(path: Path, manifest: dict[str, Any], n_items: int, probe: int = 0) -> ItemClusters | None:

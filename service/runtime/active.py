@@ -143,11 +143,6 @@ class LoadedModel:
 # 631,430 trained and 1.4x at 1,000,000 random, int8 no faster than exact, on a 2-core AVX2
 # machine; and the clustered index of a trained 105,402-item model at half exact's p99.
 AUTO_REDUCED_FROM = 100_000
-# `auto` takes the clustered index only when the export measured at least this top-20 agreement
-# with exact scoring at its probe count (random weights, with no structure to cluster, do not) and
-# that probe count reads at most this share of the item rows (beyond it one exact pass is faster).
-AUTO_CLUSTERED_AGREEMENT = 0.99
-AUTO_CLUSTERED_MAX_SHARE = 0.25
 
 
 def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters: ClusterFit | None = None, has_int4: bool = False) -> str:
@@ -157,7 +152,7 @@ def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters: Cluste
     if setting == "auto":
         if not has_vectors or n_items < AUTO_REDUCED_FROM:
             return "exact"
-        if clusters is not None and clusters.agreement >= AUTO_CLUSTERED_AGREEMENT and clusters.read_share <= AUTO_CLUSTERED_MAX_SHARE:
+        if clusters is not None and clusters.served_by_auto:  # its rule: service/artifacts/item_clusters.py
             return "clustered"
         return "int4" if has_int4 else "int8"
     if setting in ("fp16", "int8") and not has_vectors:

@@ -16,7 +16,7 @@ from offline.export.artifact_writer import write_random_artifact
 
 def test_small_catalogue_report(tmp_path: Path) -> None:
     # A random artifact of 3,000 items stands in for a trained one (its test split: random visits).
-    trained = write_random_artifact(tmp_path / "store", "shop", "t1", n_items=3000, hidden_size=32)
+    trained = write_random_artifact(tmp_path / "store", "shop", "t1", n_items=3000, hidden_size=32, clusters=True)
     rng = np.random.default_rng(0)
     visits = [rng.integers(0, 3000, rng.integers(2, 8)).tolist() for _ in range(200)]
     PreparedData(
@@ -30,6 +30,8 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
     report = json.loads(out.read_text())
     size = report["sizes"]["3000"]
     assert size["export"]["seconds"] > 0 and size["export"]["peak_rss_mb"] > 0 and size["export"]["artifact_mb"] > 0
+    # Random weights: the default export builds no index (it says why); the clustered rows come from a second export with one.
+    assert size["export"]["item_clusters_skipped"]["probe_needed"] > 4 and size["export"]["with_index"]["seconds"] > 0
     assert size["export"]["item_clusters"]["clusters"] == 64  # about sqrt(3000), a power of two
     for rows in (size["paths"], report["trained"]["paths"]):
         for path in ("exact", "int8", "int4", "clustered@4"):

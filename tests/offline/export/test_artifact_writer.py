@@ -18,6 +18,7 @@ import pytest
 import torch
 
 from service.artifacts.format import STEP_GRAPH, load_artifact, verify_artifact
+from service.artifacts.item_clusters import CLUSTER_VECTORS, ITEM_CLUSTER_FILES
 from service.cli import main as cairn
 from service.errors import ArtifactError, InputDataError
 from offline.data.dataset import PreparedData, SessionSplit
@@ -281,6 +282,11 @@ def test_each_scoring_path_is_evaluated_as_it_serves(trained, tmp_path: Path, ca
         assert refused.value.code == 2
         err = capsys.readouterr().err
         assert "--scoring" in err and repr(bad) in err
+    # An artifact without the index: a clustered row would be the exact one under another name, so it is refused.
+    bare = export_artifact(checkpoint, data_dir, tmp_path / "store", "garden", "v2", neighbours=5, clusters=False)
+    assert cairn(["evaluate", "--data", str(data_dir), "--recommenders", "pop", "--artifact", str(bare), "--scoring", "clustered",
+                  "--bootstrap", "20", "--cost-clicks", "0", "--out", str(tmp_path / "eval2.json")]) == 2  # fmt: skip
+    assert f"--scoring clustered: {bare} has no files for that path" in capsys.readouterr().err
 
 
 def test_export_refuses_a_checkpoint_of_another_data_set(trained, tmp_path: Path) -> None:
@@ -370,6 +376,20 @@ def test_export_cli(trained, tmp_path: Path, capsys) -> None:
 
     assert cairn(["export", "--random", "--items", "200", "--hidden-size", "8", "--artifacts", str(store), "--name", "bench", "--version", "r1"]) == 0
     assert load_artifact(store / "bench" / "r1").n_items == 200
+    capsys.readouterr()
+    # Random weights have nothing to cluster: the automatic export says so and builds no index; `always` builds it.
+    random_args = ["export", "--random", "--items", "3000", "--hidden-size", "8", "--artifacts", str(store), "--name", "bench"]
+    assert cairn([*random_args, "--version", "r2"]) == 0
+    assert "no clustered index: 99.5% top-20 agreement needs" in capsys.readouterr().out
+    manifest = verify_artifact(store / "bench" / "r2")
+    assert "item_clusters" not in manifest and manifest["item_clusters_skipped"]["probe_needed"] > 1
+    assert not set(ITEM_CLUSTER_FILES) & set(manifest["files"]) and not (store / "bench" / "r2" / CLUSTER_VECTORS).exists()
+    assert cairn([*random_args, "--version", "r3", "--clustered-index", "always"]) == 0
+    manifest = verify_artifact(store / "bench" / "r3")
+    assert "item_clusters_skipped" not in manifest and manifest["item_clusters"]["probe"] >= 1 and set(ITEM_CLUSTER_FILES) <= set(manifest["files"])
+    assert cairn([*random_args, "--version", "r4", "--clustered-index", "never"]) == 0
+    manifest = verify_artifact(store / "bench" / "r4")
+    assert "item_clusters" not in manifest and "item_clusters_skipped" not in manifest
     capsys.readouterr()
 
     for bad, says in (

@@ -22,7 +22,7 @@ from offline.export.item_clusters import (
     mapped,
     nearest,
 )
-from service.artifacts.item_clusters import CLUSTER_CENTRES, CLUSTER_ITEMS, CLUSTER_OFFSETS, CLUSTER_VECTORS
+from service.artifacts.item_clusters import AUTO_CLUSTERED_MAX_SHARE, CLUSTER_CENTRES, CLUSTER_ITEMS, CLUSTER_OFFSETS, CLUSTER_VECTORS, ClusterFit
 
 
 def blobs(n: int, d: int, groups: int, seed: int, spread: float = 0.15) -> tuple[np.ndarray, np.ndarray]:
@@ -101,3 +101,28 @@ def test_probe_choice_equals_the_overlap_a_search_would_find() -> None:
 
 def test_cluster_count_is_about_the_square_root() -> None:
     assert cluster_count(1_000_000) == 1024 and cluster_count(200_000) == 512 and cluster_count(100) == 16
+
+
+def test_an_automatic_build_calibrates_first_and_skips_an_index_auto_would_not_serve() -> None:
+    # Structured vectors (like a trained model's): the calibration on the exact top items alone
+    # gives the probe count and agreement that the full build measures, and the index is built.
+    vectors, bias = blobs(6000, 8, 20, seed=7)
+    rng = np.random.default_rng(8)
+    features = (vectors[rng.integers(0, 6000, 40)] + rng.normal(0, 0.3, (40, 8))).astype(np.float32)
+    full_files, full = item_cluster_files(vectors, bias, features)
+    files, section = item_cluster_files(vectors, bias, features, only_if_served=True)
+    assert files is not None and set(files) == set(full_files)
+    assert (section["probe"], section["agreement_top20"]) == (full["probe"], full["agreement_top20"])
+    fit = ClusterFit.of(6000, section["clusters"], section["head"], section["probe"], section["agreement_top20"])
+    assert fit.served_by_auto
+    # Random vectors (random weights): nothing to cluster, most clusters must be probed, so no index;
+    # the skipped section says what the full build would have needed, and the same figures.
+    vectors = rng.normal(0, 1, (6000, 8)).astype(np.float32)
+    features = rng.normal(0, 1, (40, 8)).astype(np.float32)
+    _, full = item_cluster_files(vectors, bias, features)
+    files, skipped = item_cluster_files(vectors, bias, features, only_if_served=True)
+    assert files is None
+    assert (skipped["probe_needed"], skipped["agreement_top20"]) == (full["probe"], full["agreement_top20"])
+    by_hand = (skipped["head"] + skipped["probe_needed"] * (6000 - skipped["head"]) / skipped["clusters"]) / 6000
+    assert skipped["read_share"] == round(by_hand, 4) > AUTO_CLUSTERED_MAX_SHARE
+    assert f"{skipped['probe_needed']} of {skipped['clusters']} clusters" in skipped["reason"]

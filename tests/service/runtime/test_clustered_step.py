@@ -17,11 +17,19 @@ import pytest
 from offline.export.artifact_writer import write_random_artifact
 from offline.export.item_clusters import item_cluster_files
 from service.artifacts.format import RowBlocks, load_artifact
-from service.artifacts.item_clusters import CLUSTER_OFFSETS, ITEM_CLUSTER_FILES, ClusterFit, cluster_fit, load_item_clusters
+from service.artifacts.item_clusters import (
+    AUTO_CLUSTERED_AGREEMENT,
+    AUTO_CLUSTERED_MAX_SHARE,
+    CLUSTER_OFFSETS,
+    ITEM_CLUSTER_FILES,
+    ClusterFit,
+    cluster_fit,
+    load_item_clusters,
+)
 from service.artifacts.item_vectors import load_item_vectors
 from service.errors import ArtifactError, StepError
 from service.runtime import active
-from service.runtime.active import AUTO_CLUSTERED_AGREEMENT, AUTO_CLUSTERED_MAX_SHARE, AUTO_REDUCED_FROM, load_model, scoring_path
+from service.runtime.active import AUTO_REDUCED_FROM, load_model, scoring_path
 from service.runtime.clustered_step import ClusteredStep, ClusterSearch
 from service.runtime.onnx_step import OnnxStep
 
