@@ -41,6 +41,7 @@ from bench.harness.ports import free_port
 from bench.harness.processes import launch, stop_process, wait_http
 from bench.reporting import write_report
 from offline.evaluate.scoring_paths import parse_scoring
+from service.artifacts.item_vectors import DEFAULT_PRECISIONS, PRECISIONS
 from bench.service import COUNT, Connection, bench_cores, click_stream, pct, saturate, service_environment
 from service.errors import BenchError
 
@@ -49,11 +50,11 @@ PACED_RATE = 50.0  # clicks/s over all connections
 PACED_CONNECTIONS = 4
 
 
-def export(store: Path, n_items: int, log: Path, clustered_index: str = "auto") -> dict:
-    """`cairn export --random` in a child process of its own: wall seconds, and its peak RSS as the
+def export(store: Path, n_items: int, log: Path, flags: tuple[str, ...] = ()) -> dict:
+    """`cairn export --random [flags]` in a child process of its own: wall seconds, and its peak RSS as the
     kernel counts it for that process (getrusage's ru_maxrss, kB on Linux)."""
     argv = ["export", "--random", "--items", str(n_items), "--artifacts", str(store), "--name", "bench", "--version", f"n{n_items}", "--overwrite",
-            "--clustered-index", clustered_index]  # fmt: skip
+            *flags]  # fmt: skip
     code = (
         "import resource, sys; from service.cli import main; rc = main(sys.argv[1:]); "
         "print(f'peak_rss_kb {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}', file=sys.stderr); sys.exit(rc)"
@@ -72,6 +73,15 @@ def export(store: Path, n_items: int, log: Path, clustered_index: str = "auto") 
         "artifact_mb": round(sum(p.stat().st_size for p in path.iterdir()) / 2**20, 1),
         "path": str(path),
     }
+
+
+def files_for(paths: list[str], has_index: bool) -> tuple[str, ...]:
+    """The `cairn export` flags that add what the default export leaves out and `paths` need: the
+    fp16 and int8 copies, and the clustered index; () when nothing is missing."""
+    asked = {parse_path(t)[0] for t in paths}
+    precisions = [p for p in PRECISIONS if p in asked or p in DEFAULT_PRECISIONS]
+    flags = ("--precisions", *precisions) if set(precisions) != set(DEFAULT_PRECISIONS) else ()
+    return flags + (("--clustered-index", "always") if "clustered" in asked and not has_index else ())
 
 
 def parse_path(text: str) -> tuple[str, int]:
@@ -271,12 +281,13 @@ def main(argv: list[str] | None = None) -> int:
             made["item_clusters_skipped"] = clusters_section(Path(made["path"]), "item_clusters_skipped")
             print(f"{n:,} items: export {made['seconds']} s, peak {made['peak_rss_mb']} MB, artifact {made['artifact_mb']} MB, "
                   f"clusters {made['item_clusters'] or made['item_clusters_skipped']}", flush=True)  # fmt: skip
-            if made["item_clusters"] is None and any(parse_path(t)[0] == "clustered" for t in args.paths):
-                # The default export left the index out (random weights); the clustered rows need one: built anyway.
-                made["with_index"] = export(store, n, work / f"export-{n}-index.log", clustered_index="always")
+            flags = files_for(args.paths, has_index=made["item_clusters"] is not None)
+            if flags:
+                # The default export holds int4 only, and no index for random weights: the rows asked for need more.
+                made["again"] = {"flags": list(flags), **export(store, n, work / f"export-{n}-again.log", flags)}
                 made["item_clusters"] = clusters_section(Path(made["path"]))
-                print(f"  again with --clustered-index always: {made['with_index']['seconds']} s, peak {made['with_index']['peak_rss_mb']} MB, "
-                      f"artifact {made['with_index']['artifact_mb']} MB, clusters {made['item_clusters']}", flush=True)  # fmt: skip
+                print(f"  again with {' '.join(flags)}: {made['again']['seconds']} s, peak {made['again']['peak_rss_mb']} MB, "
+                      f"artifact {made['again']['artifact_mb']} MB, clusters {made['item_clusters']}", flush=True)  # fmt: skip
             agree = agreement(Path(made["path"]), args.paths)
             paths = measure_paths(store, ("bench", f"n{n}"), args.paths, agree, click_stream(n, seed=1), cores, args, work)
             report["sizes"][str(n)] = {"export": made, "paths": paths}

@@ -5,7 +5,7 @@ provenance; and random-weight artifacts of any size for benchmarks and tests."""
 from __future__ import annotations
 
 import json
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -14,7 +14,7 @@ import numpy as np
 
 from service.artifacts.format import write_artifact
 from service.artifacts.item_clusters import ITEM_CLUSTER_FILES
-from service.artifacts.item_vectors import item_vectors_manifest
+from service.artifacts.item_vectors import DEFAULT_PRECISIONS, PRECISIONS, item_vectors_manifest
 from service.errors import ArtifactError, InputDataError
 from offline.data.dataset import PreparedData, SessionSplit
 from offline.model.gru import GRUConfig, NextClickGRU, load_checkpoint
@@ -55,6 +55,7 @@ def export_artifact(
     overwrite: bool = False,
     names: dict[str, str] | None = None,
     clusters: bool | None = None,
+    precisions: tuple[str, ...] = DEFAULT_PRECISIONS,
 ) -> Path:
     """Write `<store>/<name>/<version>/` from a training checkpoint and the data it was trained on.
 
@@ -102,6 +103,8 @@ def export_artifact(
     if not isinstance(exclude_seen, bool):
         raise InputDataError(f"the metrics' decision.serving_defaults.exclude_seen must be true or false, got {exclude_seen!r}")
 
+    # The index builds in its own thread while the fallback tables are made here.
+    index = start_index(model, prepared.valid if prepared.valid.n_sessions else prepared.train, clusters)
     knn = ItemKNN.fit(prepared.train, prepared.n_items, neighbours=neighbours, regulariser=regulariser)
     neighbour_items, neighbour_scores = knn.neighbour_table()  # int32 [n_items, K] (-1 pads), float32 [n_items, K]
     popularity = np.bincount(prepared.train.items, minlength=prepared.n_items).astype(np.float32)  # [n_items]
@@ -129,8 +132,8 @@ def export_artifact(
         overwrite=overwrite,
         item_names={i: names[i] for i in prepared.item_ids if i in names} if names else None,
         session_index=sessions,
-        visits=prepared.valid if prepared.valid.n_sessions else prepared.train,
-        clusters=clusters,
+        index=index,
+        precisions=precisions,
     )
 
 
@@ -179,6 +182,7 @@ def write_random_artifact(
     item_ids: list[str] | None = None,
     exclude_seen: bool = True,
     clusters: bool | None = None,
+    precisions: tuple[str, ...] = DEFAULT_PRECISIONS,
 ) -> Path:
     """An artifact with random weights and tables, for benchmarks and service tests (item ids
     sku-000000... unless given).
@@ -189,30 +193,18 @@ def write_random_artifact(
         raise ArtifactError(f"a random artifact needs at least 2 items, got {n_items}")
     if neighbours < 1:
         raise ArtifactError(f"neighbours must be at least 1, got {neighbours}")
-    import torch
-
     config = GRUConfig(n_items=n_items, embedding_size=hidden_size, hidden_size=hidden_size, layers=layers)
     try:
-        model = random_model(config, seed)
+        config.validate()
     except ValueError as exc:
         raise ArtifactError(f"random artifact: {exc}") from exc
-
-    rng = np.random.default_rng(seed)
-    k = min(neighbours, n_items - 1)
-    # Distinct neighbours other than the item itself: one random offset in each of k equal strides.
-    # Made in slices of rows in int32, so a million items need no 160 MB int64/float64 temporaries.
-    stride = (n_items - 1) // k
-    table_items = np.full((n_items, neighbours), -1, dtype=np.int32)
-    table_scores = np.zeros((n_items, neighbours), dtype=np.float32)
-    for lo in range(0, n_items, _TABLE_SLICE):
-        rows = np.arange(lo, min(n_items, lo + _TABLE_SLICE), dtype=np.int64)
-        offsets = 1 + np.arange(k) * stride + rng.integers(0, stride, size=(len(rows), k))  # [rows, k], in [1, n_items - 1]
-        items = ((rows[:, None] + offsets) % n_items).astype(np.int32)
-        table_items[rows[0] : rows[-1] + 1, :k] = rng.permuted(items, axis=1)  # shuffle within rows
-        scores = rng.random((len(rows), k), dtype=np.float32)
-        table_scores[rows[0] : rows[-1] + 1, :k] = -np.sort(-scores, axis=1)  # descending, like a real table
-    popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
-    visits = _random_sessions(n_items, popularity, rng)
+    # torch fills the model's tables in a second thread while numpy draws the other tables here
+    # (both let go of the GIL): at a million items each side takes about a second.
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="random-model") as pool:
+        made = pool.submit(random_model, config, seed)
+        table_items, table_scores, popularity, visits = _random_tables(n_items, neighbours, seed)
+        model = made.result()
+    index = start_index(model, visits, clusters)
     sessions = _random_session_index(visits, n_items)
 
     return _write_model_artifact(
@@ -234,9 +226,29 @@ def write_random_artifact(
         },
         overwrite=overwrite,
         session_index=sessions,
-        visits=visits,
-        clusters=clusters,
+        index=index,
+        precisions=precisions,
     )
+
+
+def _random_tables(n_items: int, neighbours: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, SessionSplit]:
+    """A random artifact's neighbour table (items, scores), popularity and visits, from `seed`."""
+    rng = np.random.default_rng(seed)
+    k = min(neighbours, n_items - 1)
+    # Distinct neighbours other than the item itself: one random offset in each of k equal strides.
+    # Made in slices of rows in int32, so a million items need no 160 MB int64/float64 temporaries.
+    stride = (n_items - 1) // k
+    table_items = np.full((n_items, neighbours), -1, dtype=np.int32)
+    table_scores = np.zeros((n_items, neighbours), dtype=np.float32)
+    for lo in range(0, n_items, _TABLE_SLICE):
+        rows = np.arange(lo, min(n_items, lo + _TABLE_SLICE), dtype=np.int64)
+        offsets = 1 + np.arange(k) * stride + rng.integers(0, stride, size=(len(rows), k))  # [rows, k], in [1, n_items - 1]
+        items = ((rows[:, None] + offsets) % n_items).astype(np.int32)
+        table_items[rows[0] : rows[-1] + 1, :k] = rng.permuted(items, axis=1)  # shuffle within rows
+        scores = rng.random((len(rows), k), dtype=np.float32)
+        table_scores[rows[0] : rows[-1] + 1, :k] = -np.sort(-scores, axis=1)  # descending, like a real table
+    popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
+    return table_items, table_scores, popularity, _random_sessions(n_items, popularity, rng)
 
 
 def random_model(config: GRUConfig, seed: int) -> NextClickGRU:
@@ -247,34 +259,43 @@ def random_model(config: GRUConfig, seed: int) -> NextClickGRU:
     return NextClickGRU(config).eval()
 
 
+def start_index(model: NextClickGRU, visits: SessionSplit, clusters: bool | None) -> Future | None:
+    """The clustered index, built in a second thread from now on (numpy, torch and the export's
+    file writes let go of the GIL: at a million items both sides take seconds), calibrated on states
+    of `visits`: `clusters` True always, False never (None is returned), None from CLUSTERS_FROM
+    items on and only when `CAIRN_SCORING=auto` would serve it (else its manifest section says why)."""
+    if not (clusters or (clusters is None and model.config.n_items >= CLUSTERS_FROM)):
+        return None
+    features = visit_features(model, visits, np.random.default_rng(0))
+    weights = weights_of(model)  # views of the model's tables
+    builder = ThreadPoolExecutor(max_workers=1, thread_name_prefix="item-clusters")
+    index = builder.submit(item_cluster_files, weights.output, weights.output_bias, features, only_if_served=clusters is None)
+    builder.shutdown(wait=False)
+    return index
+
+
 def _write_model_artifact(
     store: Path,
     name: str,
     version: str,
     model: NextClickGRU,
     manifest_fields: dict[str, Any],
-    visits: SessionSplit,
-    clusters: bool | None = None,
+    index: Future | None = None,
+    precisions: tuple[str, ...] = DEFAULT_PRECISIONS,
     **tables: Any,
 ) -> Path:
     """`write_artifact` for a GRU: its step graph (item tables as external data), the item-vector
-    files of the reduced-precision paths, the clustered index (calibrated on states of `visits`;
-    `clusters` True: always, False: never, None: from CLUSTERS_FROM items on, and only when
-    `CAIRN_SCORING=auto` would serve it; else the manifest's `item_clusters_skipped` says why), and
-    the model's own manifest fields."""
+    files (the reduced copies of `precisions`), the clustered index (`start_index`'s, its files
+    last), and the model's own manifest fields."""
     weights = weights_of(model)
-    vector_files = item_vector_files(weights)
+    vector_files = item_vector_files(weights, precisions)
+    precisions = tuple(p for p in PRECISIONS if p in precisions)  # the manifest lists them in one order
     # The tables that are ready are written first, then the reduced copies, made as they are
-    # written, while a second thread builds the clustered index; its files come last.
+    # written, while the index is being built; its files come last.
     extra: dict[str, Any] = {f: c for f, c in vector_files.items() if not callable(c)}
     extra.update({f: c for f, c in vector_files.items() if callable(c)})
-    fields: dict[str, Any] = {**manifest_fields, "model": _model_fields(model.config), "item_vectors": item_vectors_manifest()}
-    if clusters or (clusters is None and weights.n_items >= CLUSTERS_FROM):
-        features = visit_features(model, visits, np.random.default_rng(0))
-        # numpy, torch and file writes let go of the GIL: at a million items both sides take seconds.
-        builder = ThreadPoolExecutor(max_workers=1, thread_name_prefix="item-clusters")
-        index = builder.submit(item_cluster_files, weights.output, weights.output_bias, features, only_if_served=clusters is None)
-        builder.shutdown(wait=False)
+    fields: dict[str, Any] = {**manifest_fields, "model": _model_fields(model.config), "item_vectors": item_vectors_manifest(precisions)}
+    if index is not None:
 
         def index_file(fname: str) -> Any:
             files, _ = index.result()
@@ -321,7 +342,12 @@ def _random_sessions(n_items: int, popularity: np.ndarray, rng: np.random.Genera
     lengths = rng.integers(1, 9, size=n_sessions)
     p = popularity.astype(np.float64)
     p /= p.sum()
-    items = rng.choice(n_items, size=int(lengths.sum()), p=p).astype(np.int32)
+    cdf = np.cumsum(p)
+    # Inverse-CDF draws, as rng.choice(p=...) makes them, but from sorted uniforms (the binary
+    # searches then walk the table in order: a third faster at a million items), then shuffled:
+    # a random order of an i.i.d. sample's sorted values is again an i.i.d. sample.
+    ranks = np.searchsorted(cdf / cdf[-1], np.sort(rng.random(int(lengths.sum()))), side="right")
+    items = rng.permutation(np.minimum(ranks, n_items - 1)).astype(np.int32)
     offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
     return SessionSplit(items=items, offsets=offsets, times=np.zeros(len(items), dtype=np.int64))
 

@@ -15,6 +15,7 @@ import json
 from pathlib import Path
 
 from service.artifacts.format import MANIFEST
+from service.artifacts.item_vectors import DEFAULT_PRECISIONS, PRECISIONS
 from service.errors import InputDataError
 
 DEFAULT_STORE = Path("model_store")
@@ -72,6 +73,15 @@ def configure(parser: argparse.ArgumentParser) -> None:
         help="the approximate top-N index over the items (CAIRN_SCORING=clustered): auto builds it from 1,000 items on "
         "when the calibration says CAIRN_SCORING=auto would serve it (not for random weights); always; never (default: %(default)s)",
     )
+    parser.add_argument(
+        "--precisions",
+        nargs="+",
+        choices=PRECISIONS,
+        default=list(DEFAULT_PRECISIONS),
+        metavar="P",
+        help=f"reduced-precision copies of the item vectors to include, of {', '.join(PRECISIONS)} (CAIRN_SCORING's paths of those names; "
+        f"default: {' '.join(DEFAULT_PRECISIONS)}, the one CAIRN_SCORING=auto serves)",
+    )
     random = parser.add_argument_group("with --random")
     random.add_argument("--items", type=_positive_int, metavar="N", help="number of items (default: 40000)")
     random.add_argument("--hidden-size", type=_positive_int, metavar="H", help="GRU state and embedding size (default: 100)")
@@ -98,6 +108,7 @@ def run(args: argparse.Namespace) -> int:
             seed=args.seed or 0,
             overwrite=args.overwrite,
             clusters=CLUSTERED_INDEX[args.clustered_index],
+            precisions=tuple(args.precisions),
         )
     else:
         given = [flag for flag, value in random_only.items() if value is not None]
@@ -117,6 +128,7 @@ def run(args: argparse.Namespace) -> int:
             overwrite=args.overwrite,
             names=read_names(args.names) if args.names is not None else None,
             clusters=CLUSTERED_INDEX[args.clustered_index],
+            precisions=tuple(args.precisions),
         )
     print(f"wrote {path}")
     skipped = json.loads((path / MANIFEST).read_text(encoding="utf-8")).get("item_clusters_skipped")

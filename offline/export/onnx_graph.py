@@ -40,6 +40,7 @@ from service.artifacts.item_vectors import (
     CANDIDATES_FP16,
     CANDIDATES_INT4,
     CANDIDATES_INT8,
+    DEFAULT_PRECISIONS,
     EMBEDDING,
     FEATURE_GRAPH,
     FEATURE_GRAPH_FORMAT,
@@ -55,6 +56,7 @@ from service.artifacts.item_vectors import (
     ITEM_VECTORS_FP16,
     ITEM_VECTORS_INT4,
     ITEM_VECTORS_INT8,
+    PRECISION_FILES,
     int4_blocks,
 )
 from service.errors import ArtifactError
@@ -466,25 +468,28 @@ def _transposed_blocks(vectors: np.ndarray, dtype: type, convert: Any, dims: int
         yield block
 
 
-def item_vector_files(w: _StepWeights) -> dict[str, Any]:
-    """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py)."""
-    scales = int8_scales(w.output)
-    scales4 = int4_scales(w.output)
+def item_vector_files(w: _StepWeights, precisions: tuple[str, ...] = DEFAULT_PRECISIONS) -> dict[str, Any]:
+    """The optional artifact files of reduced-precision scoring (service/artifacts/item_vectors.py):
+    the feature step and the float32 tables, and the reduced copies of `precisions`."""
+    unknown = sorted(set(precisions) - set(PRECISION_FILES))
+    if unknown:
+        raise ArtifactError(f"unknown precision {unknown[0]!r}; expected some of {', '.join(PRECISION_FILES)}")
     dim = w.output.shape[1]
-    return {
-        FEATURE_GRAPH: build_feature_graph(w),
-        EMBEDDING: w.embedding,
-        ITEM_VECTORS: w.output,
-        ITEM_BIAS: w.output_bias,
-        # Written block by block: neither reduced copy exists whole in the export.
-        ITEM_VECTORS_FP16: RowBlocks((dim, w.n_items), np.dtype(np.float16), lambda: _transposed_blocks(w.output, np.float16, lambda v, lo: v)),
-        ITEM_VECTORS_INT8: RowBlocks(
+    files: dict[str, Any] = {FEATURE_GRAPH: build_feature_graph(w), EMBEDDING: w.embedding, ITEM_VECTORS: w.output, ITEM_BIAS: w.output_bias}
+    # The reduced copies are written block by block: none exists whole in the export.
+    if "fp16" in precisions:
+        files[ITEM_VECTORS_FP16] = RowBlocks((dim, w.n_items), np.dtype(np.float16), lambda: _transposed_blocks(w.output, np.float16, lambda v, lo: v))
+        files[CANDIDATES_FP16] = build_candidate_graph("fp16", dim)
+    if "int8" in precisions:
+        scales = int8_scales(w.output)
+        files[ITEM_VECTORS_INT8] = RowBlocks(
             (dim, w.n_items), np.dtype(np.int8), lambda: _transposed_blocks(w.output, np.int8, lambda v, lo: _codes(v, scales[lo : lo + len(v)]))
-        ),
-        ITEM_SCALES: scales,
-        CANDIDATES_FP16: build_candidate_graph("fp16", dim),
-        CANDIDATES_INT8: build_candidate_graph("int8", dim),
-        ITEM_VECTORS_INT4: RowBlocks((w.n_items, int4_blocks(dim), INT4_BLOCK // 2), np.dtype(np.uint8), lambda: _int4_rows(w.output, scales4)),
-        ITEM_SCALES_INT4: scales4,
-        CANDIDATES_INT4: build_int4_candidate_graph(dim, w.n_items),
-    }
+        )
+        files[ITEM_SCALES] = scales
+        files[CANDIDATES_INT8] = build_candidate_graph("int8", dim)
+    if "int4" in precisions:
+        scales4 = int4_scales(w.output)
+        files[ITEM_VECTORS_INT4] = RowBlocks((w.n_items, int4_blocks(dim), INT4_BLOCK // 2), np.dtype(np.uint8), lambda: _int4_rows(w.output, scales4))
+        files[ITEM_SCALES_INT4] = scales4
+        files[CANDIDATES_INT4] = build_int4_candidate_graph(dim, w.n_items)
+    return files

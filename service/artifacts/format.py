@@ -29,6 +29,7 @@ bytes with that value replaced by 64 zeros, so changing any byte of any file is 
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import os
 import re
@@ -43,6 +44,7 @@ from typing import Any
 
 import numpy as np
 
+from service.artifacts.hashed_writes import write_hashed
 from service.artifacts.mapped import mapped_npz
 from service.errors import ArtifactError
 from service.runtime.session_knn import WEIGHTINGS, SessionIndex
@@ -190,7 +192,10 @@ def write_artifact(
     # Each file is hashed in a second thread as soon as it is written, while the next one is made
     # and written (hashlib lets go of the GIL): a million-item artifact is 1.7 GB, about 1 s of hashing.
     hasher = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256")
-    digests: dict[str, Future[str]] = {}
+    # The optional files (the large tables among them) are hashed from memory as they are written
+    # (service/artifacts/hashed_writes.py), in a hashing thread of their own.
+    direct = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256-direct")
+    digests: dict[str, Future[str] | str] = {}
 
     def written(fname: str) -> None:
         digests[fname] = hasher.submit(sha256_file, tmp / fname)
@@ -211,8 +216,9 @@ def write_artifact(
             np.savez(tmp / SESSIONS, **session_index.arrays())
             written(SESSIONS)
         for fname, content in (extra_files or {}).items():
-            if _write_extra(tmp / fname, content):
-                written(fname)
+            digest = _write_extra(tmp / fname, content, direct)
+            if digest is not None:
+                digests[fname] = digest
         made = {k: v() if callable(v) else v for k, v in manifest_fields.items()}
         manifest = {
             "format": FORMAT,
@@ -220,7 +226,7 @@ def write_artifact(
             "version": version,
             "created_at": datetime.now(timezone.utc).isoformat(timespec="milliseconds"),
             **{k: v for k, v in made.items() if v is not None},
-            "files": {f: digests[f].result() for f in (*files, *(extra_files or {})) if f in digests},
+            "files": {f: _digest(digests[f]) for f in (*files, *(extra_files or {})) if f in digests},
             "manifest_sha256": _UNSET_DIGEST,
         }
         (tmp / MANIFEST).write_bytes(_sealed_manifest(manifest))
@@ -235,38 +241,47 @@ def write_artifact(
         raise
     finally:
         hasher.shutdown(wait=True)
+        direct.shutdown(wait=True)
     return target
 
 
-def _write_extra(path: Path, content: FileContent) -> bool:
-    """Write one optional file; False when its callable made nothing (the file is left out)."""
+def _digest(value: Future[str] | str) -> str:
+    return value if isinstance(value, str) else value.result()
+
+
+def _write_extra(path: Path, content: FileContent, hasher: ThreadPoolExecutor) -> str | None:
+    """Write one optional file and return its SHA-256 digest; None when its callable made nothing
+    (the file is left out). Arrays are written as np.save writes them (format 1.0 header)."""
     if path.name in (*REQUIRED_FILES, MANIFEST) or path.name != Path(path.name).name:
         raise ArtifactError(f"optional artifact file {path.name!r} would overwrite a required one")
     if callable(content):
         content = content()
         if content is None:
-            return False
+            return None
+    if isinstance(content, bytes):
+        return write_hashed(path, [content], hasher)
     if isinstance(content, RowBlocks):
-        _write_row_blocks(path, content)
-    elif isinstance(content, bytes):
-        path.write_bytes(content)
-    else:
-        np.save(path, np.ascontiguousarray(content))
-    return True
+        return write_hashed(path, _row_block_parts(path, content), hasher)
+    array = np.ascontiguousarray(content)
+    return write_hashed(path, [_npy_header(array.dtype, array.shape), array.data], hasher)
 
 
-def _write_row_blocks(path: Path, content: RowBlocks) -> None:
-    """The .npy file np.save writes for the whole array (format 1.0 header), from its blocks."""
+def _npy_header(dtype: np.dtype, shape: tuple[int, ...]) -> bytes:
+    header = io.BytesIO()
+    np.lib.format.write_array_header_1_0(header, {"descr": np.lib.format.dtype_to_descr(np.dtype(dtype)), "fortran_order": False, "shape": tuple(shape)})
+    return header.getvalue()
+
+
+def _row_block_parts(path: Path, content: RowBlocks) -> Iterator[bytes | memoryview]:
+    """The .npy file np.save writes for the whole array, from its blocks: the header, then each block."""
     dtype = np.dtype(content.dtype)
-    header = {"descr": np.lib.format.dtype_to_descr(dtype), "fortran_order": False, "shape": tuple(content.shape)}
+    yield _npy_header(dtype, content.shape)
     rows = 0
-    with open(path, "wb") as f:
-        np.lib.format.write_array_header_1_0(f, header)
-        for block in content.blocks():
-            if block.dtype != dtype or block.shape[1:] != tuple(content.shape[1:]):
-                raise ArtifactError(f"{path.name}: a block of {block.dtype} {block.shape} in a {dtype} {content.shape} table")
-            f.write(np.ascontiguousarray(block).data)
-            rows += len(block)
+    for block in content.blocks():
+        if block.dtype != dtype or block.shape[1:] != tuple(content.shape[1:]):
+            raise ArtifactError(f"{path.name}: a block of {block.dtype} {block.shape} in a {dtype} {content.shape} table")
+        yield np.ascontiguousarray(block).data
+        rows += len(block)
     if rows != content.shape[0]:
         raise ArtifactError(f"{path.name}: the blocks held {rows} rows, the table {content.shape[0]}")
 

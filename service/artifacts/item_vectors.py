@@ -21,10 +21,12 @@ reduced-precision copies of the output vectors for a cheaper first pass over eve
                              + 8 in 1..15, two codes a byte, the lower coordinate in the low half:
                              the layout of ONNX Runtime's MatMulNBits operator (com.microsoft domain)
     item_scales_int4.npy     float32 [n_items, blocks], max |v| of the block / 7 (symmetric per block)
-    candidates_int4.onnx     approximate scores from the int4 table (optional: exports before it lack it)
+    candidates_int4.onnx     approximate scores from the int4 table
 
-Every file is in the manifest's checksums. The manifest's `item_vectors` section names the
-precisions present. An artifact without them is still served, by the exact path.
+The first four are always there; of the reduced copies, those of the precisions the export was
+asked for (PRECISION_FILES; int4 by default). Every file is in the manifest's checksums. The
+manifest's `item_vectors` section names the precisions present. An artifact without any of these
+files is still served, by the exact path.
 numpy only.
 """
 
@@ -48,16 +50,21 @@ ITEM_VECTORS_INT8 = "item_vectors_int8.npy"
 ITEM_SCALES = "item_scales.npy"
 CANDIDATES_FP16 = "candidates_fp16.onnx"
 CANDIDATES_INT8 = "candidates_int8.onnx"
-ITEM_VECTOR_FILES = (
-    FEATURE_GRAPH, EMBEDDING, ITEM_VECTORS, ITEM_BIAS, ITEM_VECTORS_FP16, ITEM_VECTORS_INT8, ITEM_SCALES, CANDIDATES_FP16, CANDIDATES_INT8,
-)
 ITEM_VECTORS_INT4 = "item_vectors_int4.npy"
 ITEM_SCALES_INT4 = "item_scales_int4.npy"
 CANDIDATES_INT4 = "candidates_int4.onnx"
-INT4_FILES = (ITEM_VECTORS_INT4, ITEM_SCALES_INT4, CANDIDATES_INT4)  # optional beside ITEM_VECTOR_FILES
+ITEM_VECTOR_FILES = (FEATURE_GRAPH, EMBEDDING, ITEM_VECTORS, ITEM_BIAS)  # the feature step and the exact re-scoring
+# Each reduced precision's files: an artifact holds those the export was asked for (`cairn export
+# --precisions`, int4 by default: the one `auto` serves); exports before int4 hold fp16 and int8.
+PRECISION_FILES = {
+    "fp16": (ITEM_VECTORS_FP16, CANDIDATES_FP16),
+    "int8": (ITEM_VECTORS_INT8, ITEM_SCALES, CANDIDATES_INT8),
+    "int4": (ITEM_VECTORS_INT4, ITEM_SCALES_INT4, CANDIDATES_INT4),
+}
 FEATURE_GRAPH_FORMAT = "cairn-gru-features/1"
 CANDIDATE_GRAPH_FORMAT = "cairn-candidates/1"
-PRECISIONS = ("fp16", "int8", "int4")
+PRECISIONS = tuple(PRECISION_FILES)
+DEFAULT_PRECISIONS = ("int4",)  # what `cairn export` writes unless told: the fastest full pass measured (README, Large catalogues)
 INT8_LEVELS = 63  # item codes in -63..63
 FEATURE_ZERO_POINT = 128  # features go to the int8 candidate graph as uint8 code + 128
 INT4_BLOCK = 32  # coordinates per int4 block (one scale each)
@@ -70,12 +77,13 @@ def int4_blocks(dim: int) -> int:
     return -(-dim // INT4_BLOCK)
 
 
-def item_vectors_manifest() -> dict[str, Any]:
-    """The manifest's `item_vectors` section, written by the export."""
-    return {
-        "format": FEATURE_GRAPH_FORMAT, "precisions": list(PRECISIONS), "int8": f"symmetric per item: scale = max|v| / {INT8_LEVELS}",
+def item_vectors_manifest(precisions: tuple[str, ...] = DEFAULT_PRECISIONS) -> dict[str, Any]:
+    """The manifest's `item_vectors` section, written by the export: the precisions it holds and their rules."""
+    rules = {
+        "int8": f"symmetric per item: scale = max|v| / {INT8_LEVELS}",
         "int4": f"symmetric per block of {INT4_BLOCK} coordinates: scale = max|v| / {INT4_LEVELS}, stored code + {INT4_ZERO_POINT}",
-    }  # fmt: skip
+    }
+    return {"format": FEATURE_GRAPH_FORMAT, "precisions": list(precisions), **{p: rules[p] for p in precisions if p in rules}}
 
 
 @dataclass
@@ -84,10 +92,10 @@ class ItemVectors:
     embedding: np.ndarray  # float32 [n_items, E], read-only memory map
     vectors: np.ndarray  # float32 [n_items, D], read-only memory map
     bias: np.ndarray  # float32 [n_items]
-    codes: dict[str, np.ndarray]  # precision -> [D, n_items] (float16 or int8; int4: see the docstring), read-only memory maps
-    scales: np.ndarray  # float32 [n_items], the int8 scale of each item
+    codes: dict[str, np.ndarray]  # precision -> [D, n_items] (float16 or int8; int4: see the docstring), read-only memory maps; the precisions the artifact holds
     candidate_graphs: dict[str, Path]  # precision -> its candidate graph
-    int4_scales: np.ndarray | None = None  # float32 [n_items, blocks], with codes["int4"] when the artifact has it
+    scales: np.ndarray | None = None  # float32 [n_items], the int8 scale of each item, with codes["int8"]
+    int4_scales: np.ndarray | None = None  # float32 [n_items, blocks], with codes["int4"]
 
     @property
     def n_items(self) -> int:
@@ -101,7 +109,8 @@ def has_item_vectors(manifest: dict[str, Any]) -> bool:
 
 def load_item_vectors(path: Path, manifest: dict[str, Any], n_items: int) -> ItemVectors | None:
     """The arrays of a verified artifact as read-only memory maps, None when it has none;
-    ArtifactError when one has the wrong type or shape."""
+    ArtifactError when one has the wrong type or shape. Each reduced precision whose files are
+    all in the checksums is opened."""
     path = Path(path)
     if not has_item_vectors(manifest):
         return None
@@ -112,31 +121,26 @@ def load_item_vectors(path: Path, manifest: dict[str, Any], n_items: int) -> Ite
     embedding = array(EMBEDDING, np.float32, 2)
     vectors = array(ITEM_VECTORS, np.float32, 2)
     bias = array(ITEM_BIAS, np.float32, 1)
-    fp16 = array(ITEM_VECTORS_FP16, np.float16, 2)
-    int8 = array(ITEM_VECTORS_INT8, np.int8, 2)
-    scales = array(ITEM_SCALES, np.float32, 1)
     dim = vectors.shape[1]
-    expected = {
-        EMBEDDING: (n_items, embedding.shape[1]), ITEM_VECTORS: (n_items, dim), ITEM_BIAS: (n_items,),
-        ITEM_VECTORS_FP16: (dim, n_items), ITEM_VECTORS_INT8: (dim, n_items), ITEM_SCALES: (n_items,),
-    }
-    tables = {EMBEDDING: embedding, ITEM_VECTORS: vectors, ITEM_BIAS: bias, ITEM_VECTORS_FP16: fp16, ITEM_VECTORS_INT8: int8, ITEM_SCALES: scales}
-    out = ItemVectors(
-        feature_graph=path / FEATURE_GRAPH,
-        embedding=embedding,
-        vectors=vectors,
-        bias=np.ascontiguousarray(bias),
-        codes={"fp16": fp16, "int8": int8},
-        scales=np.ascontiguousarray(scales),
-        candidate_graphs={"fp16": path / CANDIDATES_FP16, "int8": path / CANDIDATES_INT8},
-    )
-    if all(f in manifest["files"] for f in INT4_FILES):
-        blocks = int4_blocks(dim)
+    expected = {EMBEDDING: (n_items, embedding.shape[1]), ITEM_VECTORS: (n_items, dim), ITEM_BIAS: (n_items,)}
+    tables = {EMBEDDING: embedding, ITEM_VECTORS: vectors, ITEM_BIAS: bias}
+    out = ItemVectors(feature_graph=path / FEATURE_GRAPH, embedding=embedding, vectors=vectors, bias=np.ascontiguousarray(bias), codes={}, candidate_graphs={})
+    held = [p for p, files in PRECISION_FILES.items() if all(f in manifest["files"] for f in files)]
+    if "fp16" in held:
+        tables[ITEM_VECTORS_FP16] = out.codes["fp16"] = array(ITEM_VECTORS_FP16, np.float16, 2)
+        expected[ITEM_VECTORS_FP16] = (dim, n_items)
+    if "int8" in held:
+        tables[ITEM_VECTORS_INT8] = out.codes["int8"] = array(ITEM_VECTORS_INT8, np.int8, 2)
+        tables[ITEM_SCALES] = scales = array(ITEM_SCALES, np.float32, 1)
+        expected |= {ITEM_VECTORS_INT8: (dim, n_items), ITEM_SCALES: (n_items,)}
+    if "int4" in held:
         tables[ITEM_VECTORS_INT4] = out.codes["int4"] = array(ITEM_VECTORS_INT4, np.uint8, 3)
         tables[ITEM_SCALES_INT4] = out.int4_scales = array(ITEM_SCALES_INT4, np.float32, 2)
-        out.candidate_graphs["int4"] = path / CANDIDATES_INT4
-        expected |= {ITEM_VECTORS_INT4: (n_items, blocks, INT4_BLOCK // 2), ITEM_SCALES_INT4: (n_items, blocks)}
+        expected |= {ITEM_VECTORS_INT4: (n_items, int4_blocks(dim), INT4_BLOCK // 2), ITEM_SCALES_INT4: (n_items, int4_blocks(dim))}
     for fname, a in tables.items():
         if a.shape != expected[fname]:
             raise ArtifactError(f"{path / fname}: shape {a.shape}, expected {expected[fname]} for {n_items} items")
+    if "int8" in held:
+        out.scales = np.ascontiguousarray(scales)
+    out.candidate_graphs = {p: path / PRECISION_FILES[p][-1] for p in held}
     return out

@@ -25,7 +25,7 @@ import logging
 import os
 import socket
 import time
-from collections.abc import Awaitable, Callable
+from collections.abc import Awaitable, Callable, Collection
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -145,21 +145,22 @@ class LoadedModel:
 AUTO_REDUCED_FROM = 100_000
 
 
-def scoring_path(setting: str, n_items: int, has_vectors: bool, clusters: ClusterFit | None = None, has_int4: bool = False) -> str:
+def scoring_path(setting: str, n_items: int, precisions: Collection[str] | None, clusters: ClusterFit | None = None) -> str:
     """What answers: `setting` when the artifact can do it, else exact (logged by the caller).
-    `clusters`: what the export measured for the artifact's clustered index, None without one;
-    `has_int4`: the artifact has the int4 table (exports before it do not)."""
+    `precisions`: the reduced precisions whose tables the artifact holds (fp16, int8, int4), None
+    when it has no item-vector files at all; `clusters`: what the export measured for the
+    artifact's clustered index, None without one."""
+    if precisions is None:
+        return "exact"
     if setting == "auto":
-        if not has_vectors or n_items < AUTO_REDUCED_FROM:
+        if n_items < AUTO_REDUCED_FROM:
             return "exact"
         if clusters is not None and clusters.served_by_auto:  # its rule: service/artifacts/item_clusters.py
             return "clustered"
-        return "int4" if has_int4 else "int8"
-    if setting in ("fp16", "int8") and not has_vectors:
+        return next((p for p in ("int4", "int8") if p in precisions), "exact")  # int8: artifacts exported before int4
+    if setting in ("fp16", "int8", "int4") and setting not in precisions:
         return "exact"
-    if setting == "int4" and not (has_vectors and has_int4):
-        return "exact"
-    if setting == "clustered" and (not has_vectors or clusters is None):
+    if setting == "clustered" and clusters is None:
         return "exact"
     return setting
 
@@ -171,9 +172,13 @@ def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0
     opened). `probe` > 0 overrides the clustered index's probe count (`auto` judges by the export's)."""
     tables = load_item_vectors(artifact.path, artifact.manifest, artifact.n_items)
     fit = cluster_fit(artifact.manifest, artifact.n_items) if tables is not None else None
-    path_name = scoring_path(scoring, artifact.n_items, tables is not None, fit, has_int4=tables is not None and "int4" in tables.codes)
+    path_name = scoring_path(scoring, artifact.n_items, None if tables is None else set(tables.codes), fit)
     if path_name != scoring and scoring != "auto":
-        log.warning("%s has no files for CAIRN_SCORING=%s (exported by an older cairn, or too few items): scoring exactly", artifact.path, scoring)
+        log.warning(
+            "%s has no files for CAIRN_SCORING=%s (not exported with them: `cairn export --precisions`, `--clustered-index`): scoring exactly",
+            artifact.path,
+            scoring,
+        )
     if path_name == "exact" or tables is None:
         return OnnxStep(artifact.step_graph, threads=threads)
     if path_name == "clustered":

@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from bench.catalogue import main, parse_path
+from bench.catalogue import files_for, main, parse_path
 from bench.catalogue_chart import catalogue_rows
 from offline.data.dataset import PreparedData, SessionSplit
 from offline.export.artifact_writer import write_random_artifact
@@ -16,7 +16,7 @@ from offline.export.artifact_writer import write_random_artifact
 
 def test_small_catalogue_report(tmp_path: Path) -> None:
     # A random artifact of 3,000 items stands in for a trained one (its test split: random visits).
-    trained = write_random_artifact(tmp_path / "store", "shop", "t1", n_items=3000, hidden_size=32, clusters=True)
+    trained = write_random_artifact(tmp_path / "store", "shop", "t1", n_items=3000, hidden_size=32, clusters=True, precisions=("int8", "int4"))
     rng = np.random.default_rng(0)
     visits = [rng.integers(0, 3000, rng.integers(2, 8)).tolist() for _ in range(200)]
     PreparedData(
@@ -30,8 +30,10 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
     report = json.loads(out.read_text())
     size = report["sizes"]["3000"]
     assert size["export"]["seconds"] > 0 and size["export"]["peak_rss_mb"] > 0 and size["export"]["artifact_mb"] > 0
-    # Random weights: the default export builds no index (it says why); the clustered rows come from a second export with one.
-    assert size["export"]["item_clusters_skipped"]["probe_needed"] > 4 and size["export"]["with_index"]["seconds"] > 0
+    # Random weights: the default export builds no index (it says why) and holds int4 only; the int8 and
+    # clustered rows come from a second export with them.
+    assert size["export"]["item_clusters_skipped"]["probe_needed"] > 4 and size["export"]["again"]["seconds"] > 0
+    assert size["export"]["again"]["flags"] == ["--precisions", "int8", "int4", "--clustered-index", "always"]
     assert size["export"]["item_clusters"]["clusters"] == 64  # about sqrt(3000), a power of two
     for rows in (size["paths"], report["trained"]["paths"]):
         for path in ("exact", "int8", "int4", "clustered@4"):
@@ -49,6 +51,12 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
     assert out.with_suffix(".png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (RFC 2083, section 3.1)
     rows = catalogue_rows(report)
     assert len(rows) == 2 * 4 and {model for model, _, _ in rows} == {"random, 3,000", "trained, 3,000"}
+
+
+def test_the_second_export_adds_only_what_the_paths_need() -> None:
+    assert files_for(["exact", "int4"], has_index=False) == ()
+    assert files_for(["exact", "clustered@8"], has_index=True) == ()
+    assert files_for(["fp16", "clustered"], has_index=False) == ("--precisions", "fp16", "int4", "--clustered-index", "always")
 
 
 def test_path_names_are_checked() -> None:

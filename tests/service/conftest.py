@@ -30,9 +30,10 @@ HIDDEN = 32
 def model_store(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """shop/v1 (with the clustered index) and shop/v2: same ids, different random weights; v0-broken fails verification."""
     from offline.export.artifact_writer import write_random_artifact
+    from service.artifacts.item_vectors import PRECISIONS
 
     store = tmp_path_factory.mktemp("model_store")
-    write_random_artifact(store, "shop", "v1", n_items=N_ITEMS, hidden_size=HIDDEN, seed=0, clusters=True)
+    write_random_artifact(store, "shop", "v1", n_items=N_ITEMS, hidden_size=HIDDEN, seed=0, clusters=True, precisions=PRECISIONS)
     write_random_artifact(store, "shop", "v2", n_items=N_ITEMS, hidden_size=HIDDEN, seed=1)
     broken = write_random_artifact(store, "shop", "v0-broken", n_items=N_ITEMS, hidden_size=HIDDEN, seed=2)
     with open(broken / "popularity.npy", "r+b") as f:  # one byte changed after export: the checksum no longer matches

@@ -261,7 +261,7 @@ def test_each_scoring_path_is_evaluated_as_it_serves(trained, tmp_path: Path, ca
     # `cairn evaluate --artifact P --scoring ...`: a row per path. int8 and int4 re-score their 512
     # candidates exactly, and 512 candidates cover these 120 items, so their figures must equal the exact row's.
     _, checkpoint, data_dir, _ = trained
-    path = export_artifact(checkpoint, data_dir, tmp_path / "store", "garden", "v1", neighbours=5, clusters=True)
+    path = export_artifact(checkpoint, data_dir, tmp_path / "store", "garden", "v1", neighbours=5, clusters=True, precisions=("int8", "int4"))
     out = tmp_path / "eval.json"
     argv = ["evaluate", "--data", str(data_dir), "--recommenders", "pop", "--artifact", str(path), "--scoring", "exact", "int8", "int4", "clustered", "clustered@1000"]
     assert cairn([*argv, "--bootstrap", "20", "--cost-clicks", "0", "--out", str(out)]) == 0
@@ -460,7 +460,7 @@ def test_the_reduced_copies_written_block_by_block_are_the_whole_table_conversio
     from offline.export.onnx_graph import INT8_LEVELS, int8_scales
     from service.artifacts.item_vectors import ITEM_SCALES, ITEM_VECTORS, ITEM_VECTORS_FP16, ITEM_VECTORS_INT8
 
-    path = write_random_artifact(tmp_path, "bench", "v1", n_items=9000, hidden_size=60, seed=2)  # 60 dims: blocks of 25, 25, 10
+    path = write_random_artifact(tmp_path, "bench", "v1", n_items=9000, hidden_size=60, seed=2, precisions=("fp16", "int8"))  # 60 dims: blocks of 25, 25, 10
     vectors = np.load(path / ITEM_VECTORS)
     assert np.array_equal(np.load(path / ITEM_VECTORS_FP16), vectors.astype(np.float16).T)
     scales = np.load(path / ITEM_SCALES)

@@ -149,12 +149,14 @@ def test_the_step_runs_the_gru_and_with_every_cluster_probed_ranks_as_the_exact_
 
 def test_scoring_setting_chooses_clustered_only_where_it_was_measured_to_agree_and_to_save(artifact: Path) -> None:
     good = ClusterFit(AUTO_CLUSTERED_AGREEMENT, AUTO_CLUSTERED_MAX_SHARE)
-    assert scoring_path("auto", AUTO_REDUCED_FROM, True, good) == "clustered"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, True, ClusterFit(AUTO_CLUSTERED_AGREEMENT - 0.01, 0.1)) == "int8"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, True, ClusterFit(0.995, 0.8)) == "int8"  # random weights: most clusters probed
-    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, True, good) == "exact"
-    assert scoring_path("clustered", 10, True, None) == "exact"  # no index in the artifact
-    assert scoring_path("clustered", 10, True, ClusterFit(0.5, 1.0)) == "clustered"  # asked for: served, whatever its fit
+    int4 = {"int4"}
+    assert scoring_path("auto", AUTO_REDUCED_FROM, int4, good) == "clustered"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, int4, ClusterFit(AUTO_CLUSTERED_AGREEMENT - 0.01, 0.1)) == "int4"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, int4, ClusterFit(0.995, 0.8)) == "int4"  # random weights: most clusters probed
+    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, int4, good) == "exact"
+    assert scoring_path("clustered", 10, int4, None) == "exact"  # no index in the artifact
+    assert scoring_path("clustered", 10, None, good) == "exact"  # no item vectors (an older export)
+    assert scoring_path("clustered", 10, set(), ClusterFit(0.5, 1.0)) == "clustered"  # asked for: served, whatever its fit
     model = load_model(artifact, 1, 8, "clustered", probe=2)
     assert model.scoring == "clustered" and model.gru.batcher.step.search.probe == 2
 

@@ -24,8 +24,8 @@ import pytest
 
 from offline.export.artifact_writer import write_random_artifact
 from service.artifacts.format import load_artifact, write_artifact
-from service.artifacts.item_vectors import INT4_BLOCK, INT4_FILES, ITEM_VECTOR_FILES, load_item_vectors
-from service.errors import StepError
+from service.artifacts.item_vectors import DEFAULT_PRECISIONS, INT4_BLOCK, ITEM_VECTOR_FILES, PRECISION_FILES, PRECISIONS, load_item_vectors
+from service.errors import ArtifactError, StepError
 from service.runtime.active import AUTO_REDUCED_FROM, load_model, scoring_path
 from service.runtime.onnx_step import OnnxStep, open_session
 from service.runtime.reduced_step import ReducedStep, candidates_for, quantise_rows
@@ -35,7 +35,7 @@ N_ITEMS, HIDDEN, TOP = 3000, 32, 20
 
 @pytest.fixture(scope="module")
 def artifact(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    return write_random_artifact(tmp_path_factory.mktemp("store"), "big", "v1", n_items=N_ITEMS, hidden_size=HIDDEN, seed=3)
+    return write_random_artifact(tmp_path_factory.mktemp("store"), "big", "v1", n_items=N_ITEMS, hidden_size=HIDDEN, seed=3, precisions=PRECISIONS)
 
 
 def visit_states(step: OnnxStep, n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -114,13 +114,32 @@ def test_int4_scores_stay_within_the_quantisation_bound(artifact: Path) -> None:
 def test_an_artifact_without_int4_files_serves_int8_for_auto(artifact: Path) -> None:
     # Exports made before the int4 table: the other reduced paths are still there.
     a = load_artifact(artifact)
-    older = {**a.manifest, "files": {f: v for f, v in a.manifest["files"].items() if f not in INT4_FILES}}
+    older = {**a.manifest, "files": {f: v for f, v in a.manifest["files"].items() if f not in PRECISION_FILES["int4"]}}
     t = load_item_vectors(artifact, older, a.n_items)
     assert sorted(t.codes) == ["fp16", "int8"] and t.int4_scales is None
     with pytest.raises(StepError, match="no 'int4' item vectors"):
         ReducedStep(t, "int4")
-    assert scoring_path("auto", AUTO_REDUCED_FROM, True, has_int4=False) == "int8"
-    assert scoring_path("int4", AUTO_REDUCED_FROM, True, has_int4=False) == "exact"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, {"fp16", "int8"}) == "int8"
+    assert scoring_path("int4", AUTO_REDUCED_FROM, {"fp16", "int8"}) == "exact"
+
+
+def test_an_export_holds_the_precisions_asked_for(tmp_path: Path) -> None:
+    # The default: int4 alone (what auto serves); fp16 and int8 on request, each with all its files.
+    default = write_random_artifact(tmp_path, "shop", "v1", n_items=300, hidden_size=8, seed=1)
+    a = load_artifact(default)
+    assert a.manifest["item_vectors"]["precisions"] == list(DEFAULT_PRECISIONS) == ["int4"]
+    held = {p.name for p in default.iterdir()}
+    assert set(ITEM_VECTOR_FILES) | set(PRECISION_FILES["int4"]) <= held and not (set(PRECISION_FILES["fp16"]) | set(PRECISION_FILES["int8"])) & held
+    t = load_item_vectors(default, a.manifest, a.n_items)
+    assert sorted(t.codes) == ["int4"] and t.scales is None
+    assert load_model(default, 1, 8, "int8").scoring == "exact"  # not exported with it: served exactly (logged)
+    assert load_model(default, 1, 8, "int4").scoring == "int4"
+    some = write_random_artifact(tmp_path, "shop", "v2", n_items=300, hidden_size=8, seed=1, precisions=("int8", "fp16"))
+    a = load_artifact(some)
+    assert a.manifest["item_vectors"]["precisions"] == ["fp16", "int8"]  # in one order
+    assert sorted(load_item_vectors(some, a.manifest, a.n_items).codes) == ["fp16", "int8"]
+    with pytest.raises(ArtifactError, match="unknown precision 'int2'"):
+        write_random_artifact(tmp_path, "shop", "v3", n_items=300, hidden_size=8, precisions=("int2",))
 
 
 @pytest.mark.parametrize("precision", ["fp16", "int8", "int4"])
@@ -155,13 +174,14 @@ def test_reduced_step_refuses_bad_calls(artifact: Path) -> None:
 
 
 def test_scoring_setting_picks_the_path_and_falls_back_to_exact(artifact: Path, tmp_path: Path) -> None:
-    assert scoring_path("auto", AUTO_REDUCED_FROM, True) == "int8"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, True, has_int4=True) == "int4"
-    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, True, has_int4=True) == "exact"
-    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, True) == "exact"
-    assert scoring_path("auto", 10**6, False) == "exact"
-    assert scoring_path("fp16", 10, True) == "fp16" and scoring_path("int8", 10, False) == "exact"
-    assert scoring_path("exact", 10**6, True) == "exact"
+    every = set(PRECISIONS)
+    assert scoring_path("auto", AUTO_REDUCED_FROM, {"fp16", "int8"}) == "int8"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, every) == "int4" and scoring_path("auto", AUTO_REDUCED_FROM, {"int4"}) == "int4"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, set()) == "exact"  # item vectors without a reduced copy
+    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, every) == "exact"
+    assert scoring_path("auto", 10**6, None) == "exact"
+    assert scoring_path("fp16", 10, every) == "fp16" and scoring_path("int8", 10, None) == "exact" and scoring_path("fp16", 10, {"int4"}) == "exact"
+    assert scoring_path("exact", 10**6, every) == "exact"
     for scoring in ("exact", "fp16", "int8", "int4"):
         model = load_model(artifact, 1, 8, scoring)
         assert model.scoring == scoring and model.gru.scoring == scoring

@@ -9,7 +9,7 @@ import redis as redis_sync
 
 from service.errors import StoreError
 from service.store.memory import MemoryStore
-from service.store.redis import RedisStore
+from service.store.redis import RedisCommands, RedisStore, script_result, stored_value
 from service.store.state import NEW_TOKEN, SessionState, encode, token_of
 
 
@@ -161,3 +161,36 @@ def test_redis_errors_become_store_errors():
 def test_bad_redis_url_is_a_store_error():
     with pytest.raises(StoreError, match="CAIRN_SESSION_STORE"):
         redis_store("redis://127.0.0.1:notaport/0", "x:")
+
+
+def test_a_reply_of_the_wrong_shape_is_a_store_error_not_a_state(redis_url):
+    # A real server never answers GET with a list or the script with anything but 0 or 1, but the
+    # cluster client once did while a master was down: the store must refuse such a reply (the
+    # visit then degrades) rather than hand it on to be decoded, or count a truthy one as written.
+    assert stored_value(None) is None and stored_value(b"x") == b"x"
+    assert script_result(1) is True and script_result(0) is False
+    for bad in ([b"x", None], {"node": b"x"}, "x", 1):
+        with pytest.raises(StoreError, match="redis GET answered with"):
+            stored_value(bad)
+    for bad in ([1, 1], 2, b"1", None):
+        with pytest.raises(StoreError, match="redis check-and-set answered with"):
+            script_result(bad)
+
+    async def go():
+        store = redis_store(redis_url, "shape:")
+        try:
+            value = encode(SessionState(items=("a",), sequence=1))
+            assert await store.save("s", value, NEW_TOKEN)
+            assert await store.load("s") == value  # the real replies pass the checks
+            # The base class's path (redis-py's client, as the cluster store uses it) with a GET
+            # answered as the failing run saw it.
+            async def listed(key):
+                return [value, None]
+
+            store._client.get = listed
+            with pytest.raises(StoreError, match="a list"):
+                await RedisCommands.load(store, "s")
+        finally:
+            await store.close()
+
+    run(go())
