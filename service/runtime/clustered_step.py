@@ -20,16 +20,7 @@ import numpy as np
 from service.artifacts.item_clusters import ItemClusters
 from service.artifacts.item_vectors import ItemVectors
 from service.errors import StepError
-from service.runtime.feature_step import FeatureStep
-
-
-def touch_pages(table: np.ndarray, page: int = 4096) -> None:
-    """Read one byte of every page of a memory-mapped table, at load: each page is then mapped in
-    this process (from the page cache every worker shares), so early clicks do not each pay
-    thousands of page faults (measured at a million items: 5-10 ms per click for the first few
-    hundred clicks, 3 ms after)."""
-    flat = table.reshape(-1).view(np.uint8)
-    int(flat[::page].sum())
+from service.runtime.feature_step import FeatureStep, touch_pages
 
 
 class ClusterSearch:

@@ -25,7 +25,7 @@ import onnxruntime as ort
 
 from service.artifacts.item_vectors import FEATURE_ZERO_POINT, ItemVectors
 from service.errors import StepError
-from service.runtime.feature_step import FeatureStep
+from service.runtime.feature_step import FeatureStep, touch_pages
 from service.runtime.onnx_step import open_session
 
 # The exact re-scoring looks at this many candidates per row at least (and 4 x top_n when more
@@ -63,6 +63,8 @@ class ReducedStep(FeatureStep):
         self._candidates = open_session(tables.candidate_graphs[precision], threads, self._tables)
         if precision != "int4":
             self._feed["codes"] = tables.codes[precision]
+            touch_pages(tables.codes[precision])  # read whole by every click
+        touch_pages(tables.vectors)  # the candidates' rows, anywhere in the table
         if precision == "int8":
             self._feed["scales"] = tables.scales
         self._k: dict[int, np.ndarray] = {}
