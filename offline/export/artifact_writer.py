@@ -198,13 +198,17 @@ def write_random_artifact(
         config.validate()
     except ValueError as exc:
         raise ArtifactError(f"random artifact: {exc}") from exc
-    # torch fills the model's tables in a second thread while numpy draws the other tables here
-    # (both let go of the GIL): at a million items each side takes about a second.
+    # torch fills the model's tables in a second thread while numpy draws the visits here (both let
+    # go of the GIL: at a million items each takes about a second); with both, the clustered index's
+    # thread starts, and the neighbour table and the session index are made beside it.
+    rng = np.random.default_rng(seed)
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="random-model") as pool:
         made = pool.submit(random_model, config, seed)
-        table_items, table_scores, popularity, visits = _random_tables(n_items, neighbours, seed)
+        popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
+        visits = _random_sessions(n_items, popularity, rng)
         model = made.result()
     index = start_index(model, visits, clusters)
+    table_items, table_scores = _random_neighbours(n_items, neighbours, rng)
     sessions = _random_session_index(visits, n_items)
 
     return _write_model_artifact(
@@ -231,9 +235,8 @@ def write_random_artifact(
     )
 
 
-def _random_tables(n_items: int, neighbours: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, SessionSplit]:
-    """A random artifact's neighbour table (items, scores), popularity and visits, from `seed`."""
-    rng = np.random.default_rng(seed)
+def _random_neighbours(n_items: int, neighbours: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """A random artifact's neighbour table: items int32 [n_items, neighbours], scores float32, descending."""
     k = min(neighbours, n_items - 1)
     # Distinct neighbours other than the item itself: one random offset in each of k equal strides.
     # Made in slices of rows in int32, so a million items need no 160 MB int64/float64 temporaries.
@@ -247,8 +250,7 @@ def _random_tables(n_items: int, neighbours: int, seed: int) -> tuple[np.ndarray
         table_items[rows[0] : rows[-1] + 1, :k] = rng.permuted(items, axis=1)  # shuffle within rows
         scores = rng.random((len(rows), k), dtype=np.float32)
         table_scores[rows[0] : rows[-1] + 1, :k] = -np.sort(-scores, axis=1)  # descending, like a real table
-    popularity = (1e4 / np.arange(1, n_items + 1))[rng.permutation(n_items)].astype(np.float32)  # Zipf-like counts
-    return table_items, table_scores, popularity, _random_sessions(n_items, popularity, rng)
+    return table_items, table_scores
 
 
 def random_model(config: GRUConfig, seed: int) -> NextClickGRU:
