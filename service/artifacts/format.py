@@ -189,11 +189,11 @@ def write_artifact(
         raise ArtifactError(f"{target} exists already; choose another version (--version) or replace it (--overwrite)")
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{version}.", dir=target.parent))
-    # Each file is hashed in a second thread as soon as it is written, while the next one is made
-    # and written (hashlib lets go of the GIL): a million-item artifact is 1.7 GB, about 1 s of hashing.
-    hasher = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256")
-    # The optional files (the large tables among them) are hashed from memory as they are written
+    # Each required file is read back and hashed in a second thread as soon as it is written, while
+    # the next one is made and written (hashlib lets go of the GIL). The optional files (the large
+    # tables among them: about 1 GB at a million items) are hashed from memory as they are written
     # (service/artifacts/hashed_writes.py), in a hashing thread of their own.
+    hasher = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256")
     direct = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256-direct")
     digests: dict[str, Future[str] | str] = {}
 
