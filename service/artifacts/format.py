@@ -189,34 +189,30 @@ def write_artifact(
         raise ArtifactError(f"{target} exists already; choose another version (--version) or replace it (--overwrite)")
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{version}.", dir=target.parent))
-    # Each required file is read back and hashed in a second thread as soon as it is written, while
-    # the next one is made and written (hashlib lets go of the GIL). The optional files (the large
-    # tables among them: about 1 GB at a million items) are hashed from memory as they are written
-    # (service/artifacts/hashed_writes.py), in a hashing thread of their own.
-    hasher = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256")
-    direct = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256-direct")
+    # Every file is hashed from memory as it is written (service/artifacts/hashed_writes.py: the
+    # large tables, about 1 GB at a million items, go to disk with direct I/O), except the .npz
+    # files, which numpy's zip writer makes on disk: those are read back and hashed in a second
+    # thread while the next file is made (hashlib lets go of the GIL).
+    hashing = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256")
+    npz_hashing = ThreadPoolExecutor(max_workers=1, thread_name_prefix="artifact-sha256-npz")
     digests: dict[str, Future[str] | str] = {}
 
-    def written(fname: str) -> None:
-        digests[fname] = hasher.submit(sha256_file, tmp / fname)
+    def npz_written(fname: str) -> None:
+        digests[fname] = npz_hashing.submit(sha256_file, tmp / fname)
 
     try:
-        (tmp / STEP_GRAPH).write_bytes(step_graph)
-        written(STEP_GRAPH)
-        (tmp / ITEM_IDS).write_text(json.dumps([str(i) for i in item_ids]), encoding="utf-8")
-        written(ITEM_IDS)
+        digests[STEP_GRAPH] = _write_file(tmp / STEP_GRAPH, step_graph, hashing)
+        digests[ITEM_IDS] = _write_file(tmp / ITEM_IDS, json.dumps([str(i) for i in item_ids]).encode("utf-8"), hashing)
         np.savez(tmp / NEIGHBOURS, items=neighbour_items.astype(np.int32, copy=False), scores=neighbour_scores.astype(np.float32, copy=False))
-        written(NEIGHBOURS)
-        np.save(tmp / POPULARITY, popularity.astype(np.float32, copy=False))
-        written(POPULARITY)
+        npz_written(NEIGHBOURS)
+        digests[POPULARITY] = _write_file(tmp / POPULARITY, popularity.astype(np.float32, copy=False), hashing)
         if item_names:
-            (tmp / ITEM_NAMES).write_text(json.dumps(item_names, ensure_ascii=False, sort_keys=True), encoding="utf-8")
-            written(ITEM_NAMES)
+            digests[ITEM_NAMES] = _write_file(tmp / ITEM_NAMES, json.dumps(item_names, ensure_ascii=False, sort_keys=True).encode("utf-8"), hashing)
         if session_index is not None:
             np.savez(tmp / SESSIONS, **session_index.arrays())
-            written(SESSIONS)
+            npz_written(SESSIONS)
         for fname, content in (extra_files or {}).items():
-            digest = _write_extra(tmp / fname, content, direct)
+            digest = _write_extra(tmp / fname, content, hashing)
             if digest is not None:
                 digests[fname] = digest
         made = {k: v() if callable(v) else v for k, v in manifest_fields.items()}
@@ -236,12 +232,12 @@ def write_artifact(
         os.replace(tmp, target)
         _fsync_path(target.parent)
     except BaseException:
-        hasher.shutdown(wait=True, cancel_futures=True)  # no hash may still be reading a file of tmp
+        npz_hashing.shutdown(wait=True, cancel_futures=True)  # no hash may still be reading a file of tmp
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     finally:
-        hasher.shutdown(wait=True)
-        direct.shutdown(wait=True)
+        npz_hashing.shutdown(wait=True)
+        hashing.shutdown(wait=True)
     return target
 
 
@@ -251,13 +247,18 @@ def _digest(value: Future[str] | str) -> str:
 
 def _write_extra(path: Path, content: FileContent, hasher: ThreadPoolExecutor) -> str | None:
     """Write one optional file and return its SHA-256 digest; None when its callable made nothing
-    (the file is left out). Arrays are written as np.save writes them (format 1.0 header)."""
+    (the file is left out)."""
     if path.name in (*REQUIRED_FILES, MANIFEST) or path.name != Path(path.name).name:
         raise ArtifactError(f"optional artifact file {path.name!r} would overwrite a required one")
     if callable(content):
         content = content()
         if content is None:
             return None
+    return _write_file(path, content, hasher)
+
+
+def _write_file(path: Path, content: bytes | np.ndarray | RowBlocks, hasher: ThreadPoolExecutor) -> str:
+    """Write bytes as they are, an array or RowBlocks as np.save writes it (format 1.0 header); its SHA-256 digest."""
     if isinstance(content, bytes):
         return write_hashed(path, [content], hasher)
     if isinstance(content, RowBlocks):
