@@ -173,7 +173,7 @@ async def soak(args: argparse.Namespace, port: int, service_pid: int, redis: Red
 
         for session, sequence in acknowledged.items():
             raw = client.get(f"soak:s:{session}")
-            if raw is None or decode(raw).sequence < sequence:
+            if raw is None or decode(raw, session).sequence < sequence:
                 lost += 1
     finally:
         client.close()

@@ -6,7 +6,8 @@ CairnError                 base of everything cairn raises on purpose
  ├── InputDataError        a click log or prepared data set that cannot be used (names file, column, row)
  ├── ArtifactError         a model artifact that is missing, corrupt or of another format
  ├── StoreError            the session store failed or timed out
- │    └── StoreWriteUnknownError  a write was sent but no answer came: it may or may not have landed
+ │    ├── StoreWriteUnknownError  a write was sent but no answer came: it may or may not have landed
+ │    └── ForeignStateError       the store answered a session's read with another session's state
  ├── StepError             ONNX Runtime failed running a model step
  ├── ModelNotReadyError    a request arrived before the first artifact was loaded
  ├── EventSinkError        the click event sink (CAIRN_EVENTS) cannot be opened, written or read
@@ -46,6 +47,11 @@ class StoreError(CairnError):
 class StoreWriteUnknownError(StoreError):
     """A write was sent to the session store but its answer did not come within the request's
     budget (or the connection broke while waiting): the store may or may not hold it."""
+
+
+class ForeignStateError(StoreError):
+    """The value read for a session names another session as its owner (service.store.state): a
+    store failure, never served as this visit's clicks nor overwritten."""
 
 
 class StepError(CairnError):

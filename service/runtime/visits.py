@@ -36,7 +36,7 @@ from contextlib import asynccontextmanager
 from dataclasses import dataclass
 
 from service.config import RecommenderKind
-from service.errors import StoreError, StoreWriteUnknownError
+from service.errors import ForeignStateError, StoreError, StoreWriteUnknownError
 from service.resilience.guarded_store import GuardedStore
 from service.resilience.guards import Guards
 from service.resilience.loop_lag import LoopLag
@@ -177,7 +177,7 @@ class Visits:
                     hit = recent.lookup(session_id) if recent is not None and attempt == 0 else None
                     if hit is None or hit[1] is None:
                         raw = hit[0] if hit is not None else await self.store.load(session_id, deadline, timing)
-                        state = self._decode(raw)
+                        state = self._decode(raw, session_id)
                     else:
                         raw, state = hit
                     model, choice = active.current
@@ -187,7 +187,7 @@ class Visits:
                         answer.duplicate = True
                         return answer
                     new_state, answer = await self._apply(gate, model, kind, state, item_id, event_id, count, exclude_seen, deadline, timing)
-                    value = encode(new_state)
+                    value = encode(new_state, session_id)
                     if recent is None:
                         if await self.store.save(session_id, value, token_of(raw), deadline, timing):
                             return answer
@@ -208,7 +208,7 @@ class Visits:
         active, arm = self.active_for(session_id)
         model, choice = active.current
         try:
-            state = self._decode(await self.store.load(session_id, deadline, timing))
+            state = self._decode(await self.store.load(session_id, deadline, timing), session_id)
         except StoreError as exc:
             (log.debug if self.store.guarded else log.warning)("session store unavailable, answering without the visit: %s", exc)
             answer = self._answer(model, model.popularity.top(count), "popularity", "store_unavailable", 0)
@@ -403,11 +403,13 @@ class Visits:
         return answer
 
     @staticmethod
-    def _decode(raw: bytes | None) -> SessionState | None:
+    def _decode(raw: bytes | None, session_id: str) -> SessionState | None:
         if raw is None:
             return None
         try:
-            return decode(raw)
+            return decode(raw, session_id)
+        except ForeignStateError:
+            raise  # a store failure, not this visit's value: never overwritten, never served
         except StoreError as exc:
             # Another format (an older or newer cairn) or damage: the visit starts afresh.
             log.warning("unreadable session state replaced by a new visit: %s", exc)

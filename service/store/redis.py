@@ -73,7 +73,8 @@ def stored_value(raw: Any) -> bytes | None:
     """A GET reply as the store returns it; StoreError for anything but a value or nil. Once, in a
     full test run, the cluster client answered a GET with a list while a master was down (cause
     not found); decoding it failed the click with a 500. Whatever such a reply is, it is no session's
-    state, so it counts as a store failure (the visit degrades, the breaker counts it)."""
+    state, so it counts as a store failure (the visit degrades, the breaker counts it). A reply of
+    the right type but another session's value is caught when it is decoded (its owner differs)."""
     if raw is None or isinstance(raw, bytes):
         return raw
     raise StoreError(f"redis GET answered with a {type(raw).__name__}, not a stored value")

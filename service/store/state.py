@@ -1,4 +1,4 @@
-"""A session's state and its one-value binary encoding (format 1).
+"""A session's state and its one-value binary encoding (format 2; format 1 is still read).
 
 One value per session key, so a sharded store (Redis Cluster) never needs cross-slot work.
 Clicks are kept as item ids, not indices, so a model with another vocabulary can replay them.
@@ -6,17 +6,25 @@ Clicks are kept as item ids, not indices, so a model with another vocabulary can
 Layout, big-endian (`struct`):
 
     offset  size  field
-    0       1     format version (1)
+    0       1     format version (2)
     1       8     sequence: clicks applied so far (u64)        } the check-and-set token: bytes 1..16,
     9       8     nonce: random, fixed for the visit (u64)      } compared by the stores before a write
-    17      8     last_seen: unix seconds (f64)
-    25      1     number of clicks kept (u8)
-    26      1     number of event ids kept (u8)
-    27      2     model tag length in bytes (u16), 0: no hidden state
-    29      4     hidden length in bytes (u32)
-    33      4     previous hidden length in bytes (u32)
-    37      ...   model tag (utf-8), hidden, previous hidden (float32 [L, H], C order),
+    17      8     owner: the session id's fingerprint (u64, the first 8 bytes of BLAKE2b of its UTF-8)
+    25      8     last_seen: unix seconds (f64)
+    33      1     number of clicks kept (u8)
+    34      1     number of event ids kept (u8)
+    35      2     model tag length in bytes (u16), 0: no hidden state
+    37      4     hidden length in bytes (u32)
+    41      4     previous hidden length in bytes (u32)
+    45      ...   model tag (utf-8), hidden, previous hidden (float32 [L, H], C order),
                   then each click id and each event id as u16 length + utf-8 bytes
+
+Format 1 is the same without `owner`; such values (written before this format) are read as they
+are, so a rolling upgrade keeps its visits, and replaced by format 2 at their next click.
+
+`owner` binds a value to its session: a store reply that carries another session's state (a
+client that matched a reply to the wrong command, a key written by mistake) is refused as a
+`ForeignStateError`, a store failure, rather than served as this visit's clicks.
 
 `hidden` is the GRU state after the last known click; `previous_hidden` the state before it, so the
 current list of a visit can be recomputed with one step instead of a replay. Both are valid only for
@@ -26,17 +34,23 @@ DELETE, so a write computed from the old visit cannot land on the new one with t
 
 from __future__ import annotations
 
+import hashlib
 import secrets
 import struct
 from dataclasses import dataclass, field
 
-from service.errors import StoreError
+from service.errors import ForeignStateError, StoreError
 
-FORMAT_VERSION = 1
-_HEAD = struct.Struct(">BQQdBBHII")
+FORMAT_VERSION = 2
+_HEAD = struct.Struct(">BQQQdBBHII")  # format 2
+_HEAD_V1 = struct.Struct(">BQQdBBHII")  # format 1: no owner
 _LEN = struct.Struct(">H")
 TOKEN_SLICE = slice(1, 17)  # sequence + nonce: what a check-and-set compares
 NEW_TOKEN = b""  # expected token of a session that must not exist yet
+
+
+def owner_of(session_id: str) -> int:
+    return int.from_bytes(hashlib.blake2b(session_id.encode(), digest_size=8).digest(), "big")
 
 
 @dataclass(frozen=True)
@@ -52,10 +66,10 @@ class SessionState:
 
     @property
     def token(self) -> bytes:
-        return _HEAD.pack(FORMAT_VERSION, self.sequence, self.nonce, 0.0, 0, 0, 0, 0, 0)[TOKEN_SLICE]
+        return _HEAD.pack(FORMAT_VERSION, self.sequence, self.nonce, 0, 0.0, 0, 0, 0, 0, 0)[TOKEN_SLICE]
 
 
-def encode(state: SessionState) -> bytes:
+def encode(state: SessionState, session_id: str) -> bytes:
     if len(state.items) > 255 or len(state.event_ids) > 255:
         raise StoreError(f"session state keeps at most 255 clicks and event ids, got {len(state.items)}, {len(state.event_ids)}")
     tag = (state.model_tag or "").encode()
@@ -66,6 +80,7 @@ def encode(state: SessionState) -> bytes:
             FORMAT_VERSION,
             state.sequence,
             state.nonce,
+            owner_of(session_id),
             state.last_seen,
             len(state.items),
             len(state.event_ids),
@@ -84,13 +99,23 @@ def encode(state: SessionState) -> bytes:
     return b"".join(parts)
 
 
-def decode(value: bytes) -> SessionState:
-    """Parse one stored value; a value of another format or a damaged one raises StoreError."""
+def decode(value: bytes, session_id: str) -> SessionState:
+    """Parse the value stored for `session_id`: ForeignStateError when it names another session as
+    its owner; StoreError for a value of another format or a damaged one."""
     try:
-        version, sequence, nonce, last_seen, n_items, n_events, n_tag, n_hidden, n_previous = _HEAD.unpack_from(value, 0)
-        if version != FORMAT_VERSION:
-            raise StoreError(f"session state format {version}, this cairn reads {FORMAT_VERSION}")
-        pos = _HEAD.size
+        if not value:
+            raise StoreError("empty session state")
+        version = value[0]
+        if version == FORMAT_VERSION:
+            version, sequence, nonce, owner, last_seen, n_items, n_events, n_tag, n_hidden, n_previous = _HEAD.unpack_from(value, 0)
+            if owner != owner_of(session_id):
+                raise ForeignStateError("the session store answered with another session's state")
+            pos = _HEAD.size
+        elif version == 1:
+            version, sequence, nonce, last_seen, n_items, n_events, n_tag, n_hidden, n_previous = _HEAD_V1.unpack_from(value, 0)
+            pos = _HEAD_V1.size
+        else:
+            raise StoreError(f"session state format {version}, this cairn reads 1 and {FORMAT_VERSION}")
         tag = value[pos : pos + n_tag].decode()
         pos += n_tag
         hidden = value[pos : pos + n_hidden]

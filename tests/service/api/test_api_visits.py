@@ -104,9 +104,30 @@ def test_integer_item_id_is_stored_as_its_decimal_string(fresh_server, sid, redi
         click(c, session, "42")
         click(c, session, CLICKS[0])
     raw = redis_sync.Redis.from_url(redis_url).get(f"{running.settings.redis_prefix}s:{session}")
-    state = decode(raw)
+    state = decode(raw, session)
     assert state.items == ("42", "42", CLICKS[0]) and state.sequence == 3
     assert state.model_tag == "shop/v1" and len(state.hidden) == 4 * 32  # float32 [1, 32]
+
+
+def test_a_value_of_another_session_is_neither_served_nor_overwritten(fresh_server, sid, redis_url):
+    # As if the store answered one visit's GET with another's value: the key holds a copy of
+    # visit A's state. The click on B must not build its answer from A's clicks, nor replace it.
+    import redis as redis_sync
+
+    running = fresh_server("redis")
+    plain = redis_sync.Redis.from_url(redis_url)
+    a, b = sid(), sid()
+    prefix = running.settings.redis_prefix
+    with running.client() as c:
+        click(c, a, CLICKS[0])
+        foreign = plain.get(f"{prefix}s:{a}")
+        plain.set(f"{prefix}s:{b}", foreign)
+        answer = click(c, b, CLICKS[1])
+        assert answer["fallback_reason"] == "store_unavailable" and answer["served_by"] == "neighbours"
+        assert answer["sequence"] == 0 and answer["recorded"] == "no"
+        current = c.get(f"/v1/sessions/{b}/recommendations")
+        assert current.status_code == 200 and current.json()["fallback_reason"] == "store_unavailable"
+    assert plain.get(f"{prefix}s:{b}") == foreign and decode(plain.get(f"{prefix}s:{a}"), a).items == (CLICKS[0],)
 
 
 def test_duplicate_event_is_acknowledged_once(server, sid):

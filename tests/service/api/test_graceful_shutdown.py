@@ -65,7 +65,7 @@ def test_sigterm_under_load_finishes_in_flight_clicks_and_loses_none(model_store
         try:
             for session, sequence in acknowledged.items():
                 raw = client.get(f"{prefix}s:{session}")
-                assert raw is not None and decode(raw).sequence >= sequence, (session, sequence)
+                assert raw is not None and decode(raw, session).sequence >= sequence, (session, sequence)
         finally:
             client.close()
     finally:

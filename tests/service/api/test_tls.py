@@ -100,7 +100,7 @@ def test_redis_store_with_auth_and_tls(redis_tls, certificate):
         store = store_for(good)
         try:
             await store.ping()
-            value = encode(SessionState(items=("a",), sequence=1))
+            value = encode(SessionState(items=("a",), sequence=1), "s")
             assert await store.save("s", value, NEW_TOKEN) and await store.load("s") == value
         finally:
             await store.close()

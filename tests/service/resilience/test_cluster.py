@@ -39,12 +39,12 @@ def test_cluster_store_check_and_set(cluster):
         store = RedisClusterStore(url_of(cluster[:1]), ttl_s=60, pool_size=4, timeout_s=1.0, connect_timeout_s=1.0, prefix="cas:")
         try:
             first = SessionState(items=("a",), sequence=1)
-            v1 = encode(first)
+            v1 = encode(first, "s")
             assert await store.save("s", v1, NEW_TOKEN)
             assert not await store.save("s", v1, NEW_TOKEN)  # exists already
-            v2 = encode(SessionState(items=("a", "b"), sequence=2, nonce=first.nonce))
+            v2 = encode(SessionState(items=("a", "b"), sequence=2, nonce=first.nonce), "s")
             assert await store.save("s", v2, token_of(v1))
-            assert not await store.save("s", encode(SessionState(sequence=2, nonce=first.nonce)), token_of(v1))  # stale token
+            assert not await store.save("s", encode(SessionState(sequence=2, nonce=first.nonce), "s"), token_of(v1))  # stale token
             assert await store.load("s") == v2
             await store.delete("s")
             assert await store.load("s") is None
@@ -75,7 +75,7 @@ def test_sessions_spread_over_all_masters(cluster, start_server, offline, sid, k
     assert set().union(*held.values()) == set(sessions) and sum(map(len, held.values())) == len(sessions)  # each exactly once
     for n in cluster:
         for s in held[n.port]:
-            assert decode(redis_sync.Redis(port=n.port).get(f"{server.settings.redis_prefix}s:{s}")).sequence == 2
+            assert decode(redis_sync.Redis(port=n.port).get(f"{server.settings.redis_prefix}s:{s}"), s).sequence == 2
 
 
 def test_a_stopped_master_degrades_only_its_own_sessions(cluster, start_server, offline, sid, kit):

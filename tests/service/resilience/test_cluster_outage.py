@@ -38,7 +38,7 @@ def test_failed_commands_rebuild_the_slot_map_at_most_once_a_second(cluster):
         try:
             sessions = [f"p{i}" for i in range(30)]
             for s in sessions:
-                assert await store.save(s, encode(SessionState(items=("a",), sequence=1)), NEW_TOKEN)
+                assert await store.save(s, encode(SessionState(items=("a",), sequence=1), s), NEW_TOKEN)
             victim = owner(cluster, store.key(sessions[0]))
             lost = [s for s in sessions if owner(cluster, store.key(s)) is victim]
             kept = [s for s in sessions if s not in lost]

@@ -46,7 +46,7 @@ def test_failing_model_falls_back_keeps_every_click_and_replays_them(start_serve
         assert current["fallback_reason"] == "model_unavailable" and current["sequence"] == 7
 
     plain = redis_sync.Redis.from_url(shared_redis.url)
-    stored = {s: decode(plain.get(f"{server.settings.redis_prefix}s:{s}")) for s in (a, b)}
+    stored = {s: decode(plain.get(f"{server.settings.redis_prefix}s:{s}"), s) for s in (a, b)}
     for s in (a, b):
         assert stored[s].items == tuple(clicks[s][:7]) and stored[s].sequence == 7
         assert stored[s].hidden is None and stored[s].model_tag is None  # no stale hidden state kept: replay marked

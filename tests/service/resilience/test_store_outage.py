@@ -64,7 +64,7 @@ def test_redis_killed_mid_load_and_restarted(start_server, own_redis, offline, s
             last[session] = answer["sequence"]
     assert last
     for session, sequence in last.items():
-        assert decode(plain.get(f"{server.settings.redis_prefix}s:{session}")).sequence == sequence
+        assert decode(plain.get(f"{server.settings.redis_prefix}s:{session}"), session).sequence == sequence
     assert kit.metric(metrics, "cairn_breaker_transitions_total", breaker="store", **{"from": "closed", "to": "open"}) >= 1
     assert kit.metric(metrics, "cairn_breaker_transitions_total", breaker="store", **{"from": "half-open", "to": "closed"}) >= 1
     assert kit.metric(metrics, "cairn_breaker_state", breaker="store") == 0

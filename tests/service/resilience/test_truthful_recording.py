@@ -34,7 +34,7 @@ def stored(server: RedisProcess, prefix: str, session: str):
         raw = client.get(f"{prefix}s:{session}")
     finally:
         client.close()
-    return None if raw is None else decode(raw)
+    return None if raw is None else decode(raw, session)
 
 
 def settle(server: RedisProcess, prefix: str, session: str, sequence: int) -> None:

@@ -96,6 +96,6 @@ def test_every_click_recorded_exactly_once_across_two_workers(two_workers, share
     assert len(served) == 2 and sum(served.values()) == len(requests) and min(served.values()) > 0, served
     plain = redis_sync.Redis.from_url(shared_redis.url)
     for k, s in enumerate(sessions):
-        state = decode(plain.get(f"{prefix}s:{s}"))
+        state = decode(plain.get(f"{prefix}s:{s}"), s)
         assert state.sequence == CLICKS_EACH
         assert sorted(state.event_ids) == sorted(f"ev-{k}-{n}" for n in range(CLICKS_EACH))

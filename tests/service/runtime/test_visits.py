@@ -73,7 +73,7 @@ def test_two_workers_racing_on_one_visit_lose_no_click(settings):
             answers = await asyncio.gather(
                 *(workers[n % 2].click("race", f"sku-{n:06d}", None, 5, True, 10.0, Timing()) for n in range(50))
             )
-            final = decode(await store.load("race"))
+            final = decode(await store.load("race"), "race")
         finally:
             await active.close()
             await store.close()
@@ -95,7 +95,7 @@ def test_spent_budget_skips_the_model_and_the_next_click_replays(settings, offli
             await visits.click("d", CLICKS[0], None, 5, True, 10.0, Timing())
             # Started 2 s ago with a 1 s budget: nothing is left, so the model is not even started.
             late = await visits.click("d", CLICKS[1], None, 5, True, 1.0, Timing(started=time.perf_counter() - 2.0))
-            stored = decode(await store.load("d"))
+            stored = decode(await store.load("d"), "d")
             after = await visits.click("d", CLICKS[2], None, 5, True, 10.0, Timing())
         finally:
             await active.close()

@@ -29,13 +29,13 @@ async def click(store: RedisStore, session_id: str, item: str) -> int:
     Returns the rounds it took."""
     for rounds in range(1, 1000):
         raw = await store.load(session_id)
-        state = decode(raw) if raw is not None else None
+        state = decode(raw, session_id) if raw is not None else None
         new = SessionState(
             items=((*state.items, item) if state else (item,))[-20:],
             sequence=(state.sequence if state else 0) + 1,
             **({"nonce": state.nonce} if state else {}),
         )
-        if await store.save(session_id, encode(new), token_of(raw)):
+        if await store.save(session_id, encode(new, session_id), token_of(raw)):
             return rounds
     raise AssertionError("a click never landed")
 
@@ -44,7 +44,7 @@ def test_replies_reach_their_own_callers(redis_url):
     async def go():
         store = redis_store(redis_url, "pipe-order:")
         try:
-            values = {f"s{i}": encode(SessionState(items=(f"item-{i}",) * (i % 7 + 1), sequence=1)) for i in range(300)}
+            values = {f"s{i}": encode(SessionState(items=(f"item-{i}",) * (i % 7 + 1), sequence=1), f"s{i}") for i in range(300)}
             assert all(await asyncio.gather(*(store.save(k, v, NEW_TOKEN) for k, v in values.items())))
             got = await asyncio.gather(*(store.load(k) for k in values), store.load("absent"))
             assert got[:-1] == list(values.values()) and got[-1] is None
@@ -62,7 +62,7 @@ def test_concurrent_clicks_of_one_visit_lose_none(redis_url):
         try:
             items = [f"i{n}" for n in range(60)]
             rounds = await asyncio.gather(*(click(stores[n % 2], "visit", item) for n, item in enumerate(items)))
-            state = decode(await stores[0].load("visit"))
+            state = decode(await stores[0].load("visit"), "visit")
             assert state.sequence == len(items)  # every click applied once
             assert len(state.items) == 20 and len(set(state.items)) == 20 and set(state.items) <= set(items)  # 20 kept (this helper's cap), each a distinct click of the visit
             assert max(rounds) > 1  # they did race: some lost a round and retried
@@ -79,12 +79,12 @@ def test_every_write_sets_the_ttl_and_a_flushed_script_cache_is_refilled(redis_u
     async def go():
         store = redis_store(redis_url, "pipe-ttl:", ttl_s=30.0)
         try:
-            v1 = encode(SessionState(items=("a",), sequence=1))
+            v1 = encode(SessionState(items=("a",), sequence=1), "s")
             assert await store.save("s", v1, NEW_TOKEN)
             assert 29_000 < plain.pttl("pipe-ttl:s:s") <= 30_000
             plain.pexpire("pipe-ttl:s:s", 5_000)
             plain.script_flush()  # as after a Redis restart: EVALSHA answers NOSCRIPT, EVAL follows
-            v2 = encode(SessionState(items=("a", "b"), sequence=2, nonce=decode(v1).nonce))
+            v2 = encode(SessionState(items=("a", "b"), sequence=2, nonce=decode(v1, "s").nonce), "s")
             assert await store.save("s", v2, token_of(v1))
             assert 29_000 < plain.pttl("pipe-ttl:s:s") <= 30_000  # restarted by the write
             assert not await store.save("s", v2, token_of(v1))  # stale token, script cached again
@@ -102,7 +102,7 @@ def test_a_caller_that_gives_up_leaves_the_connection_usable(redis_url):
         async def go():
             store = redis_store(proxy.url, "pipe-cancel:", timeout_s=2.0)
             try:
-                value = encode(SessionState(items=("a",), sequence=1))
+                value = encode(SessionState(items=("a",), sequence=1), "s")
                 assert await store.save("s", value, NEW_TOKEN)
                 proxy.delay_s = 0.2
                 with pytest.raises(TimeoutError):
@@ -148,7 +148,7 @@ def test_a_restarted_redis_is_reached_again_by_the_next_command():
     async def go():
         store = redis_store(redis.url, "pipe-restart:")
         try:
-            value = encode(SessionState(items=("a",), sequence=1))
+            value = encode(SessionState(items=("a",), sequence=1), "s")
             assert await store.save("s", value, NEW_TOKEN)
             redis.kill()
             with pytest.raises(StoreError):

@@ -89,7 +89,7 @@ def test_one_worker_reads_a_visit_once_then_starts_from_its_own_writes(settings_
         try:
             answers = [await _click(worker, "one-worker", f"sku-{n:06d}") for n in range(8)]
             stored = await store.inner.load("one-worker")
-            final = decode(stored)
+            final = decode(stored, "one-worker")
             # What the next click starts from without decoding: the stored value and exactly its state.
             assert worker.recent.lookup("one-worker") == (stored, final)
         finally:
@@ -118,7 +118,7 @@ def test_a_visit_moving_between_workers_loses_no_click_and_matches_one_worker(se
             # a, a, b, a, b, b, a: each switch leaves the other worker's entry stale.
             moved = [await _click(w, "moving", item) for w, item in zip((a, a, b, a, b, b, a), items)]
             stayed = [await _click(reference, "staying", item) for item in items]
-            final = decode(await store.inner.load("moving"))
+            final = decode(await store.inner.load("moving"), "moving")
         finally:
             await active.close()
             await reference_active.close()

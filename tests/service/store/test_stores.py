@@ -33,23 +33,23 @@ def redis_store(url: str, prefix: str, ttl_s: float = 60.0, **kw) -> RedisStore:
 
 async def check_and_set_semantics(store) -> None:
     first = SessionState(items=("a",), sequence=1)
-    v1 = encode(first)
+    v1 = encode(first, "s")
     assert await store.save("s", v1, NEW_TOKEN)
     assert not await store.save("s", v1, NEW_TOKEN)  # exists already
     assert await store.load("s") == v1
     second = SessionState(items=("a", "b"), sequence=2, nonce=first.nonce)
-    v2 = encode(second)
+    v2 = encode(second, "s")
     assert await store.save("s", v2, token_of(v1))
-    assert not await store.save("s", encode(SessionState(sequence=2, nonce=first.nonce)), token_of(v1))  # stale token
+    assert not await store.save("s", encode(SessionState(sequence=2, nonce=first.nonce), "s"), token_of(v1))  # stale token
     assert await store.load("s") == v2
     # After a DELETE a new visit may reach the same sequence; the nonce keeps the old visit's write out.
     await store.delete("s")
     await store.delete("s")  # idempotent
     assert await store.load("s") is None
     other = SessionState(items=("x",), sequence=1)
-    assert await store.save("s", encode(other), NEW_TOKEN)
+    assert await store.save("s", encode(other, "s"), NEW_TOKEN)
     late = SessionState(items=("a", "b", "c"), sequence=2, nonce=first.nonce)
-    assert not await store.save("s", encode(late), token_of(v1))
+    assert not await store.save("s", encode(late, "s"), token_of(v1))
     await store.save_active_model(b'{"x": 1}')
     assert await store.load_active_model() == b'{"x": 1}'
     await store.ping()
@@ -75,11 +75,11 @@ def test_memory_ttl_counts_from_the_last_write():
     store = MemoryStore(max_entries=10, ttl_s=30.0, clock=clock)
 
     async def go():
-        v = encode(SessionState(sequence=1))
+        v = encode(SessionState(sequence=1), "s")
         await store.save("s", v, NEW_TOKEN)
         clock.now += 20
         assert await store.load("s") == v  # reading does not extend the timeout
-        v2 = encode(SessionState(sequence=2))
+        v2 = encode(SessionState(sequence=2), "s")
         assert await store.save("s", v2, token_of(v))  # writing does
         clock.now += 29
         assert await store.load("s") == v2
@@ -95,9 +95,9 @@ def test_memory_evicts_least_recently_used():
 
     async def go():
         for name in "abc":
-            await store.save(name, encode(SessionState()), NEW_TOKEN)
+            await store.save(name, encode(SessionState(), name), NEW_TOKEN)
         await store.load("a")  # a is now the most recently used
-        await store.save("d", encode(SessionState()), NEW_TOKEN)
+        await store.save("d", encode(SessionState(), "d"), NEW_TOKEN)
         assert len(store) == 3
         assert await store.load("b") is None
         assert all([await store.load(n) is not None for n in "acd"])
@@ -111,9 +111,9 @@ def test_memory_drops_expired_entries_on_write():
 
     async def go():
         for i in range(5):
-            await store.save(str(i), encode(SessionState()), NEW_TOKEN)
+            await store.save(str(i), encode(SessionState(), str(i)), NEW_TOKEN)
         clock.now += 11
-        await store.save("new", encode(SessionState()), NEW_TOKEN)
+        await store.save("new", encode(SessionState(), "new"), NEW_TOKEN)
         assert len(store) == 1
 
     run(go())
@@ -125,11 +125,11 @@ def test_redis_sets_the_ttl_on_every_write(redis_url):
     async def go():
         store = redis_store(redis_url, "ttl:", ttl_s=30.0)
         try:
-            v = encode(SessionState(sequence=1))
+            v = encode(SessionState(sequence=1), "s")
             await store.save("s", v, NEW_TOKEN)
             assert 29_000 < plain.pttl("ttl:s:s") <= 30_000
             plain.pexpire("ttl:s:s", 5_000)
-            await store.save("s", encode(SessionState(sequence=2)), token_of(v))
+            await store.save("s", encode(SessionState(sequence=2), "s"), token_of(v))
             assert 29_000 < plain.pttl("ttl:s:s") <= 30_000  # restarted by the write
         finally:
             await store.close()
@@ -179,7 +179,7 @@ def test_a_reply_of_the_wrong_shape_is_a_store_error_not_a_state(redis_url):
     async def go():
         store = redis_store(redis_url, "shape:")
         try:
-            value = encode(SessionState(items=("a",), sequence=1))
+            value = encode(SessionState(items=("a",), sequence=1), "s")
             assert await store.save("s", value, NEW_TOKEN)
             assert await store.load("s") == value  # the real replies pass the checks
             # The base class's path (redis-py's client, as the cluster store uses it) with a GET
