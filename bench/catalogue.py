@@ -42,7 +42,7 @@ from bench.harness.processes import launch, stop_process, wait_http
 from bench.reporting import write_report
 from offline.evaluate.scoring_paths import parse_scoring
 from service.artifacts.item_vectors import DEFAULT_PRECISIONS, PRECISIONS
-from bench.service import COUNT, Connection, bench_cores, click_stream, pct, saturate, service_environment
+from bench.service import bench_cores, click_stream, paced, saturate, service_environment
 from service.errors import BenchError
 
 TOP = 20
@@ -160,28 +160,15 @@ def memory_of(pid: int) -> dict[str, float]:
     return {"rss_mb": mb(fields.get("Rss", 0)), "private_mb": mb(private), "shared_mb": mb(shared), "anonymous_mb": mb(fields.get("Anonymous", 0))}
 
 
-async def paced(port: int, items: list[str], clicks: int) -> dict:
-    """`clicks` clicks at about PACED_RATE per second over PACED_CONNECTIONS connections."""
-    latencies: list[float] = []
-    errors = 0
-    interval = PACED_CONNECTIONS / PACED_RATE
+def paced_at_rate(port: int, items: list[str], clicks: int) -> dict:
+    """`clicks` clicks at PACED_RATE per second, evenly spaced over PACED_CONNECTIONS connections,
+    in visits of 40 clicks (bench.service.paced)."""
+    per_connection = -(-clicks // PACED_CONNECTIONS)
 
-    async def sender(c: int) -> None:
-        nonlocal errors
-        conn = await Connection.open(port)
-        try:
-            for k in range(c, clicks, PACED_CONNECTIONS):
-                start = time.perf_counter()
-                body = b'{"item_id":"%s","count":%d}' % (items[k % len(items)].encode(), COUNT)
-                status, _ = await conn.post(f"/v1/sessions/paced-{c}-{k // 40}/clicks", body)
-                latencies.append((time.perf_counter() - start) * 1e3)
-                errors += status != 200
-                await asyncio.sleep(max(0.0, interval - (time.perf_counter() - start)))
-        finally:
-            conn.close()
+    def click_of(c: int, n: int) -> tuple[str, str]:
+        return f"paced-{c}-{n // 40}", items[(c * per_connection + n) % len(items)]
 
-    await asyncio.gather(*(sender(c) for c in range(PACED_CONNECTIONS)))
-    return {"clicks": len(latencies), "p50_ms": round(pct(latencies, 50), 2), "p99_ms": round(pct(latencies, 99), 2), "errors": errors}
+    return asyncio.run(paced(port, click_of, PACED_RATE, PACED_CONNECTIONS, clicks, max_seconds=clicks / PACED_RATE + 5.0))
 
 
 def answered_by(port: int) -> dict[str, float]:
@@ -215,8 +202,8 @@ def serve_and_measure(store: Path, name_version: tuple[str, str], path: str, cor
         wait_http(proc, port, "/readyz", timeout_s=300.0, log_path=log)
         ready_s = time.perf_counter() - t0
         os.sched_setaffinity(0, {cores[1]})
-        asyncio.run(paced(port, rotated(items, 5000), 50))  # warm-up
-        at_rate = asyncio.run(paced(port, items, args.paced_clicks))
+        paced_at_rate(port, rotated(items, 5000), 50)  # warm-up
+        at_rate = paced_at_rate(port, items, args.paced_clicks)
         at_8 = asyncio.run(saturate(port, rotated(items, 20000), 8, args.max_clicks, args.max_seconds, 1.0))
         memory = memory_of(proc.pid)
         return {"ready_s": round(ready_s, 1), "paced_50_per_s": at_rate, "concurrency_8": at_8, "memory": memory, "answers": answered_by(port)}

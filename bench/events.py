@@ -19,18 +19,16 @@ the clicks answered), and the median over rounds of the p99 with events within 5
 from __future__ import annotations
 
 import argparse
-import asyncio
 import re
 import shutil
 import statistics
 import sys
-import time
 from pathlib import Path
 
 from bench.harness.ports import free_port
 from bench.harness.processes import launch, stop_all, wait_http
 from bench.reporting import write_report
-from bench.service import COUNT, Connection, build_rig, environment_info, pct, service_environment
+from bench.service import Connection, build_rig, environment_info, paced, service_environment
 from offline.online.event_source import read_events
 from service.errors import BenchError
 
@@ -38,34 +36,15 @@ TARGET_P99_RATIO = 1.05
 CONNECTIONS = 16
 
 
-async def paced(port: int, items: list[str], rate: float, seconds: float, offset: int) -> dict:
-    latencies: list[float] = []
-    errors = 0
-    interval = CONNECTIONS / rate
-    start = time.perf_counter() + 0.05
+async def paced_round(port: int, items: list[str], rate: float, seconds: float, offset: int) -> dict:
+    """`seconds` of clicks at `rate`, evenly spaced over CONNECTIONS connections, in visits of 8
+    clicks (bench.service.paced); `offset` gives each round clicks and visits of its own."""
 
-    async def connection(c: int) -> None:
-        nonlocal errors
-        conn = await Connection.open(port)
-        k = offset + c * 7919
-        due = start + c * interval / CONNECTIONS
-        try:
-            while due < start + seconds:
-                delay = due - time.perf_counter()
-                if delay > 0:
-                    await asyncio.sleep(delay)
-                session = f"ev-{offset}-{c}-{(k // 8) % 256}"  # visits of 8 clicks
-                body = b'{"item_id":"%s","count":%d}' % (items[k % len(items)].encode(), COUNT)
-                k += 1
-                status, _ = await conn.post(f"/v1/sessions/{session}/clicks", body)
-                latencies.append((time.perf_counter() - due) * 1e3)
-                errors += status != 200
-                due += interval
-        finally:
-            conn.close()
+    def click_of(c: int, n: int) -> tuple[str, str]:
+        k = offset + c * 7919 + n
+        return f"ev-{offset}-{c}-{(k // 8) % 256}", items[k % len(items)]
 
-    await asyncio.gather(*(connection(c) for c in range(CONNECTIONS)))
-    return {"clicks": len(latencies), "p50_ms": pct(latencies, 50), "p99_ms": pct(latencies, 99), "errors": errors}
+    return await paced(port, click_of, rate, CONNECTIONS, max_clicks=int(rate * seconds) + CONNECTIONS, max_seconds=seconds)
 
 
 async def event_counters(port: int) -> tuple[float, float]:
@@ -113,12 +92,12 @@ def main(argv: list[str] | None = None) -> int:
             )  # fmt: skip
             procs.append(proc)
             wait_http(proc, port, "/readyz")
-            warm[variant] = uvloop.run(paced(port, rig.items, args.rate / 4, 1.0, offset=999_999))["clicks"]
+            warm[variant] = uvloop.run(paced_round(port, rig.items, args.rate / 4, 1.0, offset=999_999))["clicks"]
             ports[variant] = port
         rounds: dict[str, list[dict]] = {"off": [], "on": []}
         for r in range(args.rounds):
             for variant in (("off", "on") if r % 2 == 0 else ("on", "off")):
-                result = uvloop.run(paced(ports[variant], rig.items, args.rate, args.round_seconds, offset=r * 100_000))
+                result = uvloop.run(paced_round(ports[variant], rig.items, args.rate, args.round_seconds, offset=r * 100_000))
                 rounds[variant].append(result)
                 print(f"round {r + 1} {variant:>3}: {result['clicks']} clicks, p50 {result['p50_ms']:.2f} ms, p99 {result['p99_ms']:.2f} ms")
         written, dropped = uvloop.run(event_counters(ports["on"]))

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import itertools
 import os
 import platform
 import re
@@ -35,6 +36,7 @@ import statistics
 import sys
 import tempfile
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -221,6 +223,47 @@ async def sequential_clicks(port: int, items: list[str], n: int, sessions: int =
     finally:
         conn.close()
     return out
+
+
+async def paced(
+    port: int,
+    click_of: Callable[[int, int], tuple[str, str]],
+    rate: float,
+    connections: int,
+    max_clicks: int,
+    max_seconds: float,
+) -> dict:
+    """Clicks open loop at `rate` per second, evenly spaced and spread over `connections` keep-alive
+    connections (connection c sends the clicks due at start + (n * connections + c) / rate), each
+    timed from when it was due, so an answer that comes late delays the next one's clock too (no
+    coordinated omission, common practice). `click_of(c, n)` gives the n-th click of connection c as
+    (session id, item id). Bounded by clicks and by time."""
+    latencies: list[float] = []
+    errors = 0
+    start = time.perf_counter() + 0.05
+
+    async def connection(c: int) -> None:
+        nonlocal errors
+        conn = await Connection.open(port)
+        try:
+            for n in itertools.count():
+                slot = n * connections + c
+                due = start + slot / rate
+                if slot >= max_clicks or due >= start + max_seconds:
+                    break
+                delay = due - time.perf_counter()
+                if delay > 0:
+                    await asyncio.sleep(delay)
+                session, item = click_of(c, n)
+                body = b'{"item_id":"%s","count":%d}' % (item.encode(), COUNT)
+                status, _ = await conn.post(f"/v1/sessions/{session}/clicks", body)
+                latencies.append((time.perf_counter() - due) * 1e3)
+                errors += status != 200
+        finally:
+            conn.close()
+
+    await asyncio.gather(*(connection(c) for c in range(connections)))
+    return {"clicks": len(latencies), "p50_ms": round(pct(latencies, 50), 2), "p99_ms": round(pct(latencies, 99), 2), "errors": errors}
 
 
 async def saturate(port: int, items: list[str], concurrency: int, max_clicks: int, max_seconds: float, warmup_s: float) -> dict:
