@@ -44,7 +44,6 @@ from service.artifacts.item_vectors import (
     EMBEDDING,
     FEATURE_GRAPH,
     FEATURE_GRAPH_FORMAT,
-    FEATURE_ZERO_POINT,
     INT4_BLOCK,
     INT4_LEVELS,
     INT4_ZERO_POINT,
@@ -298,46 +297,43 @@ def build_feature_graph(w: _StepWeights) -> bytes:
 def build_candidate_graph(precision: str, dim: int) -> bytes:
     """Approximate scores of every item from reduced-precision item vectors, and the best `k`.
 
-    inputs   fp16: features float32 [B, D]; codes float16 [D, n_items]
-             int8: features uint8 [B, D] (code + 128) and feature_scales float32 [B, 1] (the
-             caller quantises each row symmetrically to -127..127); codes int8 [D, n_items];
-             scales float32 [n_items]
-             both: bias float32 [n_items]; k int64 [1]
+    inputs   features float32 [B, D]; bias float32 [n_items]; k int64 [1]
+             fp16 only: codes float16 [D, n_items]
     outputs  candidates int64 [B, k], approx float32 [B, k] (descending)
-    The item tables are inputs, not initialisers: the service feeds its read-only memory maps of the
-    artifact's arrays, so every worker reads the same pages. int8: MatMulInteger (uint8 features
-    with zero point 128, int8 item codes), accumulated in int32, then acc * feature_scale *
-    item_scale + bias. Why item codes of 7 bits (-63..63, see _codes): ONNX Runtime's
-    uint8 x int8 kernel on AVX2 without VNNI adds pairs of products in saturating int16
-    (vpmaddubsw); 255 * 63 * 2 < 32767 keeps every pair exact (ONNX Runtime's quantisation tool
-    offers the same "reduce_range" for this). Its int8 x int8 and uint8 x uint8 kernels are exact
-    but were 3-4x slower here than float32 (tests/service/runtime/test_reduced_step.py checks the
-    products are exact).
+
+    fp16: the table is an input, not an initialiser: the service feeds its read-only memory map
+    of the artifact's array, so every worker reads the same pages.
+
+    int8: DynamicQuantizeMatMul (com.microsoft domain): the features are quantised to uint8 per
+    call (asymmetric, one scale for the batch), multiplied with the int8 item codes [D, n_items] in
+    integers and scaled per item (`scales` [n_items]), the bias added in the same operator. The
+    table is an initialiser, as for int4 (see build_int4_candidate_graph): the graph holds one-item
+    placeholders named `codes` and `scales` that the service replaces with the memory-mapped
+    arrays, and ONNX Runtime packs its own copy for its integer GEMM (about 100 bytes an item at
+    D = 100: a private 100 MB per worker at a million items). Packed, a batch of 8 rows costs about
+    1.3x one row (one row 1.5 ms, 8 rows 2.1 ms at 200,000 items here), where MatMulNBits' int4
+    costs 7x. Why item codes of 7 bits (-63..63, see _codes): ONNX Runtime's uint8 x int8 kernel
+    on AVX2 without VNNI adds pairs of products in saturating int16 (vpmaddubsw); 255 * 63 * 2 <
+    32767 keeps every pair exact (ONNX Runtime's quantisation tool offers the same
+    "reduce_range" for this). Artifacts exported before int8 was packed hold a MatMulInteger graph
+    that takes the table as an input (the manifest's `item_vectors.packed` tells them apart).
     """
     nodes: list[onnx.NodeProto] = []
-    inputs: list[onnx.ValueInfoProto] = []
+    inputs = [helper.make_tensor_value_info("features", TensorProto.FLOAT, ["batch", dim])]
     inits: list[onnx.TensorProto] = []
     if precision == "int8":
-        inputs += [
-            helper.make_tensor_value_info("features", TensorProto.UINT8, ["batch", dim]),
-            helper.make_tensor_value_info("feature_scales", TensorProto.FLOAT, ["batch", 1]),
-            helper.make_tensor_value_info("codes", TensorProto.INT8, [dim, "n_items"]),
-            helper.make_tensor_value_info("scales", TensorProto.FLOAT, ["n_items"]),
+        inits += [
+            numpy_helper.from_array(np.zeros((dim, 1), dtype=np.int8), "codes"),
+            numpy_helper.from_array(np.ones(1, dtype=np.float32), "scales"),
         ]
-        inits.append(numpy_helper.from_array(np.array(FEATURE_ZERO_POINT, dtype=np.uint8), "feature_zero"))
-        nodes += [
-            helper.make_node("MatMulInteger", ["features", "codes", "feature_zero"], ["acc"]),  # int32 [B, n_items]
-            helper.make_node("Cast", ["acc"], ["acc_f"], to=TensorProto.FLOAT),
-            helper.make_node("Mul", ["acc_f", "feature_scales"], ["unscaled"]),
-            helper.make_node("Mul", ["unscaled", "scales"], ["logits"]),
-        ]
+        nodes.append(helper.make_node("DynamicQuantizeMatMul", ["features", "codes", "scales", "", "bias"], ["approx_all"], domain="com.microsoft"))
     elif precision == "fp16":
-        inputs.append(helper.make_tensor_value_info("features", TensorProto.FLOAT, ["batch", dim]))
         inputs.append(helper.make_tensor_value_info("codes", TensorProto.FLOAT16, [dim, "n_items"]))
         nodes += [
             helper.make_node("Cast", ["features"], ["f16"], to=TensorProto.FLOAT16),
             helper.make_node("MatMul", ["f16", "codes"], ["logits16"]),
             helper.make_node("Cast", ["logits16"], ["logits"], to=TensorProto.FLOAT),
+            helper.make_node("Add", ["logits", "bias"], ["approx_all"]),
         ]
     else:
         raise ArtifactError(f"no candidate graph for precision {precision!r}")
@@ -345,10 +341,7 @@ def build_candidate_graph(precision: str, dim: int) -> bytes:
         helper.make_tensor_value_info("bias", TensorProto.FLOAT, ["n_items"]),
         helper.make_tensor_value_info("k", TensorProto.INT64, [1]),
     ]
-    nodes += [
-        helper.make_node("Add", ["logits", "bias"], ["approx_all"]),
-        helper.make_node("TopK", ["approx_all", "k"], ["approx", "candidates"], axis=-1, largest=1, sorted=1),
-    ]
+    nodes.append(helper.make_node("TopK", ["approx_all", "k"], ["approx", "candidates"], axis=-1, largest=1, sorted=1))
     graph = helper.make_graph(
         nodes,
         f"cairn_candidates_{precision}",
@@ -359,7 +352,9 @@ def build_candidate_graph(precision: str, dim: int) -> bytes:
         ],
         initializer=inits,
     )
-    return _finish(graph, f"{CANDIDATE_GRAPH_FORMAT}-{precision}").SerializeToString()
+    # The ONNX checker knows no com.microsoft operators; ONNX Runtime checks the graph when it opens it.
+    model = _finish(graph, f"{CANDIDATE_GRAPH_FORMAT}-{precision}", check=precision != "int8", domains=("com.microsoft",) if precision == "int8" else ())
+    return model.SerializeToString()
 
 
 def build_int4_candidate_graph(dim: int, n_items: int) -> bytes:

@@ -15,7 +15,7 @@ reduced-precision copies of the output vectors for a cheaper first pass over eve
     item_scales.npy          float32 [n_items], max_d |v_jd| / 63 (symmetric per item, common practice;
                              7 bits: see offline/export/onnx_graph.build_candidate_graph)
     candidates_fp16.onnx     approximate scores from the fp16 table -> the best k (see onnx_graph.build_candidate_graph)
-    candidates_int8.onnx     the same from the int8 table
+    candidates_int8.onnx     the same from the int8 table (packed: see onnx_graph.build_candidate_graph)
     item_vectors_int4.npy    uint8 [n_items, blocks, INT4_BLOCK / 2]: each item's vector in blocks of
                              INT4_BLOCK coordinates (zero-padded to whole blocks), round(v / scale)
                              + 8 in 1..15, two codes a byte, the lower coordinate in the low half:
@@ -24,7 +24,7 @@ reduced-precision copies of the output vectors for a cheaper first pass over eve
     candidates_int4.onnx     approximate scores from the int4 table
 
 The first four are always there; of the reduced copies, those of the precisions the export was
-asked for (PRECISION_FILES; int4 by default). Every file is in the manifest's checksums. The
+asked for (PRECISION_FILES; int8 by default). Every file is in the manifest's checksums. The
 manifest's `item_vectors` section names the precisions present. An artifact without any of these
 files is still served, by the exact path.
 numpy only.
@@ -55,7 +55,7 @@ ITEM_SCALES_INT4 = "item_scales_int4.npy"
 CANDIDATES_INT4 = "candidates_int4.onnx"
 ITEM_VECTOR_FILES = (FEATURE_GRAPH, EMBEDDING, ITEM_VECTORS, ITEM_BIAS)  # the feature step and the exact re-scoring
 # Each reduced precision's files: an artifact holds those the export was asked for (`cairn export
-# --precisions`, int4 by default: the one `auto` serves); exports before int4 hold fp16 and int8.
+# --precisions`, int8 by default: the one `auto` serves); exports before int4 hold fp16 and int8.
 PRECISION_FILES = {
     "fp16": (ITEM_VECTORS_FP16, CANDIDATES_FP16),
     "int8": (ITEM_VECTORS_INT8, ITEM_SCALES, CANDIDATES_INT8),
@@ -64,7 +64,13 @@ PRECISION_FILES = {
 FEATURE_GRAPH_FORMAT = "cairn-gru-features/1"
 CANDIDATE_GRAPH_FORMAT = "cairn-candidates/1"
 PRECISIONS = tuple(PRECISION_FILES)
-DEFAULT_PRECISIONS = ("int4",)  # what `cairn export` writes unless told: the fastest full pass measured (README, Large catalogues)
+DEFAULT_PRECISIONS = ("int8",)  # what `cairn export` writes unless told: the fastest full pass measured (README, Large catalogues)
+# Precisions whose candidate graph takes the table as its initialisers, replaced by the memory maps
+# when the service opens it (ONNX Runtime then packs its own copy for its fast kernels); the others
+# are fed the table each call. int8 was fed in artifacts exported before its graph was packed:
+# a manifest without `packed` means int4 alone.
+PACKED = ("int8", "int4")
+PACKED_BEFORE_INT8_WAS = ("int4",)
 INT8_LEVELS = 63  # item codes in -63..63
 FEATURE_ZERO_POINT = 128  # features go to the int8 candidate graph as uint8 code + 128
 INT4_BLOCK = 32  # coordinates per int4 block (one scale each)
@@ -78,12 +84,14 @@ def int4_blocks(dim: int) -> int:
 
 
 def item_vectors_manifest(precisions: tuple[str, ...] = DEFAULT_PRECISIONS) -> dict[str, Any]:
-    """The manifest's `item_vectors` section, written by the export: the precisions it holds and their rules."""
+    """The manifest's `item_vectors` section, written by the export: the precisions it holds, their
+    rules, and `packed`: those whose candidate graph takes its table as initialisers (PACKED)."""
     rules = {
         "int8": f"symmetric per item: scale = max|v| / {INT8_LEVELS}",
         "int4": f"symmetric per block of {INT4_BLOCK} coordinates: scale = max|v| / {INT4_LEVELS}, stored code + {INT4_ZERO_POINT}",
     }
-    return {"format": FEATURE_GRAPH_FORMAT, "precisions": list(precisions), **{p: rules[p] for p in precisions if p in rules}}
+    packed = [p for p in precisions if p in PACKED]
+    return {"format": FEATURE_GRAPH_FORMAT, "precisions": list(precisions), "packed": packed, **{p: rules[p] for p in precisions if p in rules}}
 
 
 @dataclass
@@ -96,6 +104,7 @@ class ItemVectors:
     candidate_graphs: dict[str, Path]  # precision -> its candidate graph
     scales: np.ndarray | None = None  # float32 [n_items], the int8 scale of each item, with codes["int8"]
     int4_scales: np.ndarray | None = None  # float32 [n_items, blocks], with codes["int4"]
+    packed: frozenset[str] = frozenset(PACKED_BEFORE_INT8_WAS)  # precisions whose graph takes the table as initialisers
 
     @property
     def n_items(self) -> int:
@@ -143,4 +152,8 @@ def load_item_vectors(path: Path, manifest: dict[str, Any], n_items: int) -> Ite
     if "int8" in held:
         out.scales = np.ascontiguousarray(scales)
     out.candidate_graphs = {p: path / PRECISION_FILES[p][-1] for p in held}
+    packed = manifest["item_vectors"].get("packed", PACKED_BEFORE_INT8_WAS)
+    if not isinstance(packed, list | tuple) or not set(packed) <= set(PACKED):
+        raise ArtifactError(f"{path}: manifest item_vectors.packed is {packed!r}, expected some of {', '.join(PACKED)}")
+    out.packed = frozenset(packed)
     return out

@@ -141,15 +141,19 @@ class LoadedModel:
 # as fast (two ONNX Runtime calls and a re-scoring cost more than one small pass). bench/catalogue.py
 # measured int4 level with exact at 200,000 random items (1.05x the clicks/s at 8 visits), 1.2x at
 # 631,430 trained and 1.4x at 1,000,000 random, int8 no faster than exact, on a 2-core AVX2
-# machine; and the clustered index of a trained 105,402-item model at half exact's p99.
+# machine; and the clustered index of a trained 105,402-item model at half exact's p99. Packed int8
+# (a later round, a 2-core AVX-512 machine): 2.1x exact's clicks/s at 200,000 random items.
 AUTO_REDUCED_FROM = 100_000
 
 
-def scoring_path(setting: str, n_items: int, precisions: Collection[str] | None, clusters: ClusterFit | None = None) -> str:
+def scoring_path(
+    setting: str, n_items: int, precisions: Collection[str] | None, clusters: ClusterFit | None = None, packed: Collection[str] = ("int8", "int4")
+) -> str:
     """What answers: `setting` when the artifact can do it, else exact (logged by the caller).
     `precisions`: the reduced precisions whose tables the artifact holds (fp16, int8, int4), None
     when it has no item-vector files at all; `clusters`: what the export measured for the
-    artifact's clustered index, None without one."""
+    artifact's clustered index, None without one; `packed`: the precisions whose graph packs its
+    table (int8 only in exports since it does; see service/artifacts/item_vectors.PACKED)."""
     if precisions is None:
         return "exact"
     if setting == "auto":
@@ -157,7 +161,10 @@ def scoring_path(setting: str, n_items: int, precisions: Collection[str] | None,
             return "exact"
         if clusters is not None and clusters.served_by_auto:  # its rule: service/artifacts/item_clusters.py
             return "clustered"
-        return next((p for p in ("int4", "int8") if p in precisions), "exact")  # int8: artifacts exported before int4
+        # Packed int8 before int4: as fast for one click and faster for a shared pass (README, Large
+        # catalogues); an int8 table fed to its graph (older exports) only where there is no int4.
+        order = ("int8", "int4") if "int8" in packed else ("int4", "int8")
+        return next((p for p in order if p in precisions), "exact")
     if setting in ("fp16", "int8", "int4") and setting not in precisions:
         return "exact"
     if setting == "clustered" and clusters is None:
@@ -172,7 +179,7 @@ def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0
     opened). `probe` > 0 overrides the clustered index's probe count (`auto` judges by the export's)."""
     tables = load_item_vectors(artifact.path, artifact.manifest, artifact.n_items)
     fit = cluster_fit(artifact.manifest, artifact.n_items) if tables is not None else None
-    path_name = scoring_path(scoring, artifact.n_items, None if tables is None else set(tables.codes), fit)
+    path_name = scoring_path(scoring, artifact.n_items, None if tables is None else set(tables.codes), fit, tables.packed if tables is not None else ())
     if path_name != scoring and scoring != "auto":
         log.warning(
             "%s has no files for CAIRN_SCORING=%s (not exported with them: `cairn export --precisions`, `--clustered-index`): scoring exactly",

@@ -11,11 +11,14 @@ a fifth (int4 at D = 100: 64 bytes of codes and 16 of block scales an item):
     exact = vectors[candidates] . f + bias      numpy, float32, the candidates only
     top_n of the exact scores                   so answers carry exact fp32 scores
 
-The fp16 and int8 tables go into ONNX Runtime as inputs, fed from the memory maps each call (CPU
-inputs are used in place, not copied), so the pages are the OS's page cache, shared by every
-worker. The int4 table goes in once, as the graph's initialiser, and ONNX Runtime packs a private
-copy of it (about 80 MB at a million items). Same
-call contract as `OnnxStep.run`; `scoring` names the path for Server-Timing.
+The fp16 table goes into ONNX Runtime as an input, fed from the memory map each call (CPU inputs
+are used in place, not copied), so the pages are the OS's page cache, shared by every worker. The
+int4 and int8 tables go in once, as the graph's initialisers, and ONNX Runtime packs a private
+copy of each for its integer kernels (about 80 MB for int4 and 100 MB for int8 at a million
+items): int4 is the cheapest for one click at a time, int8 for a shared pass of several (8 rows
+cost it 1.3x one row, int4 7x). int8 graphs of artifacts exported before it was packed take the
+table as an input, with the features quantised here. Same call contract as `OnnxStep.run`;
+`scoring` names the path for Server-Timing.
 """
 
 from __future__ import annotations
@@ -29,9 +32,12 @@ from service.runtime.feature_step import FeatureStep, touch_pages
 from service.runtime.onnx_step import open_session
 
 # The exact re-scoring looks at this many candidates per row at least (and 4 x top_n when more
-# are asked for): a few microseconds of numpy, and enough for the approximate ranking's errors
-# near the top 20 to be caught (tests/service/runtime/test_reduced_step.py measures agreement).
-MIN_CANDIDATES = 512
+# are asked for): enough for the approximate ranking's errors near the top 20 to be caught
+# (tests/service/runtime/test_reduced_step.py measures agreement; at a million random items the
+# top 20 of 256 visit states came back whole from 48 int4 candidates, from 32 int8 ones). Fewer
+# candidates cost less: ONNX Runtime's TopK of 512 over a batch of 8 x 200,000 scores took
+# 2.9 ms here, of 64 1.1 ms.
+MIN_CANDIDATES = 128
 
 
 def candidates_for(top_n: int, n_items: int) -> int:
@@ -56,23 +62,26 @@ class ReducedStep(FeatureStep):
         super().__init__(tables, threads)
         self.scoring = precision
         self._feed = {"bias": tables.bias}
-        # int4: the table goes in as the graph's initialisers (see build_int4_candidate_graph),
-        # over the memory maps; ONNX Runtime packs its own copy when the session opens.
-        self._tables = {"codes": ort.OrtValue.ortvalue_from_numpy(tables.codes["int4"]),
-                        "scales": ort.OrtValue.ortvalue_from_numpy(tables.int4_scales)} if precision == "int4" else {}  # fmt: skip
+        self._packed = precision in tables.packed
+        self._tables: dict[str, ort.OrtValue] = {}
+        if self._packed:
+            # The table goes in as the graph's initialisers (see build_int4_candidate_graph), over
+            # the memory maps; ONNX Runtime packs its own copy when the session opens.
+            scales = tables.int4_scales if precision == "int4" else tables.scales
+            self._tables = {"codes": ort.OrtValue.ortvalue_from_numpy(tables.codes[precision]), "scales": ort.OrtValue.ortvalue_from_numpy(scales)}
         self._candidates = open_session(tables.candidate_graphs[precision], threads, self._tables)
-        if precision != "int4":
+        if not self._packed:
             self._feed["codes"] = tables.codes[precision]
             touch_pages(tables.codes[precision])  # read whole by every click
+            if precision == "int8":
+                self._feed["scales"] = tables.scales
         touch_pages(tables.vectors)  # the candidates' rows, anywhere in the table
-        if precision == "int8":
-            self._feed["scales"] = tables.scales
         self._k: dict[int, np.ndarray] = {}
 
     def _query(self, features: np.ndarray) -> dict[str, np.ndarray]:
-        if self.scoring != "int8":  # fp16 and int4 take float32 features (int4 quantises them per block in the graph)
+        if self._packed or self.scoring == "fp16":  # float32 features (the packed graphs quantise them themselves)
             return {"features": features}
-        codes, scales = quantise_rows(features)
+        codes, scales = quantise_rows(features)  # an int8 graph of an older export
         return {"features": codes, "feature_scales": scales}
 
     def close(self) -> None:

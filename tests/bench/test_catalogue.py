@@ -30,7 +30,7 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
     report = json.loads(out.read_text())
     size = report["sizes"]["3000"]
     assert size["export"]["seconds"] > 0 and size["export"]["peak_rss_mb"] > 0 and size["export"]["artifact_mb"] > 0
-    # Random weights: the default export builds no index (it says why) and holds int4 only; the int8 and
+    # Random weights: the default export builds no index (it says why) and holds int8 only; the int4 and
     # clustered rows come from a second export with them.
     assert size["export"]["item_clusters_skipped"]["probe_needed"] > 4 and size["export"]["again"]["seconds"] > 0
     assert size["export"]["again"]["flags"] == ["--precisions", "int8", "int4", "--clustered-index", "always"]
@@ -54,9 +54,9 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
 
 
 def test_the_second_export_adds_only_what_the_paths_need() -> None:
-    assert files_for(["exact", "int4"], has_index=False) == ()
+    assert files_for(["exact", "int8"], has_index=False) == ()
     assert files_for(["exact", "clustered@8"], has_index=True) == ()
-    assert files_for(["fp16", "clustered"], has_index=False) == ("--precisions", "fp16", "int4", "--clustered-index", "always")
+    assert files_for(["fp16", "clustered"], has_index=False) == ("--precisions", "fp16", "int8", "--clustered-index", "always")
 
 
 def test_path_names_are_checked() -> None:
