@@ -69,8 +69,8 @@ demo: $(STAMP)
 	  --clustered-index always
 	# The exported graph through the same evaluation: it must agree with the PyTorch model above
 	# (with the exclude-seen setting the evaluation above chose, so the two are comparable); beside it
-	# the clustered index's row, the offline cost of serving with CAIRN_SCORING=clustered.
-	$(BIN)/cairn evaluate --data $(DEMO_DATA)/prepared --recommenders '' --artifact model_store/garden-gru/demo --scoring exact clustered \
+	# the int8 and clustered rows, the offline cost of serving with CAIRN_SCORING=int8 or clustered.
+	$(BIN)/cairn evaluate --data $(DEMO_DATA)/prepared --recommenders '' --artifact model_store/garden-gru/demo --scoring exact int8 clustered \
 	  --exclude-seen $$($(BIN)/python -c "import json; print('on' if json.load(open('$(DEMO_REPORTS)/evaluation.json'))['decision']['exclude_seen']['value'] else 'off')") \
 	  --bootstrap 200 --out $(DEMO_REPORTS)/evaluation-onnx.json
 	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out $(DEMO_REPORTS)/quality.json
@@ -106,7 +106,7 @@ bench: $(STAMP)
 	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
 
 # Large catalogues: a GRU trained on a 200,000-item demo shop (105,402 items reach training), its
-# scoring paths offline (Recall@20 exact vs clustered) and served, beside random 200k/1M artifacts.
+# scoring paths offline (Recall@20 exact vs int8 and clustered) and served, beside random 200k/1M artifacts.
 LARGE = data/large
 bench-large: $(STAMP)
 	$(BIN)/cairn demo-data --out $(LARGE)/raw --items 200000 --sessions 400000
@@ -116,7 +116,7 @@ bench-large: $(STAMP)
 	$(BIN)/cairn export --checkpoint checkpoints/large/best.pt --data $(LARGE)/prepared --artifacts $(LARGE)/model_store \
 	  --name garden-large --version bench --overwrite --clustered-index always
 	$(BIN)/cairn evaluate --data $(LARGE)/prepared --recommenders '' --artifact $(LARGE)/model_store/garden-large/bench \
-	  --scoring exact clustered --cost-clicks 0 --out reports/bench/large-scoring.json
+	  --scoring exact int8 clustered --cost-clicks 0 --out reports/bench/large-scoring.json
 	$(BIN)/python -m bench.catalogue --trained $(LARGE)/model_store/garden-large/bench --trained-data $(LARGE)/prepared \
 	  --out reports/bench/catalogue.json
 
