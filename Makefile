@@ -132,7 +132,7 @@ bench-million: $(STAMP)
 	$(BIN)/cairn export --checkpoint checkpoints/million/best.pt --data $(MILLION)/prepared --artifacts $(MILLION)/model_store \
 	  --name garden-million --version bench --overwrite --clustered-index always
 	$(BIN)/cairn evaluate --data $(MILLION)/prepared --recommenders '' --artifact $(MILLION)/model_store/garden-million/bench \
-	  --scoring exact clustered --sessions 5000 --cost-clicks 0 --out reports/bench/million-scoring.json
+	  --scoring exact int8 clustered --sessions 5000 --cost-clicks 0 --out reports/bench/million-scoring.json
 	$(BIN)/python -m bench.catalogue --sizes --trained $(MILLION)/model_store/garden-million/bench --trained-data $(MILLION)/prepared \
 	  --paths exact int8 clustered clustered@32 --out reports/bench/catalogue-million.json
 

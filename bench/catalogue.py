@@ -48,6 +48,10 @@ from service.errors import BenchError
 TOP = 20
 PACED_RATE = 50.0  # clicks/s over all connections
 PACED_CONNECTIONS = 4
+BUDGET_MS = 25.0  # the page budget the capacity is measured at
+CAPACITY_SHARES = (0.3, 0.5, 0.7, 0.85, 1.0)  # of the closed-loop clicks/s at 8 visits
+CAPACITY_CONNECTIONS = 32
+CAPACITY_STEP_S = 4.0  # seconds at each rate at most
 
 
 def export(store: Path, n_items: int, log: Path, flags: tuple[str, ...] = ()) -> dict:
@@ -171,6 +175,28 @@ def paced_at_rate(port: int, items: list[str], clicks: int) -> dict:
     return asyncio.run(paced(port, click_of, PACED_RATE, PACED_CONNECTIONS, clicks, max_seconds=clicks / PACED_RATE + 5.0))
 
 
+def capacity_at_budget(port: int, items: list[str], ceiling: float, max_clicks: int, max_seconds: float) -> dict:
+    """The highest open-loop rate whose p99 stays within BUDGET_MS: clicks evenly spaced at
+    CAPACITY_SHARES of `ceiling` (the clicks/s measured at 8 visits at once) in turn, over
+    CAPACITY_CONNECTIONS connections (enough that no connection has a click due before its answer
+    while the path keeps within budget), in visits of 20 clicks; it stops at the first rate
+    over budget. Each rate sends at most `max_clicks` clicks for at most `max_seconds`."""
+    steps = []
+    best = 0.0
+    for k, share in enumerate(CAPACITY_SHARES):
+        rate = max(1.0, ceiling * share)
+
+        def click_of(c: int, n: int, k: int = k) -> tuple[str, str]:
+            return f"cap-{k}-{c}-{n // 20}", items[(k * 7919 + c * 131 + n) % len(items)]
+
+        r = asyncio.run(paced(port, click_of, rate, CAPACITY_CONNECTIONS, max_clicks, max_seconds))
+        steps.append({"rate": round(rate, 1), **r})
+        if r["errors"] or r["p99_ms"] > BUDGET_MS:
+            break
+        best = rate
+    return {"budget_ms": BUDGET_MS, "clicks_per_s": round(best, 1), "steps": steps}
+
+
 def answered_by(port: int) -> dict[str, float]:
     with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
         text = r.read().decode()
@@ -205,8 +231,10 @@ def serve_and_measure(store: Path, name_version: tuple[str, str], path: str, cor
         paced_at_rate(port, rotated(items, 5000), 50)  # warm-up
         at_rate = paced_at_rate(port, items, args.paced_clicks)
         at_8 = asyncio.run(saturate(port, rotated(items, 20000), 8, args.max_clicks, args.max_seconds, 1.0))
+        capacity = capacity_at_budget(port, rotated(items, 40000), at_8["clicks_per_s"], args.max_clicks, min(args.max_seconds, CAPACITY_STEP_S))
         memory = memory_of(proc.pid)
-        return {"ready_s": round(ready_s, 1), "paced_50_per_s": at_rate, "concurrency_8": at_8, "memory": memory, "answers": answered_by(port)}
+        return {"ready_s": round(ready_s, 1), "paced_50_per_s": at_rate, "concurrency_8": at_8, "capacity": capacity, "memory": memory,
+                "answers": answered_by(port)}  # fmt: skip
     finally:
         stop_process(proc)
         os.sched_setaffinity(0, allowed)  # this process (a test's, say) keeps the cores it had
@@ -222,6 +250,7 @@ def measure_paths(store: Path, name_version: tuple[str, str], paths: list[str], 
         print(
             f"  {path:13s} 50/s p50 {r['paced_50_per_s']['p50_ms']} p99 {r['paced_50_per_s']['p99_ms']} ms | "
             f"8 visits {r['concurrency_8']['clicks_per_s']} clicks/s p50 {r['concurrency_8']['p50_ms']} p99 {r['concurrency_8']['p99_ms']} ms | "
+            f"capacity at p99 {BUDGET_MS:g} ms {r['capacity']['clicks_per_s']} clicks/s | "
             f"agreement {r['top20_agreement']} | RSS {r['memory']['rss_mb']} MB ({r['memory']['private_mb']} private, "
             f"{r['memory'].get('anonymous_mb')} anonymous) | {r['answers']}",
             flush=True,

@@ -40,6 +40,13 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
             r = rows[path]
             assert r["paced_50_per_s"]["clicks"] == 20 and r["paced_50_per_s"]["errors"] == 0
             assert r["concurrency_8"]["clicks"] > 0 and r["concurrency_8"]["errors"] == 0
+            # Capacity: open-loop rates rising in turn up to the 8-visit clicks/s, stopping at the first over budget.
+            cap = r["capacity"]
+            rates = [step["rate"] for step in cap["steps"]]
+            assert cap["budget_ms"] == 25.0 and rates == sorted(rates) and len(rates) >= 1
+            within = [step["rate"] for step in cap["steps"] if step["p99_ms"] <= 25.0 and step["errors"] == 0]
+            assert cap["clicks_per_s"] == (within[-1] if within else 0.0)
+            assert all(step["p99_ms"] <= 25.0 for step in cap["steps"][:-1])  # only the last step may be over budget
             assert r["memory"]["rss_mb"] >= max(r["memory"]["private_mb"], r["memory"]["anonymous_mb"]) > 0
             scoring = path.partition("@")[0]
             assert r["answers"][f"scoring_{scoring}"] == r["answers"]["served_by_gru"] > 0  # every answer from the path asked for
