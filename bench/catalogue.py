@@ -52,6 +52,7 @@ BUDGET_MS = 25.0  # the page budget the capacity is measured at
 CAPACITY_SHARES = (0.3, 0.5, 0.7, 0.85, 1.0)  # of the closed-loop clicks/s at 8 visits
 CAPACITY_CONNECTIONS = 32
 CAPACITY_STEP_S = 4.0  # seconds at each rate at most
+CAPACITY_BISECTIONS = 2
 
 
 def export(store: Path, n_items: int, log: Path, flags: tuple[str, ...] = ()) -> dict:
@@ -179,21 +180,34 @@ def capacity_at_budget(port: int, items: list[str], ceiling: float, max_clicks: 
     """The highest open-loop rate whose p99 stays within BUDGET_MS: clicks evenly spaced at
     CAPACITY_SHARES of `ceiling` (the clicks/s measured at 8 visits at once) in turn, over
     CAPACITY_CONNECTIONS connections (enough that no connection has a click due before its answer
-    while the path keeps within budget), in visits of 20 clicks; it stops at the first rate
-    over budget. Each rate sends at most `max_clicks` clicks for at most `max_seconds`."""
-    steps = []
-    best = 0.0
-    for k, share in enumerate(CAPACITY_SHARES):
-        rate = max(1.0, ceiling * share)
+    while the path keeps within budget), in visits of 20 clicks. At the first rate over budget it
+    halves the gap to the last rate within it, CAPACITY_BISECTIONS times. Each rate sends at most
+    `max_clicks` clicks for at most `max_seconds`."""
+    steps: list[dict] = []
 
-        def click_of(c: int, n: int, k: int = k) -> tuple[str, str]:
+    def within(rate: float) -> bool:
+        k = len(steps)
+
+        def click_of(c: int, n: int) -> tuple[str, str]:
             return f"cap-{k}-{c}-{n // 20}", items[(k * 7919 + c * 131 + n) % len(items)]
 
         r = asyncio.run(paced(port, click_of, rate, CAPACITY_CONNECTIONS, max_clicks, max_seconds))
         steps.append({"rate": round(rate, 1), **r})
-        if r["errors"] or r["p99_ms"] > BUDGET_MS:
+        return not r["errors"] and r["p99_ms"] <= BUDGET_MS
+
+    best, over = 0.0, None
+    for share in CAPACITY_SHARES:
+        rate = max(1.0, ceiling * share)
+        if not within(rate):
+            over = rate
             break
         best = rate
+    for _ in range(CAPACITY_BISECTIONS if over is not None else 0):
+        rate = (best + over) / 2
+        if within(rate):
+            best = rate
+        else:
+            over = rate
     return {"budget_ms": BUDGET_MS, "clicks_per_s": round(best, 1), "steps": steps}
 
 

@@ -1,13 +1,19 @@
 """bench.service.paced: open-loop clicks evenly spaced over the connections, each timed from when
-it was due. Against a small HTTP/1.1 server on loopback that records when each request came."""
+it was due; and bench.catalogue.capacity_at_budget built on it. Against small HTTP/1.1 servers on
+loopback (one that records when each request came, one that answers after a set delay)."""
 
 from __future__ import annotations
 
 import asyncio
+import http.server
 import re
 import statistics
+import threading
 import time
 
+import pytest
+
+from bench.catalogue import capacity_at_budget
 from bench.service import paced
 
 
@@ -73,3 +79,44 @@ def test_bounded_by_time() -> None:
 
     result = asyncio.run(go())
     assert 12 <= result["clicks"] <= 16  # 0.3 s at 50/s: 15 clicks due
+
+
+class _Server(http.server.ThreadingHTTPServer):
+    request_queue_size = 64  # the pacer opens its 32 connections at once (the default backlog is 5)
+
+
+class _Slow(http.server.BaseHTTPRequestHandler):
+    protocol_version = "HTTP/1.1"  # keep-alive, as the pacer's connections expect
+    disable_nagle_algorithm = True  # headers and body are two writes: no 40 ms wait for an ACK between them
+    delay_s = 0.0
+
+    def do_POST(self) -> None:  # noqa: N802 - the standard library's name
+        self.rfile.read(int(self.headers["Content-Length"]))
+        time.sleep(self.delay_s)
+        self.send_response(200)
+        self.send_header("Content-Length", "2")
+        self.end_headers()
+        self.wfile.write(b"{}")
+
+    def log_message(self, *_: object) -> None:
+        pass
+
+
+@pytest.mark.parametrize(("delay_s", "expected"), [(0.0, 200.0), (0.03, 0.0)])
+def test_capacity_is_the_highest_rate_within_the_budget(delay_s: float, expected: float) -> None:
+    # Answers in no time: every rate up to the ceiling is within 25 ms. Answers in 30 ms: none is,
+    # and the two halvings below the first rate do not find one either.
+    handler = type("Handler", (_Slow,), {"delay_s": delay_s})
+    server = _Server(("127.0.0.1", 0), handler)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    try:
+        cap = capacity_at_budget(server.server_address[1], [f"sku-{i:06d}" for i in range(50)], ceiling=200.0, max_clicks=40, max_seconds=1.0)
+    finally:
+        server.shutdown()
+        server.server_close()
+    assert cap["clicks_per_s"] == expected
+    rates = [step["rate"] for step in cap["steps"]]
+    if expected:
+        assert rates == [60.0, 100.0, 140.0, 170.0, 200.0]  # CAPACITY_SHARES of the ceiling
+    else:
+        assert rates == [60.0, 30.0, 15.0]  # the first share, then two halvings toward 0
