@@ -105,16 +105,23 @@ bench: $(STAMP)
 	$(MAKE) demo SERVE=0
 	$(BIN)/python -m bench.quality --report $(DEMO_REPORTS)/evaluation.json --out reports/bench/quality.json
 
+# The trained model the catalogue rows measure: the demo shop generated into $(1) with demo-data
+# options $(2), prepared, one epoch of training into checkpoints/$(3), exported as garden-$(3)/bench
+# with the clustered index.
+define trained_catalogue_model
+	$(BIN)/cairn demo-data --out $(1)/raw $(2)
+	$(BIN)/cairn prepare --input $(1)/raw/clicks.csv --out $(1)/prepared \
+	  --session-column session_id --item-column item_id --time-column timestamp --min-item-clicks 1
+	$(BIN)/cairn train --data $(1)/prepared --out checkpoints/$(3) --epochs 1 --patience 0
+	$(BIN)/cairn export --checkpoint checkpoints/$(3)/best.pt --data $(1)/prepared --artifacts $(1)/model_store \
+	  --name garden-$(3) --version bench --overwrite --clustered-index always
+endef
+
 # Large catalogues: a GRU trained on a 200,000-item demo shop (105,402 items reach training), its
 # scoring paths offline (Recall@20 exact vs int8 and clustered) and served, beside random 200k/1M artifacts.
 LARGE = data/large
 bench-large: $(STAMP)
-	$(BIN)/cairn demo-data --out $(LARGE)/raw --items 200000 --sessions 400000
-	$(BIN)/cairn prepare --input $(LARGE)/raw/clicks.csv --out $(LARGE)/prepared \
-	  --session-column session_id --item-column item_id --time-column timestamp --min-item-clicks 1
-	$(BIN)/cairn train --data $(LARGE)/prepared --out checkpoints/large --epochs 1 --patience 0
-	$(BIN)/cairn export --checkpoint checkpoints/large/best.pt --data $(LARGE)/prepared --artifacts $(LARGE)/model_store \
-	  --name garden-large --version bench --overwrite --clustered-index always
+	$(call trained_catalogue_model,$(LARGE),--items 200000 --sessions 400000,large)
 	$(BIN)/cairn evaluate --data $(LARGE)/prepared --recommenders '' --artifact $(LARGE)/model_store/garden-large/bench \
 	  --scoring exact int8 clustered --cost-clicks 0 --out reports/bench/large-scoring.json
 	$(BIN)/python -m bench.catalogue --trained $(LARGE)/model_store/garden-large/bench --trained-data $(LARGE)/prepared \
@@ -125,12 +132,7 @@ bench-large: $(STAMP)
 # training and validation (on 20,000 sessions); not part of `make bench`.
 MILLION = data/million
 bench-million: $(STAMP)
-	$(BIN)/cairn demo-data --out $(MILLION)/raw --items 1000000 --sessions 2000000 --popularity-exponent 0.8
-	$(BIN)/cairn prepare --input $(MILLION)/raw/clicks.csv --out $(MILLION)/prepared \
-	  --session-column session_id --item-column item_id --time-column timestamp --min-item-clicks 1
-	$(BIN)/cairn train --data $(MILLION)/prepared --out checkpoints/million --epochs 1 --patience 0
-	$(BIN)/cairn export --checkpoint checkpoints/million/best.pt --data $(MILLION)/prepared --artifacts $(MILLION)/model_store \
-	  --name garden-million --version bench --overwrite --clustered-index always
+	$(call trained_catalogue_model,$(MILLION),--items 1000000 --sessions 2000000 --popularity-exponent 0.8,million)
 	$(BIN)/cairn evaluate --data $(MILLION)/prepared --recommenders '' --artifact $(MILLION)/model_store/garden-million/bench \
 	  --scoring exact int8 clustered --sessions 5000 --cost-clicks 0 --out reports/bench/million-scoring.json
 	$(BIN)/python -m bench.catalogue --sizes --trained $(MILLION)/model_store/garden-million/bench --trained-data $(MILLION)/prepared \
