@@ -36,7 +36,7 @@ from service.config import ARTIFACT_PART, RECOMMENDERS, Settings
 from service.errors import ArtifactError, CairnError, ModelNotReadyError, SettingsError, StepError, StoreError
 from service.runtime.batching import StepBatcher
 from service.artifacts.item_clusters import ClusterFit, cluster_fit, load_item_clusters
-from service.artifacts.item_vectors import load_item_vectors
+from service.artifacts.item_vectors import PACKED, load_item_vectors
 from service.runtime.clustered_step import ClusteredStep
 from service.runtime.onnx_step import OnnxStep
 from service.runtime.reduced_step import ReducedStep
@@ -147,7 +147,7 @@ AUTO_REDUCED_FROM = 100_000
 
 
 def scoring_path(
-    setting: str, n_items: int, precisions: Collection[str] | None, clusters: ClusterFit | None = None, packed: Collection[str] = ("int8", "int4")
+    setting: str, n_items: int, precisions: Collection[str] | None, clusters: ClusterFit | None = None, packed: Collection[str] = PACKED
 ) -> str:
     """What answers: `setting` when the artifact can do it, else exact (logged by the caller).
     `precisions`: the reduced precisions whose tables the artifact holds (fp16, int8, int4), None
