@@ -59,6 +59,7 @@ from service.artifacts.item_vectors import (
     int4_blocks,
 )
 from service.errors import ArtifactError
+from offline.export.grouped_top_k import best_k_nodes, group_rows_for
 from offline.model.gru import NextClickGRU
 
 # Opset 17 and IR 8: everything the graph uses exists there, and ONNX Runtime releases back to
@@ -294,12 +295,14 @@ def build_feature_graph(w: _StepWeights) -> bytes:
     return _finish(graph, FEATURE_GRAPH_FORMAT).SerializeToString()
 
 
-def build_candidate_graph(precision: str, dim: int) -> bytes:
+def build_candidate_graph(precision: str, dim: int, n_items: int) -> bytes:
     """Approximate scores of every item from reduced-precision item vectors, and the best `k`.
 
     inputs   features float32 [B, D]; bias float32 [n_items]; k int64 [1]
              fp16 only: codes float16 [D, n_items]
     outputs  candidates int64 [B, k], approx float32 [B, k] (descending)
+
+    The best k come from grouped_top_k.best_k_nodes (two exact levels from GROUPED_FROM items on).
 
     fp16: the table is an input, not an initialiser: the service feeds its read-only memory map
     of the artifact's array, so every worker reads the same pages.
@@ -341,7 +344,9 @@ def build_candidate_graph(precision: str, dim: int) -> bytes:
         helper.make_tensor_value_info("bias", TensorProto.FLOAT, ["n_items"]),
         helper.make_tensor_value_info("k", TensorProto.INT64, [1]),
     ]
-    nodes.append(helper.make_node("TopK", ["approx_all", "k"], ["approx", "candidates"], axis=-1, largest=1, sorted=1))
+    best, consts = best_k_nodes("approx_all", "k", n_items, group_rows_for(n_items), "approx", "candidates")
+    nodes += best
+    inits += consts
     graph = helper.make_graph(
         nodes,
         f"cairn_candidates_{precision}",
@@ -382,8 +387,10 @@ def build_int4_candidate_graph(dim: int, n_items: int) -> bytes:
         helper.make_node("MatMulNBits", ["features", "codes", "scales"], ["logits"], domain="com.microsoft",
                          K=dim, N=n_items, bits=4, block_size=INT4_BLOCK, accuracy_level=4),  # fmt: skip
         helper.make_node("Add", ["logits", "bias"], ["approx_all"]),
-        helper.make_node("TopK", ["approx_all", "k"], ["approx", "candidates"], axis=-1, largest=1, sorted=1),
     ]
+    best, consts = best_k_nodes("approx_all", "k", n_items, group_rows_for(n_items), "approx", "candidates")
+    nodes += best
+    inits += consts
     graph = helper.make_graph(
         nodes,
         "cairn_candidates_int4",
@@ -474,14 +481,14 @@ def item_vector_files(w: _StepWeights, precisions: tuple[str, ...] = DEFAULT_PRE
     # The reduced copies are written block by block: none exists whole in the export.
     if "fp16" in precisions:
         files[ITEM_VECTORS_FP16] = RowBlocks((dim, w.n_items), np.dtype(np.float16), lambda: _transposed_blocks(w.output, np.float16, lambda v, lo: v))
-        files[CANDIDATES_FP16] = build_candidate_graph("fp16", dim)
+        files[CANDIDATES_FP16] = build_candidate_graph("fp16", dim, w.n_items)
     if "int8" in precisions:
         scales = int8_scales(w.output)
         files[ITEM_VECTORS_INT8] = RowBlocks(
             (dim, w.n_items), np.dtype(np.int8), lambda: _transposed_blocks(w.output, np.int8, lambda v, lo: _codes(v, scales[lo : lo + len(v)]))
         )
         files[ITEM_SCALES] = scales
-        files[CANDIDATES_INT8] = build_candidate_graph("int8", dim)
+        files[CANDIDATES_INT8] = build_candidate_graph("int8", dim, w.n_items)
     if "int4" in precisions:
         scales4 = int4_scales(w.output)
         files[ITEM_VECTORS_INT4] = RowBlocks((w.n_items, int4_blocks(dim), INT4_BLOCK // 2), np.dtype(np.uint8), lambda: _int4_rows(w.output, scales4))
