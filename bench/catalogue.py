@@ -1,4 +1,4 @@
-"""Large catalogues: each scoring path (exact, fp16, int8, int4, clustered) at 200,000 and 1,000,000 items, side by side.
+"""Large catalogues: each scoring path (exact, fp16, int8, int4, int4+int8, clustered) at 200,000 and 1,000,000 items, side by side.
 
 Per size: `cairn export --random --items N` (wall time, and peak memory from getrusage in the export's own process),
 the artifact's size on disk, then per path (CAIRN_SCORING; `clustered@P` = clustered with
@@ -6,8 +6,9 @@ CAIRN_PROBE_CLUSTERS=P, plain `clustered` probes as many clusters as the export 
 agreement with the exact fp32 step over visit states (random weights: the worst case, scores
 bunched together and nothing to cluster), and `cairn serve`
 (one worker, memory store, pinned to one core; the load generator on the other) measured over HTTP:
-p50/p99 per click at a paced 50 clicks/s (four connections, each sending every 80 ms after its
-answer), then at 8 visits at once (closed loop), the worker's RSS split into private and shared
+p50/p99 per click at 50 clicks/s open loop (evenly spaced over four connections, each click timed
+from when it was due: bench.service.paced), then at 8 visits at once (closed loop), the capacity at
+the 25 ms budget, the worker's RSS split into private and shared
 (/proc/<pid>/smaps_rollup), and which path and recommender answered (from /metrics). Budgets are
 raised to 1 s so every answer comes from the GRU: this measures the scoring path, not the guards.
 Beside the JSON a PNG (same name) plots each row's p99 against its agreement (bench/catalogue_chart.py).
@@ -83,7 +84,7 @@ def export(store: Path, n_items: int, log: Path, flags: tuple[str, ...] = ()) ->
 def files_for(paths: list[str], has_index: bool) -> tuple[str, ...]:
     """The `cairn export` flags that add what the default export leaves out and `paths` need: the
     fp16 and int8 copies, and the clustered index; () when nothing is missing."""
-    asked = {parse_path(t)[0] for t in paths}
+    asked = {part for t in paths for part in parse_path(t)[0].split("+")}  # int4+int8 needs both tables
     precisions = [p for p in PRECISIONS if p in asked or p in DEFAULT_PRECISIONS]
     flags = ("--precisions", *precisions) if set(precisions) != set(DEFAULT_PRECISIONS) else ()
     return flags + (("--clustered-index", "always") if "clustered" in asked and not has_index else ())
@@ -282,7 +283,7 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--sizes", type=int, nargs="*", default=[200_000, 1_000_000])
     p.add_argument("--paths", nargs="+", default=["exact", "int8", "clustered", "clustered@32"], metavar="PATH",
-                   help="scoring paths: exact, fp16, int8, int4, clustered, clustered@N (N clusters probed)")  # fmt: skip
+                   help="scoring paths: exact, fp16, int8, int4, int4+int8, clustered, clustered@N (N clusters probed)")  # fmt: skip
     p.add_argument("--trained", type=Path, metavar="ARTIFACT", help="a trained model's artifact folder, measured too")
     p.add_argument("--trained-data", type=Path, metavar="PREPARED", help="the prepared data it was trained on (test-split visits)")
     p.add_argument("--paced-clicks", type=int, default=400)

@@ -115,11 +115,12 @@ class Settings(BaseSettings):
     max_batch: int = Field(64, ge=1, le=1024)  # most clicks the GRU runner scores in one call
     # How the GRU scores the items: exact (every item in float32, the step graph), fp16, int8 or
     # int4 (approximate candidates from reduced-precision vectors, re-scored exactly; needs an
-    # artifact with item vectors), clustered (exact scores of the items in the nearest clusters of
-    # the artifact's clustered index), auto (from AUTO_REDUCED_FROM items on: clustered when the
-    # export measured >= 99% top-20 agreement for it reading <= 25% of the items, else int4 (int8
-    # for an artifact exported before int4); below: exact).
-    scoring: Literal["auto", "exact", "fp16", "int8", "int4", "clustered"] = "auto"
+    # artifact with item vectors), int4+int8 (both packed tables: int4 for the batch sizes it
+    # scored faster at load, int8 for the rest), clustered (exact scores of the items in the
+    # nearest clusters of the artifact's clustered index), auto (from AUTO_REDUCED_FROM items on:
+    # clustered when the export measured >= 99% top-20 agreement for it reading <= 25% of the
+    # items, else int4+int8 where both are exported, else int8, else int4; below: exact).
+    scoring: Literal["auto", "exact", "fp16", "int8", "int4", "int4+int8", "clustered"] = "auto"
     probe_clusters: int = Field(0, ge=0, le=1_000_000)  # clustered: clusters scored per click; 0 = the artifact's own choice
     model_poll_s: float = Field(0.5, ge=0.05, le=10.0)  # how often workers read the shared active-model choice
 

@@ -3,7 +3,7 @@
 
 from __future__ import annotations
 
-SCORING_PATHS = ("exact", "fp16", "int8", "int4", "clustered")  # CAIRN_SCORING's paths, auto aside: a row names the path it measured
+SCORING_PATHS = ("exact", "fp16", "int8", "int4", "int4+int8", "clustered")  # CAIRN_SCORING's paths, auto aside: a row names the path it measured
 
 
 def parse_scoring(text: str) -> tuple[str, int]:

@@ -95,7 +95,7 @@ class LoadedModel:
             raise ArtifactError(f"{artifact.path}: step graph scores {step.n_items} items, the id map has {artifact.n_items}")
         self.artifact = artifact
         self.tag = f"{artifact.name}/{artifact.version}"
-        self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8 | int4 | clustered: which path scores the GRU's answers
+        self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8 | int4 | int4+int8 | clustered: which path scores the GRU's answers
         self.item_index = artifact.item_index
         self.item_ids = artifact.item_ids  # index -> id
         self.popularity = PopularityRecommender(artifact.popularity)
@@ -144,12 +144,14 @@ class LoadedModel:
 # machine; and the clustered index of a trained 105,402-item model at half exact's p99. Packed int8
 # (a later round, a 2-core AVX-512 machine): 2.1x exact's clicks/s at 200,000 random items.
 AUTO_REDUCED_FROM = 100_000
+SMALL_AND_SHARED = "int4+int8"  # the path of two packed tables: int4 for batches of few rows, int8 for larger ones
 
 
 def scoring_path(
     setting: str, n_items: int, precisions: Collection[str] | None, clusters: ClusterFit | None = None, packed: Collection[str] = PACKED
 ) -> str:
-    """What answers: `setting` when the artifact can do it, else exact (logged by the caller).
+    """What answers: `setting` when the artifact can do it, else exact (logged by the caller;
+    int4+int8 falls back to whichever of the two the artifact has packed).
     `precisions`: the reduced precisions whose tables the artifact holds (fp16, int8, int4), None
     when it has no item-vector files at all; `clusters`: what the export measured for the
     artifact's clustered index, None without one; `packed`: the precisions whose graph packs its
@@ -161,10 +163,17 @@ def scoring_path(
             return "exact"
         if clusters is not None and clusters.served_by_auto:  # its rule: service/artifacts/item_clusters.py
             return "clustered"
-        # Packed int8 before int4: as fast for one click and faster for a shared pass (README, Large
-        # catalogues); an int8 table fed to its graph (older exports) only where there is no int4.
+        # Both packed tables where the export wrote both (int4 for lone clicks, int8 for shared
+        # passes); else packed int8 before int4: as fast for one click on some CPUs and faster for a
+        # shared pass on all (README, Large catalogues); an int8 table fed to its graph (older
+        # exports) only where there is no int4.
+        if {"int4", "int8"} <= set(precisions) & set(packed):
+            return SMALL_AND_SHARED
         order = ("int8", "int4") if "int8" in packed else ("int4", "int8")
         return next((p for p in order if p in precisions), "exact")
+    if setting == SMALL_AND_SHARED and not {"int4", "int8"} <= set(precisions) & set(packed):
+        # The one of the two the artifact has packed, else exact.
+        return next((p for p in ("int8", "int4") if p in precisions and p in packed), "exact")
     if setting in ("fp16", "int8", "int4") and setting not in precisions:
         return "exact"
     if setting == "clustered" and clusters is None:
@@ -174,7 +183,7 @@ def scoring_path(
 
 def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0) -> Step:
     """The GRU step of a verified artifact for a scoring setting (exact | fp16 | int8 | int4 |
-    clustered | auto; see `scoring_path`): the exact step graph, or for the other paths the feature graph over
+    int4+int8 | clustered | auto; see `scoring_path`): the exact step graph, or for the other paths the feature graph over
     memory-mapped item tables (the exact graph with its private copy of the tables is then not
     opened). `probe` > 0 overrides the clustered index's probe count (`auto` judges by the export's)."""
     tables = load_item_vectors(artifact.path, artifact.manifest, artifact.n_items)
@@ -182,9 +191,10 @@ def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0
     path_name = scoring_path(scoring, artifact.n_items, None if tables is None else set(tables.codes), fit, tables.packed if tables is not None else ())
     if path_name != scoring and scoring != "auto":
         log.warning(
-            "%s has no files for CAIRN_SCORING=%s (not exported with them: `cairn export --precisions`, `--clustered-index`): scoring exactly",
+            "%s has no files for CAIRN_SCORING=%s (not exported with them: `cairn export --precisions`, `--clustered-index`): scoring %s",
             artifact.path,
             scoring,
+            "exactly" if path_name == "exact" else f"with {path_name}",
         )
     if path_name == "exact" or tables is None:
         return OnnxStep(artifact.step_graph, threads=threads)
@@ -194,6 +204,8 @@ def open_step(artifact: Artifact, scoring: str, threads: int = 1, probe: int = 0
         if clusters is None:  # cannot happen: scoring_path chose clustered from the index's fit
             raise ArtifactError(f"{artifact.path}: no clustered index to open")
         return ClusteredStep(tables, clusters, threads=threads)
+    if path_name == SMALL_AND_SHARED:
+        return ReducedStep(tables, "int8", threads=threads, small="int4")
     return ReducedStep(tables, path_name, threads=threads)
 
 

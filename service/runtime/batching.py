@@ -67,12 +67,13 @@ class StepBatcher:
 
     async def run(self, item: int, hidden: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """One click: item index, hidden float32 [L, H] -> next hidden [L, H], top items int64 [top_n], scores [top_n]."""
-        next_hidden, top_items, top_scores, _ = await self.run_timed(item, hidden, top_n)
+        next_hidden, top_items, top_scores, _, _ = await self.run_timed(item, hidden, top_n)
         return next_hidden, top_items, top_scores
 
-    async def run_timed(self, item: int, hidden: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
-        """`run`, and the seconds ONNX Runtime spent on the call that scored this click (the whole batch):
-        the rest of the time the caller waited went to the queue and the thread hand-over."""
+    async def run_timed(self, item: int, hidden: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, str]:
+        """`run`, the seconds ONNX Runtime spent on the call that scored this click (the whole batch:
+        the rest of the time the caller waited went to the queue and the thread hand-over), and the
+        scoring path of that call (a step with two tables picks one per call)."""
         if self._task is None or self._task.done():
             raise StepError("the step runner is not running")
         future = asyncio.get_running_loop().create_future()
@@ -104,11 +105,11 @@ class StepBatcher:
             try:
                 if lone and self._inline:
                     self.inline_calls += 1
-                    next_hidden, top_items, top_scores, step_s = self._timed_step(items, hidden, top_n)
+                    next_hidden, top_items, top_scores, step_s, scoring = self._timed_step(items, hidden, top_n)
                 else:
-                    next_hidden, top_items, top_scores, step_s = await loop.run_in_executor(
+                    next_hidden, top_items, top_scores, step_s, scoring = await loop.run_in_executor(
                         self._executor, self._timed_step, items, hidden, top_n
-                    )  # [L, B, H], [B, top_n], [B, top_n], seconds
+                    )  # [L, B, H], [B, top_n], [B, top_n], seconds, path
             except asyncio.CancelledError:  # closed mid-step: its callers get an answer, not a wait
                 _fail(batch, StepError("the step runner was closed"))
                 raise
@@ -123,13 +124,15 @@ class StepBatcher:
                 if not p.future.done():
                     # Copies: a row outlives the batch's output arrays in the caller's session state.
                     p.future.set_result(
-                        (np.ascontiguousarray(next_hidden[:, b, :]), top_items[b, : p.top_n], top_scores[b, : p.top_n], step_s)
+                        (np.ascontiguousarray(next_hidden[:, b, :]), top_items[b, : p.top_n], top_scores[b, : p.top_n], step_s, scoring)
                     )
 
-    def _timed_step(self, items: np.ndarray, hidden: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    def _timed_step(self, items: np.ndarray, hidden: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, str]:
         t0 = time.perf_counter()
         next_hidden, top_items, top_scores = self.step.run(items, hidden, top_n)
-        return next_hidden, top_items, top_scores, time.perf_counter() - t0
+        step_s = time.perf_counter() - t0
+        # Read here, on the thread that ran the step, before the next batch can change it.
+        return next_hidden, top_items, top_scores, step_s, getattr(self.step, "last_scoring", None) or getattr(self.step, "scoring", "exact")
 
     def _fill(self, batch: list[_Pending]) -> tuple[np.ndarray, np.ndarray]:
         size = len(batch)

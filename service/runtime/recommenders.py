@@ -160,8 +160,8 @@ class GruRecommender:
 
     async def step(self, state: GruState, item: int, count: int, seen: frozenset[int] = _NO_SEEN) -> tuple[GruState, Ranking]:
         top_n = min(self.n_items, count + len(seen))
-        next_hidden, items, scores, step_s = await self.batcher.run_timed(item, state.hidden, top_n)  # [L, H], [top_n], [top_n]
-        return GruState(next_hidden, state.hidden, item), without_seen(items.tolist(), scores.tolist(), seen, count, step_s, self.scoring)
+        next_hidden, items, scores, step_s, scoring = await self.batcher.run_timed(item, state.hidden, top_n)  # [L, H], [top_n], [top_n]
+        return GruState(next_hidden, state.hidden, item), without_seen(items.tolist(), scores.tolist(), seen, count, step_s, scoring)
 
     async def rank(self, state: GruState, count: int, seen: frozenset[int] = _NO_SEEN) -> Ranking:
         # The list after the last click is that click's step again, from the state before it.

@@ -18,10 +18,19 @@ copy of each for its integer kernels (about 80 MB for int4 and 100 MB for int8 a
 items): int4 is the cheapest for one click at a time, int8 for a shared pass of several (8 rows
 cost it 1.3x one row, int4 7x). int8 graphs of artifacts exported before it was packed take the
 table as an input, with the features quantised here. Same call contract as `OnnxStep.run`;
-`scoring` names the path for Server-Timing.
+`scoring` names the path, `last_scoring` the table the last call read (Server-Timing, metrics).
+
+The `int4+int8` path holds both packed tables and scores each call with the one that is cheaper
+for its number of rows: int4 for a lone click (or two), int8 for a shared pass. Where the two
+cross depends on the CPU (its integer instructions, its memory bandwidth), so the step times both
+graphs at load for 1 to SMALL_BATCH_MAX rows and keeps int4 for the sizes it won; where it won
+none, int4's session is closed again and the step is plain int8.
 """
 
 from __future__ import annotations
+
+import logging
+import time
 
 import numpy as np
 import onnxruntime as ort
@@ -38,6 +47,10 @@ from service.runtime.onnx_step import open_session
 # candidates cost less: ONNX Runtime's TopK of 512 over a batch of 8 x 200,000 scores took
 # 2.9 ms here, of 64 1.1 ms.
 MIN_CANDIDATES = 128
+SMALL_BATCH_MAX = 4  # rows the small-batch table is timed for at load
+_TIMING_RUNS = 3  # timed calls per graph and size (the fastest counts), after one untimed
+
+log = logging.getLogger("cairn.runtime")
 
 
 def candidates_for(top_n: int, n_items: int) -> int:
@@ -56,20 +69,38 @@ def quantise_rows(features: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 class ReducedStep(FeatureStep):
     """`OnnxStep`'s `run` for an artifact with item vectors, scoring in `precision` (fp16 | int8 | int4)."""
 
-    def __init__(self, tables: ItemVectors, precision: str, threads: int = 1) -> None:
-        if precision not in tables.codes:
-            raise StepError(f"no {precision!r} item vectors; the artifact has {', '.join(tables.codes)}")
+    def __init__(self, tables: ItemVectors, precision: str, threads: int = 1, small: str | None = None, small_up_to: int | None = None) -> None:
+        """`small`: a second packed precision for batches of few rows (`int4` beside `int8`), kept
+        for the sizes it scores faster at load (or, given `small_up_to`, for batches of up to that
+        many rows)."""
+        for p in (precision, small):
+            if p is not None and p not in tables.codes:
+                raise StepError(f"no {p!r} item vectors; the artifact has {', '.join(tables.codes)}")
+        if small is not None and (small == precision or not {small, precision} <= set(tables.packed)):
+            raise StepError(f"a small-batch table needs two packed precisions, got {small!r} beside {precision!r} (packed: {', '.join(tables.packed)})")
         super().__init__(tables, threads)
-        self.scoring = precision
+        self.precision = precision
+        self.scoring = self.last_scoring = precision
         self._feed = {"bias": tables.bias}
         self._packed = precision in tables.packed
-        self._tables: dict[str, ort.OrtValue] = {}
+        self._tables: dict[str, ort.OrtValue] = {}  # kept alive as long as the sessions
         if self._packed:
-            # The table goes in as the graph's initialisers (see build_int4_candidate_graph), over
-            # the memory maps; ONNX Runtime packs its own copy when the session opens.
-            scales = tables.int4_scales if precision == "int4" else tables.scales
-            self._tables = {"codes": ort.OrtValue.ortvalue_from_numpy(tables.codes[precision]), "scales": ort.OrtValue.ortvalue_from_numpy(scales)}
-        self._candidates = open_session(tables.candidate_graphs[precision], threads, self._tables)
+            self._candidates = self._open_packed(precision, threads)
+        else:
+            self._candidates = open_session(tables.candidate_graphs[precision], threads)
+        self.small_scoring: str | None = None
+        self.small_up_to = 0  # batches of up to this many rows read the small-batch table
+        self._small: ort.InferenceSession | None = None
+        if small is not None:
+            self._small = self._open_packed(small, threads)
+            self.small_up_to = self._rows_scored_faster(self._small, self._candidates) if small_up_to is None else small_up_to
+            if self.small_up_to:
+                self.small_scoring, self.scoring = small, f"{small}+{precision}"
+            else:
+                self._small = None  # ONNX Runtime's packed copy goes with the session
+                for name in ("codes", "scales"):
+                    self._tables.pop(f"{small}:{name}")
+            log.info("%s scores batches of up to %d rows from its %s table, larger ones from %s", tables.feature_graph.parent, self.small_up_to, small, precision)
         if not self._packed:
             self._feed["codes"] = tables.codes[precision]
             touch_pages(tables.codes[precision])  # read whole by every click
@@ -78,22 +109,58 @@ class ReducedStep(FeatureStep):
         touch_pages(tables.vectors)  # the candidates' rows, anywhere in the table
         self._k: dict[int, np.ndarray] = {}
 
+    def _open_packed(self, precision: str, threads: int) -> ort.InferenceSession:
+        # The table goes in as the graph's initialisers (see build_int4_candidate_graph), over
+        # the memory maps; ONNX Runtime packs its own copy when the session opens.
+        scales = self.tables.int4_scales if precision == "int4" else self.tables.scales
+        given = {"codes": ort.OrtValue.ortvalue_from_numpy(self.tables.codes[precision]), "scales": ort.OrtValue.ortvalue_from_numpy(scales)}
+        self._tables.update({f"{precision}:{name}": value for name, value in given.items()})
+        return open_session(self.tables.candidate_graphs[precision], threads, given)
+
+    def _rows_scored_faster(self, small: ort.InferenceSession, large: ort.InferenceSession) -> int:
+        """The largest batch size, up to SMALL_BATCH_MAX, such that `small` ranked every size up to
+        it faster than `large` (the fastest of _TIMING_RUNS calls each, on seeded features)."""
+        rng = np.random.default_rng(0)
+        k = np.array([candidates_for(20, self.n_items)], dtype=np.int64)
+        dim = self.tables.vectors.shape[1]
+
+        def fastest(session: ort.InferenceSession, feed: dict[str, np.ndarray]) -> float:
+            session.run(None, feed)
+            best = float("inf")
+            for _ in range(_TIMING_RUNS):
+                t0 = time.perf_counter()
+                session.run(None, feed)
+                best = min(best, time.perf_counter() - t0)
+            return best
+
+        up_to = 0
+        for rows in range(1, SMALL_BATCH_MAX + 1):
+            feed = {"features": rng.standard_normal((rows, dim)).astype(np.float32), "k": k, **self._feed}
+            if fastest(small, feed) >= fastest(large, feed):
+                break
+            up_to = rows
+        return up_to
+
     def _query(self, features: np.ndarray) -> dict[str, np.ndarray]:
-        if self._packed or self.scoring == "fp16":  # float32 features (the packed graphs quantise them themselves)
+        if self._packed or self.precision == "fp16":  # float32 features (the packed graphs quantise them themselves)
             return {"features": features}
         codes, scales = quantise_rows(features)  # an int8 graph of an older export
         return {"features": codes, "feature_scales": scales}
 
     def close(self) -> None:
         super().close()
-        self._candidates = None
+        self._candidates = self._small = None
 
     def rank(self, features: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray]:
         k = candidates_for(top_n, self.n_items)
         k_in = self._k.get(k)
         if k_in is None:
             k_in = self._k[k] = np.array([k], dtype=np.int64)
-        candidates, _ = self._candidates.run(None, {**self._query(features), "k": k_in, **self._feed})  # [B, k]
+        if len(features) <= self.small_up_to:
+            session, self.last_scoring = self._small, self.small_scoring
+        else:
+            session, self.last_scoring = self._candidates, self.precision
+        candidates, _ = session.run(None, {**self._query(features), "k": k_in, **self._feed})  # [B, k]
         exact = np.einsum("bkd,bd->bk", self.tables.vectors[candidates], features) + self.tables.bias[candidates]  # [B, k]
         order = np.argsort(-exact, axis=1, kind="stable")[:, :top_n]  # [B, top_n]
         return np.take_along_axis(candidates, order, 1), np.take_along_axis(exact, order, 1).astype(np.float32)

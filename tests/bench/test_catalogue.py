@@ -64,10 +64,11 @@ def test_the_second_export_adds_only_what_the_paths_need() -> None:
     assert files_for(["exact", "int8"], has_index=False) == ()
     assert files_for(["exact", "clustered@8"], has_index=True) == ()
     assert files_for(["fp16", "clustered"], has_index=False) == ("--precisions", "fp16", "int8", "--clustered-index", "always")
+    assert files_for(["int4+int8"], has_index=False) == ("--precisions", "int8", "int4")  # both tables
 
 
 def test_path_names_are_checked() -> None:
-    assert parse_path("clustered@32") == ("clustered", 32) and parse_path("int8") == ("int8", 0)
+    assert parse_path("clustered@32") == ("clustered", 32) and parse_path("int8") == ("int8", 0) and parse_path("int4+int8") == ("int4+int8", 0)
     for bad in ("int2", "int8@3", "clustered@0", "clustered@x"):
         with pytest.raises(Exception, match="expected one of"):
             parse_path(bad)

@@ -36,6 +36,20 @@ def test_each_path_answers_with_the_models_list_and_is_counted(fresh_server, off
         assert c.get("/readyz").json()["active"]["scoring"] == scoring
 
 
+def test_int4_int8_counts_each_click_under_the_table_that_scored_it(fresh_server, offline, sid) -> None:
+    # The worker times both tables at load: where int4 ranked one row faster, lone clicks read it
+    # (and the path is int4+int8); where it did not, the path is plain int8.
+    server = fresh_server("memory", scoring="int4+int8")
+    session = sid()
+    with server.client() as c:
+        for item in CLICKS:
+            r = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 10})
+            assert r.status_code == 200 and r.json()["served_by"] == "gru"
+        metrics, active = c.get("/metrics").text, c.get("/readyz").json()["active"]["scoring"]
+    assert [x["item_id"] for x in r.json()["items"]] == offline["v1"].top(CLICKS, 10)[0]
+    assert (active, scoring_counts(metrics)) in [("int4+int8", {"int4": 3.0}), ("int8", {"int8": 3.0})]
+
+
 def test_auto_scores_a_small_catalogue_exactly(fresh_server, sid) -> None:
     server = fresh_server("memory")
     assert server.settings.scoring == "auto"

@@ -171,7 +171,7 @@ def test_lone_clicks_run_on_the_loop_until_one_is_slow_and_batches_on_the_thread
     assert step.threads[2].startswith("cairn-ort") and step.threads[4].startswith("cairn-ort")
     assert (inline_calls, batches, len(step.threads)) == (3, 5, 5)
     assert lone[1][3] >= 0.005 > lone[0][3]  # the reported step time is the call's own
-    for (nh, top, _, _), item in zip(lone, (5, 6, 7, 8)):
+    for (nh, top, _, _, _), item in zip(lone, (5, 6, 7, 8)):
         ref_h, ref_top, _ = real.run(np.array([item], dtype=np.int64), zero[:, None, :].copy(), 3)
         assert np.allclose(nh, ref_h[:, 0, :], atol=1e-6) and top.tolist() == ref_top[0].tolist()
     for (nh, top, _), item in zip(together, range(10, 14)):

@@ -16,6 +16,7 @@ that the operator's results meet the bound checks the layout against ONNX Runtim
 from __future__ import annotations
 
 import asyncio
+import time
 from pathlib import Path
 
 import numpy as np
@@ -28,7 +29,7 @@ from service.artifacts.item_vectors import DEFAULT_PRECISIONS, INT4_BLOCK, ITEM_
 from service.errors import ArtifactError, StepError
 from service.runtime.active import AUTO_REDUCED_FROM, load_model, scoring_path
 from service.runtime.onnx_step import OnnxStep, open_session
-from service.runtime.reduced_step import ReducedStep, candidates_for
+from service.runtime.reduced_step import SMALL_BATCH_MAX, ReducedStep, candidates_for
 
 N_ITEMS, HIDDEN, TOP = 3000, 32, 20
 
@@ -204,6 +205,49 @@ def test_top_20_agrees_with_exact_argpartition(artifact: Path, precision: str) -
     assert np.all(np.diff(top_scores, axis=1) <= 0)
 
 
+def test_int4_int8_ranks_few_rows_from_int4_and_more_from_int8(artifact: Path) -> None:
+    a = load_artifact(artifact)
+    t = load_item_vectors(artifact, a.manifest, a.n_items)
+    exact_step, both = OnnxStep(a.step_graph), ReducedStep(t, "int8", small="int4", small_up_to=2)
+    alone = {p: ReducedStep(t, p) for p in ("int4", "int8")}
+    assert (both.scoring, both.small_up_to) == ("int4+int8", 2)
+    for rows, table in ((1, "int4"), (2, "int4"), (3, "int8"), (8, "int8")):
+        items, hidden = visit_states(exact_step, rows, seed=rows)
+        _, top_items, top_scores = both.run(items, hidden, TOP)
+        assert both.last_scoring == table
+        _, want_items, want_scores = alone[table].run(items, hidden, TOP)  # what that table's own step answers
+        np.testing.assert_array_equal(top_items, want_items)
+        np.testing.assert_array_equal(top_scores, want_scores)
+    # int4 kept for no size: its session is closed again, and the step is int8's.
+    none = ReducedStep(t, "int8", small="int4", small_up_to=0)
+    assert (none.scoring, none._small) == ("int8", None) and "int4:codes" not in none._tables
+    none.run(*visit_states(exact_step, 1, seed=9), TOP)
+    assert none.last_scoring == "int8"
+    with pytest.raises(StepError, match="two packed precisions"):
+        ReducedStep(t, "fp16", small="int4")  # fp16's table is fed, not packed
+    with pytest.raises(StepError, match="two packed precisions"):
+        ReducedStep(t, "int8", small="int8")
+
+
+class _Costs:
+    """Stands in for a candidate session: each call sleeps for `cost(rows)` seconds."""
+
+    def __init__(self, cost) -> None:
+        self.cost = cost
+
+    def run(self, _outputs, feed: dict) -> None:
+        time.sleep(self.cost(len(feed["features"])))
+
+
+def test_the_small_batch_table_is_kept_for_the_sizes_it_ranks_faster(artifact: Path) -> None:
+    a = load_artifact(artifact)
+    step = ReducedStep(load_item_vectors(artifact, a.manifest, a.n_items), "int8")
+    # 4 ms a row against a flat 10 ms: faster for 1 and 2 rows, slower from 3.
+    assert step._rows_scored_faster(_Costs(lambda rows: 0.004 * rows), _Costs(lambda rows: 0.010)) == 2
+    assert step._rows_scored_faster(_Costs(lambda rows: 0.006), _Costs(lambda rows: 0.002)) == 0
+    assert step._rows_scored_faster(_Costs(lambda rows: 0.001), _Costs(lambda rows: 0.004)) == SMALL_BATCH_MAX
+
+
 def test_reduced_step_refuses_bad_calls(artifact: Path) -> None:
     a = load_artifact(artifact)
     step = ReducedStep(load_item_vectors(artifact, a.manifest, a.n_items), "int8")
@@ -217,7 +261,12 @@ def test_reduced_step_refuses_bad_calls(artifact: Path) -> None:
 def test_scoring_setting_picks_the_path_and_falls_back_to_exact(artifact: Path, tmp_path: Path) -> None:
     every = set(PRECISIONS)
     assert scoring_path("auto", AUTO_REDUCED_FROM, {"fp16", "int8"}) == "int8"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, every) == "int8" and scoring_path("auto", AUTO_REDUCED_FROM, {"int4"}) == "int4"
+    assert scoring_path("auto", AUTO_REDUCED_FROM, {"int4"}) == "int4"
+    # Both packed tables where the export wrote both; int4+int8 asked of an artifact with one of
+    # them serves that one.
+    assert scoring_path("auto", AUTO_REDUCED_FROM, every) == "int4+int8" == scoring_path("int4+int8", 10, every)
+    assert scoring_path("int4+int8", 10, {"int8"}) == "int8" and scoring_path("int4+int8", 10, {"fp16", "int4"}) == "int4"
+    assert scoring_path("int4+int8", 10, every, packed={"int4"}) == "int4" and scoring_path("int4+int8", 10, {"fp16"}) == "exact"
     # An int8 table fed to its graph (exports before it was packed) comes after int4.
     assert scoring_path("auto", AUTO_REDUCED_FROM, every, packed={"int4"}) == "int4"
     assert scoring_path("auto", AUTO_REDUCED_FROM, {"fp16", "int8"}, packed={"int4"}) == "int8"
