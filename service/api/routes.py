@@ -180,8 +180,9 @@ async def delete_session(session_id: SessionId, request: Request, service: Servi
     return Response(status_code=204)
 
 
-def _active_answer(choice: ModelChoice, model: LoadedModel) -> dict[str, str]:
-    return {"name": choice.name, "version": choice.version, "recommender": choice.recommender, "artifact": choice.tag, "scoring": model.scoring}
+def _active_answer(choice: ModelChoice, model: LoadedModel) -> dict[str, Any]:
+    return {"name": choice.name, "version": choice.version, "recommender": choice.recommender, "artifact": choice.tag, "scoring": model.scoring,
+            "small_batch_rows": model.small_batch_rows or None}  # fmt: skip
 
 
 @router.get("/v1/artifacts", response_model=ArtifactsAnswer, summary="The artifacts in the folder, and what serves now", tags=["artifacts"])

@@ -113,7 +113,10 @@ class ServingAnswer(BaseModel):
     version: str
     recommender: str
     artifact: str = Field(description="name/version, as answers carry it")
-    scoring: str = Field(description="how this worker's GRU ranks the items: exact, fp16, int8, int4 or clustered (CAIRN_SCORING as resolved for the artifact)")
+    scoring: str = Field(description="how this worker's GRU ranks the items: exact, fp16, int8, int4, int4+int8 or clustered (CAIRN_SCORING as resolved for the artifact)")
+    small_batch_rows: int | None = Field(
+        None, description="int4+int8: scoring passes of up to this many clicks read the int4 table, larger ones int8 (timed when this worker loaded the model)"
+    )
 
 
 class SwitchAnswer(ServingAnswer):

@@ -96,6 +96,7 @@ class LoadedModel:
         self.artifact = artifact
         self.tag = f"{artifact.name}/{artifact.version}"
         self.scoring: str = getattr(step, "scoring", "exact")  # exact | fp16 | int8 | int4 | int4+int8 | clustered: which path scores the GRU's answers
+        self.small_batch_rows: int = getattr(step, "small_up_to", 0)  # int4+int8: passes of up to this many clicks read int4
         self.item_index = artifact.item_index
         self.item_ids = artifact.item_ids  # index -> id
         self.popularity = PopularityRecommender(artifact.popularity)

@@ -24,7 +24,7 @@ def test_models_lists_artifacts_with_metrics_and_the_active_one(fresh_server, st
     running = fresh_server(store)
     with running.client() as c:
         listing = c.get("/v1/artifacts").json()
-    assert listing["active"] == {"name": "shop", "version": "v1", "recommender": "gru", "artifact": "shop/v1", "scoring": "exact"}  # 500 items: auto scores exactly
+    assert listing["active"] == {"name": "shop", "version": "v1", "recommender": "gru", "artifact": "shop/v1", "scoring": "exact", "small_batch_rows": None}  # 500 items: auto scores exactly
     by_version = {a["version"]: a for a in listing["artifacts"]}
     assert set(by_version) == {"v0-broken", "v1", "v2"}
     assert by_version["v1"]["active"] and not by_version["v2"]["active"]

@@ -45,9 +45,12 @@ def test_int4_int8_counts_each_click_under_the_table_that_scored_it(fresh_server
         for item in CLICKS:
             r = c.post(f"/v1/sessions/{session}/clicks", json={"item_id": item, "count": 10})
             assert r.status_code == 200 and r.json()["served_by"] == "gru"
-        metrics, active = c.get("/metrics").text, c.get("/readyz").json()["active"]["scoring"]
+        metrics, ready, listing = c.get("/metrics").text, c.get("/readyz").json()["active"], c.get("/v1/artifacts").json()["active"]
     assert [x["item_id"] for x in r.json()["items"]] == offline["v1"].top(CLICKS, 10)[0]
-    assert (active, scoring_counts(metrics)) in [("int4+int8", {"int4": 3.0}), ("int8", {"int8": 3.0})]
+    assert (ready["scoring"], scoring_counts(metrics)) in [("int4+int8", {"int4": 3.0}), ("int8", {"int8": 3.0})]
+    # How many clicks a pass may hold and still read int4, as the worker measured it (none: plain int8).
+    assert ready["small_batch_rows"] == listing["small_batch_rows"]
+    assert (ready["scoring"] == "int4+int8") == (1 <= (listing["small_batch_rows"] or 0) <= 4)
 
 
 def test_auto_scores_a_small_catalogue_exactly(fresh_server, sid) -> None:
