@@ -107,14 +107,14 @@ bench: $(STAMP)
 
 # The trained model the catalogue rows measure: the demo shop generated into $(1) with demo-data
 # options $(2), prepared, one epoch of training into checkpoints/$(3), exported as garden-$(3)/bench
-# with the clustered index.
+# with the clustered index and both packed tables (int8 and int4, for the int4+int8 rows).
 define trained_catalogue_model
 	$(BIN)/cairn demo-data --out $(1)/raw $(2)
 	$(BIN)/cairn prepare --input $(1)/raw/clicks.csv --out $(1)/prepared \
 	  --session-column session_id --item-column item_id --time-column timestamp --min-item-clicks 1
 	$(BIN)/cairn train --data $(1)/prepared --out checkpoints/$(3) --epochs 1 --patience 0
 	$(BIN)/cairn export --checkpoint checkpoints/$(3)/best.pt --data $(1)/prepared --artifacts $(1)/model_store \
-	  --name garden-$(3) --version bench --overwrite --clustered-index always
+	  --name garden-$(3) --version bench --overwrite --clustered-index always --precisions int8 int4
 endef
 
 # Large catalogues: a GRU trained on a 200,000-item demo shop (105,402 items reach training), its
@@ -125,7 +125,7 @@ bench-large: $(STAMP)
 	$(BIN)/cairn evaluate --data $(LARGE)/prepared --recommenders '' --artifact $(LARGE)/model_store/garden-large/bench \
 	  --scoring exact int8 clustered --cost-clicks 0 --out reports/bench/large-scoring.json
 	$(BIN)/python -m bench.catalogue --trained $(LARGE)/model_store/garden-large/bench --trained-data $(LARGE)/prepared \
-	  --out reports/bench/catalogue.json
+	  --paths exact int8 int4+int8 clustered --out reports/bench/catalogue.json
 
 # A model trained on the demo shop generated with a million items (631,430 reach training): the
 # catalogue benchmark's trained rows at that size. About 20 minutes here, most of it one epoch's
@@ -136,7 +136,7 @@ bench-million: $(STAMP)
 	$(BIN)/cairn evaluate --data $(MILLION)/prepared --recommenders '' --artifact $(MILLION)/model_store/garden-million/bench \
 	  --scoring exact int8 clustered --sessions 5000 --cost-clicks 0 --out reports/bench/million-scoring.json
 	$(BIN)/python -m bench.catalogue --sizes --trained $(MILLION)/model_store/garden-million/bench --trained-data $(MILLION)/prepared \
-	  --paths exact int8 clustered clustered@32 --out reports/bench/catalogue-million.json
+	  --paths exact int8 int4+int8 clustered --out reports/bench/catalogue-million.json
 
 clean:
 	rm -rf $(VENV) reports data checkpoints
