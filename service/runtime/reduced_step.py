@@ -67,7 +67,8 @@ def quantise_rows(features: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 class ReducedStep(FeatureStep):
-    """`OnnxStep`'s `run` for an artifact with item vectors, scoring in `precision` (fp16 | int8 | int4)."""
+    """`OnnxStep`'s `run` for an artifact with item vectors, scoring in `precision` (fp16 | int8 | int4),
+    and with `small` (int4 beside int8: the int4+int8 path) batches of few rows in that one."""
 
     def __init__(self, tables: ItemVectors, precision: str, threads: int = 1, small: str | None = None, small_up_to: int | None = None) -> None:
         """`small`: a second packed precision for batches of few rows (`int4` beside `int8`), kept
