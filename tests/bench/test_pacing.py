@@ -57,27 +57,28 @@ def test_clicks_are_spread_evenly_not_sent_in_bursts() -> None:
     assert 0.35 < arrivals[-1] - arrivals[0] < 0.6  # 39 intervals of 10 ms
 
 
+def paced_against(answer_s: float, **pacing: float) -> dict:
+    """`paced` against a recording server that answers after `answer_s` seconds."""
+
+    async def go() -> dict:
+        server, port, _ = await recording_server(answer_s)
+        async with server:
+            return await paced(port, click_of, **pacing)
+
+    return asyncio.run(go())
+
+
 def test_a_slow_answer_delays_the_clock_of_the_clicks_after_it() -> None:
     # Each connection's clicks are due every 40 ms (4 connections at 100/s) but every answer takes
     # 60 ms: the clicks fall behind their schedule, and timed from when they were due their
     # latency grows instead of staying at 60 ms (no coordinated omission).
-    async def go() -> dict:
-        server, port, _ = await recording_server(0.06)
-        async with server:
-            return await paced(port, click_of, rate=100.0, connections=4, max_clicks=24, max_seconds=5.0)
-
-    result = asyncio.run(go())
+    result = paced_against(0.06, rate=100.0, connections=4, max_clicks=24, max_seconds=5.0)
     assert result["clicks"] == 24
     assert result["p50_ms"] > 70 and result["p99_ms"] > 100, result
 
 
 def test_bounded_by_time() -> None:
-    async def go() -> dict:
-        server, port, _ = await recording_server(0.0)
-        async with server:
-            return await paced(port, click_of, rate=50.0, connections=2, max_clicks=10_000, max_seconds=0.3)
-
-    result = asyncio.run(go())
+    result = paced_against(0.0, rate=50.0, connections=2, max_clicks=10_000, max_seconds=0.3)
     assert 12 <= result["clicks"] <= 16  # 0.3 s at 50/s: 15 clicks due
 
 
