@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
+import logging
 from typing import Any
 
 import redis.asyncio as aioredis
@@ -58,6 +59,8 @@ return 1
 """
 CHECK_AND_SET_SHA = hashlib.sha1(CHECK_AND_SET.encode()).hexdigest()
 REDIS_ERRORS = (RedisError, RedisClusterException, OSError)  # RedisClusterException is not a RedisError
+
+log = logging.getLogger("cairn.store")
 
 
 async def check_and_set(client: Any, key: str, expected_token: bytes, value: bytes, ttl_ms: int) -> bool:
@@ -149,6 +152,15 @@ class RedisCommands:
             if isinstance(exc, (RedisConnectionError, OSError)):
                 with contextlib.suppress(*REDIS_ERRORS):
                     await self._connection_lost()
+            raise store_error(what, exc) from exc
+        except Exception as exc:  # noqa: BLE001 - a failure of the client library is still the store's
+            # redis-py's asyncio connection has failed with AttributeError ('NoneType' object has no
+            # attribute 'writelines') when a cluster node restarted while a connection to it was being
+            # set up: the click must degrade like any store failure, not answer 500. Logged with its
+            # traceback, so a fault of our own does not pass as an outage unseen.
+            log.warning("redis %s failed inside the client with %s", what, type(exc).__name__, exc_info=True)
+            with contextlib.suppress(*REDIS_ERRORS):
+                await self._connection_lost()
             raise store_error(what, exc) from exc
 
     async def _connection_lost(self) -> None:

@@ -158,6 +158,27 @@ def test_redis_errors_become_store_errors():
     run(go())
 
 
+def test_a_failure_inside_the_client_library_is_a_store_error(redis_url, caplog):
+    # Seen in a cluster-outage run: redis-py raised AttributeError ('NoneType' object has no
+    # attribute 'writelines') from a connection torn down while it was being set up, and the click
+    # was answered 500. Any exception out of the client is the store failing: the visit degrades.
+    async def go():
+        store = redis_store(redis_url, "lib:")
+        try:
+            async def torn_down(key):
+                raise AttributeError("'NoneType' object has no attribute 'writelines'")
+
+            store._client.get = torn_down
+            with pytest.raises(StoreError, match="redis GET failed \\(AttributeError") as info:
+                await RedisCommands.load(store, "s")
+            assert isinstance(info.value.__cause__, AttributeError)
+        finally:
+            await store.close()
+
+    run(go())
+    assert "failed inside the client with AttributeError" in caplog.text  # logged with its traceback
+
+
 def test_bad_redis_url_is_a_store_error():
     with pytest.raises(StoreError, match="CAIRN_SESSION_STORE"):
         redis_store("redis://127.0.0.1:notaport/0", "x:")
