@@ -220,7 +220,18 @@ def answered_by(port: int) -> dict[str, float]:
         out[f"scoring_{kind}"] = float(value)
     for served, value in re.findall(r'cairn_recommendation_duration_seconds_count\{served_by="(\w+)"\} ([\d.e+]+)', text):
         out[f"served_by_{served}"] = float(value)
+    for name in ("batches", "batched_clicks", "held_clicks"):  # one worker: no pid label
+        m = re.search(rf"\ncairn_gru_{name} ([\d.e+]+)", text)
+        if m:
+            out[name] = float(m.group(1))
     return out
+
+
+def batching_between(before: dict[str, float], after: dict[str, float]) -> dict[str, float]:
+    """The worker's scoring calls over one phase: mean clicks per call, and clicks a call was held for."""
+    calls = after.get("batches", 0.0) - before.get("batches", 0.0)
+    clicks = after.get("batched_clicks", 0.0) - before.get("batched_clicks", 0.0)
+    return {"mean_batch": round(clicks / calls, 2) if calls else None, "held_clicks": after.get("held_clicks", 0.0) - before.get("held_clicks", 0.0)}
 
 
 def rotated(items: list[str], k: int) -> list[str]:
@@ -244,8 +255,11 @@ def serve_and_measure(store: Path, name_version: tuple[str, str], path: str, cor
         ready_s = time.perf_counter() - t0
         os.sched_setaffinity(0, {cores[1]})
         paced_at_rate(port, rotated(items, 5000), 50)  # warm-up
+        before = answered_by(port)
         at_rate = paced_at_rate(port, items, args.paced_clicks)
+        after_rate = answered_by(port)
         at_8 = asyncio.run(saturate(port, rotated(items, 20000), 8, args.max_clicks, args.max_seconds, 1.0))
+        at_rate["batching"], at_8["batching"] = batching_between(before, after_rate), batching_between(after_rate, answered_by(port))
         capacity = capacity_at_budget(port, rotated(items, 40000), at_8["clicks_per_s"], args.max_clicks, min(args.max_seconds, CAPACITY_STEP_S))
         memory = memory_of(proc.pid)
         return {"ready_s": round(ready_s, 1), "paced_50_per_s": at_rate, "concurrency_8": at_8, "capacity": capacity, "memory": memory,
@@ -264,7 +278,9 @@ def measure_paths(store: Path, name_version: tuple[str, str], paths: list[str], 
         out[path] = r
         print(
             f"  {path:13s} 50/s p50 {r['paced_50_per_s']['p50_ms']} p99 {r['paced_50_per_s']['p99_ms']} ms | "
-            f"8 visits {r['concurrency_8']['clicks_per_s']} clicks/s p50 {r['concurrency_8']['p50_ms']} p99 {r['concurrency_8']['p99_ms']} ms | "
+            f"8 visits {r['concurrency_8']['clicks_per_s']} clicks/s p50 {r['concurrency_8']['p50_ms']} p99 {r['concurrency_8']['p99_ms']} ms "
+            f"(mean batch {r['concurrency_8']['batching']['mean_batch']}, held {r['concurrency_8']['batching']['held_clicks']:g}; "
+            f"at 50/s held {r['paced_50_per_s']['batching']['held_clicks']:g}) | "
             f"capacity at p99 {BUDGET_MS:g} ms {r['capacity']['clicks_per_s']} clicks/s | "
             f"agreement {r['top20_agreement']} | RSS {r['memory']['rss_mb']} MB ({r['memory']['private_mb']} private, "
             f"{r['memory'].get('anonymous_mb')} anonymous) | {r['answers']}",

@@ -216,6 +216,7 @@ def _collect(service: Service) -> None:
                 m.arm_serving.set((arm, arm_choice.name, arm_choice.version, arm_choice.recommender), 1.0)
     m.gru_batches.set((), float(model.batcher.batches))
     m.gru_batched_clicks.set((), float(model.batcher.clicks))
+    m.gru_held_clicks.set((), float(model.batcher.held_clicks))
     recent = service.visits.recent
     if recent is not None:
         m.state_cache.set(("hit",), float(recent.hits))

@@ -184,6 +184,9 @@ class ServiceMetrics:
         self.gru_batched_clicks: Gauge = (
             Gauge("cairn_gru_batched_clicks", "Clicks scored by those calls; divided by cairn_gru_batches, the mean batch size.", registry=reg, mode="livesum")
         )
+        self.gru_held_clicks: Gauge = (
+            Gauge("cairn_gru_held_clicks", "Clicks a GRU scoring call was held for, and caught, while the clicks it answered kept coming straight back.", registry=reg, mode="livesum")
+        )
         self.gru_scoring: Counter = (
             Counter("cairn_gru_scoring_total", "GRU answers by scoring path: exact (every item, float32), fp16, int8 or int4 (approximate candidates re-scored exactly), clustered (the nearest clusters' items, exact).", ("scoring",), registry=reg)
         )

@@ -28,6 +28,7 @@ import numpy as np
 
 from service.runtime.onnx_step import OnnxStep
 from service.errors import StepError
+from service.runtime.returning_clicks import ReturnWatch
 from service.runtime.tasks import stop_task
 
 INLINE_MAX_S = 0.002
@@ -58,8 +59,11 @@ class StepBatcher:
         self._buffers: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="cairn-ort")
         self._task: asyncio.Task | None = None
+        self._returns = ReturnWatch()
+        self._arrival = asyncio.Event()  # set by each click queued while the drain task waits for more
         self.batches = 0  # calls made, and clicks they scored: their ratio is the mean batch size
         self.clicks = 0
+        self.held_clicks = 0  # clicks a step was held for and caught (see returning_clicks)
 
     def start(self) -> None:
         if self._task is None:
@@ -78,6 +82,8 @@ class StepBatcher:
             raise StepError("the step runner is not running")
         future = asyncio.get_running_loop().create_future()
         self._queue.put_nowait(_Pending(item, hidden, top_n, future))
+        self._returns.arrived(time.perf_counter())
+        self._arrival.set()
         return await future
 
     async def close(self) -> None:
@@ -94,8 +100,12 @@ class StepBatcher:
         loop = asyncio.get_running_loop()
         while True:
             batch = [await self._queue.get()]
-            while len(batch) < self.max_batch and not self._queue.empty():
-                batch.append(self._queue.get_nowait())
+            self._take_queued(batch)
+            try:
+                await self._wait_for_returning(batch)
+            except asyncio.CancelledError:
+                _fail(batch, StepError("the step runner was closed"))
+                raise
             batch = [p for p in batch if not p.future.done()]  # callers past their deadline left
             if not batch:
                 continue
@@ -118,6 +128,7 @@ class StepBatcher:
                 continue
             if lone:
                 self._inline = step_s < self.inline_max_s
+            self._returns.step_ended(time.perf_counter(), len(batch), step_s)
             self.batches += 1
             self.clicks += len(batch)
             for b, p in enumerate(batch):
@@ -126,6 +137,27 @@ class StepBatcher:
                     p.future.set_result(
                         (np.ascontiguousarray(next_hidden[:, b, :]), top_items[b, : p.top_n], top_scores[b, : p.top_n], step_s, scoring)
                     )
+
+    def _take_queued(self, batch: list[_Pending]) -> None:
+        while len(batch) < self.max_batch and not self._queue.empty():
+            batch.append(self._queue.get_nowait())
+
+    async def _wait_for_returning(self, batch: list[_Pending]) -> None:
+        """Add to `batch` the clicks the return watch expects back soon, until they are in or its
+        window closes."""
+        while len(batch) < self.max_batch:
+            now = time.perf_counter()
+            more, until = self._returns.wait_for(now)
+            if more <= 0:
+                return
+            self._arrival.clear()
+            try:
+                await asyncio.wait_for(self._arrival.wait(), until - now)
+            except TimeoutError:
+                return
+            before = len(batch)
+            self._take_queued(batch)
+            self.held_clicks += len(batch) - before
 
     def _timed_step(self, items: np.ndarray, hidden: np.ndarray, top_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, str]:
         t0 = time.perf_counter()
