@@ -42,7 +42,7 @@ from bench.harness.ports import free_port
 from bench.harness.processes import launch, stop_process, wait_http
 from bench.reporting import write_report
 from offline.evaluate.scoring_paths import parse_scoring
-from service.artifacts.item_vectors import DEFAULT_PRECISIONS, PRECISIONS
+from service.artifacts.item_vectors import PRECISIONS, default_precisions
 from bench.service import bench_cores, click_stream, paced, saturate, service_environment
 from service.errors import BenchError
 
@@ -81,12 +81,13 @@ def export(store: Path, n_items: int, log: Path, flags: tuple[str, ...] = ()) ->
     }
 
 
-def files_for(paths: list[str], has_index: bool) -> tuple[str, ...]:
-    """The `cairn export` flags that add what the default export leaves out and `paths` need: the
-    fp16 and int8 copies, and the clustered index; () when nothing is missing."""
+def files_for(paths: list[str], has_index: bool, n_items: int) -> tuple[str, ...]:
+    """The `cairn export` flags that add what the default export of `n_items` items leaves out and
+    `paths` need: reduced copies, and the clustered index; () when nothing is missing."""
     asked = {part for t in paths for part in parse_path(t)[0].split("+")}  # int4+int8 needs both tables
-    precisions = [p for p in PRECISIONS if p in asked or p in DEFAULT_PRECISIONS]
-    flags = ("--precisions", *precisions) if set(precisions) != set(DEFAULT_PRECISIONS) else ()
+    default = default_precisions(n_items)
+    precisions = [p for p in PRECISIONS if p in asked or p in default]
+    flags = ("--precisions", *precisions) if set(precisions) != set(default) else ()
     return flags + (("--clustered-index", "always") if "clustered" in asked and not has_index else ())
 
 
@@ -328,9 +329,9 @@ def main(argv: list[str] | None = None) -> int:
             made["item_clusters_skipped"] = clusters_section(Path(made["path"]), "item_clusters_skipped")
             print(f"{n:,} items: export {made['seconds']} s, peak {made['peak_rss_mb']} MB, artifact {made['artifact_mb']} MB, "
                   f"clusters {made['item_clusters'] or made['item_clusters_skipped']}", flush=True)  # fmt: skip
-            flags = files_for(args.paths, has_index=made["item_clusters"] is not None)
+            flags = files_for(args.paths, has_index=made["item_clusters"] is not None, n_items=n)
             if flags:
-                # The default export holds int4 only, and no index for random weights: the rows asked for need more.
+                # The default export holds default_precisions(n), and no index for random weights: the rows asked for may need more.
                 made["again"] = {"flags": list(flags), **export(store, n, work / f"export-{n}-again.log", flags)}
                 made["item_clusters"] = clusters_section(Path(made["path"]))
                 print(f"  again with {' '.join(flags)}: {made['again']['seconds']} s, peak {made['again']['peak_rss_mb']} MB, "

@@ -14,7 +14,7 @@ import numpy as np
 
 from service.artifacts.format import write_artifact
 from service.artifacts.item_clusters import ITEM_CLUSTER_FILES
-from service.artifacts.item_vectors import DEFAULT_PRECISIONS, PRECISIONS, item_vectors_manifest
+from service.artifacts.item_vectors import PRECISIONS, default_precisions, item_vectors_manifest
 from service.errors import ArtifactError, InputDataError
 from offline.data.dataset import PreparedData, SessionSplit
 from offline.model.gru import GRUConfig, NextClickGRU, load_checkpoint
@@ -55,7 +55,7 @@ def export_artifact(
     overwrite: bool = False,
     names: dict[str, str] | None = None,
     clusters: bool | None = None,
-    precisions: tuple[str, ...] = DEFAULT_PRECISIONS,
+    precisions: tuple[str, ...] | None = None,
 ) -> Path:
     """Write `<store>/<name>/<version>/` from a training checkpoint and the data it was trained on.
 
@@ -182,7 +182,7 @@ def write_random_artifact(
     item_ids: list[str] | None = None,
     exclude_seen: bool = True,
     clusters: bool | None = None,
-    precisions: tuple[str, ...] = DEFAULT_PRECISIONS,
+    precisions: tuple[str, ...] | None = None,
 ) -> Path:
     """An artifact with random weights and tables, for benchmarks and service tests (item ids
     sku-000000... unless given).
@@ -283,13 +283,15 @@ def _write_model_artifact(
     model: NextClickGRU,
     manifest_fields: dict[str, Any],
     index: Future | None = None,
-    precisions: tuple[str, ...] = DEFAULT_PRECISIONS,
+    precisions: tuple[str, ...] | None = None,
     **tables: Any,
 ) -> Path:
     """`write_artifact` for a GRU: its step graph (item tables as external data), the item-vector
-    files (the reduced copies of `precisions`), the clustered index (`start_index`'s, its files
-    last), and the model's own manifest fields."""
+    files (the reduced copies of `precisions`; None: default_precisions for the model's catalogue),
+    the clustered index (`start_index`'s, its files last), and the model's own manifest fields."""
     weights = weights_of(model)
+    if precisions is None:
+        precisions = default_precisions(model.config.n_items)
     vector_files = item_vector_files(weights, precisions)
     precisions = tuple(p for p in PRECISIONS if p in precisions)  # the manifest lists them in one order
     # The tables that are ready are written first, then the reduced copies, made as they are

@@ -15,7 +15,7 @@ import json
 from pathlib import Path
 
 from service.artifacts.format import MANIFEST
-from service.artifacts.item_vectors import DEFAULT_PRECISIONS, PRECISIONS
+from service.artifacts.item_vectors import DEFAULT_PRECISIONS, LARGE_DEFAULT_PRECISIONS, PRECISIONS, REDUCED_FROM
 from service.errors import InputDataError
 
 DEFAULT_STORE = Path("model_store")
@@ -77,10 +77,10 @@ def configure(parser: argparse.ArgumentParser) -> None:
         "--precisions",
         nargs="+",
         choices=PRECISIONS,
-        default=list(DEFAULT_PRECISIONS),
         metavar="P",
         help=f"reduced-precision copies of the item vectors to include, of {', '.join(PRECISIONS)} (CAIRN_SCORING's paths of those names; "
-        f"default: {' '.join(DEFAULT_PRECISIONS)}, the one CAIRN_SCORING=auto serves)",
+        f"default: what CAIRN_SCORING=auto serves, {' '.join(DEFAULT_PRECISIONS)} below {REDUCED_FROM:,} items and "
+        f"{' '.join(LARGE_DEFAULT_PRECISIONS)} from there, for int4+int8)",
     )
     random = parser.add_argument_group("with --random")
     random.add_argument("--items", type=_positive_int, metavar="N", help="number of items (default: 40000)")
@@ -108,7 +108,7 @@ def run(args: argparse.Namespace) -> int:
             seed=args.seed or 0,
             overwrite=args.overwrite,
             clusters=CLUSTERED_INDEX[args.clustered_index],
-            precisions=tuple(args.precisions),
+            precisions=tuple(args.precisions) if args.precisions else None,
         )
     else:
         given = [flag for flag, value in random_only.items() if value is not None]
@@ -128,7 +128,7 @@ def run(args: argparse.Namespace) -> int:
             overwrite=args.overwrite,
             names=read_names(args.names) if args.names is not None else None,
             clusters=CLUSTERED_INDEX[args.clustered_index],
-            precisions=tuple(args.precisions),
+            precisions=tuple(args.precisions) if args.precisions else None,
         )
     print(f"wrote {path}")
     skipped = json.loads((path / MANIFEST).read_text(encoding="utf-8")).get("item_clusters_skipped")

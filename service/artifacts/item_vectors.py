@@ -55,7 +55,7 @@ ITEM_SCALES_INT4 = "item_scales_int4.npy"
 CANDIDATES_INT4 = "candidates_int4.onnx"
 ITEM_VECTOR_FILES = (FEATURE_GRAPH, EMBEDDING, ITEM_VECTORS, ITEM_BIAS)  # the feature step and the exact re-scoring
 # Each reduced precision's files: an artifact holds those the export was asked for (`cairn export
-# --precisions`, int8 by default: the one `auto` serves); exports before int4 hold fp16 and int8.
+# --precisions`; by default default_precisions below); exports before int4 hold fp16 and int8.
 PRECISION_FILES = {
     "fp16": (ITEM_VECTORS_FP16, CANDIDATES_FP16),
     "int8": (ITEM_VECTORS_INT8, ITEM_SCALES, CANDIDATES_INT8),
@@ -64,7 +64,17 @@ PRECISION_FILES = {
 FEATURE_GRAPH_FORMAT = "cairn-gru-features/1"
 CANDIDATE_GRAPH_FORMAT = "cairn-candidates/1"
 PRECISIONS = tuple(PRECISION_FILES)
-DEFAULT_PRECISIONS = ("int8",)  # what `cairn export` writes unless told: the fastest full pass measured (README, Large catalogues)
+REDUCED_FROM = 100_000  # items: from here CAIRN_SCORING=auto serves a reduced path (below it, exact)
+DEFAULT_PRECISIONS = ("int8",)  # what `cairn export` writes unless told, below REDUCED_FROM
+LARGE_DEFAULT_PRECISIONS = ("int8", "int4")  # and from there: both packed tables, for the int4+int8 path auto then serves
+
+
+def default_precisions(n_items: int) -> tuple[str, ...]:
+    """The reduced copies an export writes unless told: what CAIRN_SCORING=auto serves at this size
+    (int8 alone below REDUCED_FROM, for CAIRN_SCORING=int8; both packed tables from there)."""
+    return LARGE_DEFAULT_PRECISIONS if n_items >= REDUCED_FROM else DEFAULT_PRECISIONS
+
+
 # Precisions whose candidate graph takes the table as its initialisers, replaced by the memory maps
 # when the service opens it (ONNX Runtime then packs its own copy for its fast kernels); the others
 # are fed the table each call. int8 was fed in artifacts exported before its graph was packed:

@@ -36,7 +36,7 @@ from service.config import ARTIFACT_PART, RECOMMENDERS, Settings
 from service.errors import ArtifactError, CairnError, ModelNotReadyError, SettingsError, StepError, StoreError
 from service.runtime.batching import StepBatcher
 from service.artifacts.item_clusters import ClusterFit, cluster_fit, load_item_clusters
-from service.artifacts.item_vectors import PACKED, load_item_vectors
+from service.artifacts.item_vectors import PACKED, REDUCED_FROM, load_item_vectors
 from service.runtime.clustered_step import ClusteredStep
 from service.runtime.onnx_step import OnnxStep
 from service.runtime.reduced_step import ReducedStep
@@ -144,7 +144,7 @@ class LoadedModel:
 # 631,430 trained and 1.4x at 1,000,000 random, int8 no faster than exact, on a 2-core AVX2
 # machine; and the clustered index of a trained 105,402-item model at half exact's p99. Packed int8
 # (a later round, a 2-core AVX-512 machine): 2.1x exact's clicks/s at 200,000 random items.
-AUTO_REDUCED_FROM = 100_000
+AUTO_REDUCED_FROM = REDUCED_FROM  # the export writes both packed tables from this size too
 SMALL_AND_SHARED = "int4+int8"  # the path of two packed tables: int4 for batches of few rows, int8 for larger ones
 
 

@@ -64,10 +64,13 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
 
 
 def test_the_second_export_adds_only_what_the_paths_need() -> None:
-    assert files_for(["exact", "int8"], has_index=False) == ()
-    assert files_for(["exact", "clustered@8"], has_index=True) == ()
-    assert files_for(["fp16", "clustered"], has_index=False) == ("--precisions", "fp16", "int8", "--clustered-index", "always")
-    assert files_for(["int4+int8"], has_index=False) == ("--precisions", "int8", "int4")  # both tables
+    assert files_for(["exact", "int8"], has_index=False, n_items=3000) == ()
+    assert files_for(["exact", "clustered@8"], has_index=True, n_items=3000) == ()
+    assert files_for(["fp16", "clustered"], has_index=False, n_items=3000) == ("--precisions", "fp16", "int8", "--clustered-index", "always")
+    assert files_for(["int4+int8"], has_index=False, n_items=3000) == ("--precisions", "int8", "int4")  # both tables
+    # From 100,000 items the default export holds both packed tables already.
+    assert files_for(["int4+int8", "int4"], has_index=False, n_items=100_000) == ()
+    assert files_for(["fp16"], has_index=False, n_items=100_000) == ("--precisions", "fp16", "int8", "int4")
 
 
 def test_path_names_are_checked() -> None:

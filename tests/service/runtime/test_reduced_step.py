@@ -25,7 +25,7 @@ import pytest
 
 from offline.export.artifact_writer import write_random_artifact
 from service.artifacts.format import load_artifact, write_artifact
-from service.artifacts.item_vectors import DEFAULT_PRECISIONS, INT4_BLOCK, ITEM_VECTOR_FILES, PRECISION_FILES, PRECISIONS, load_item_vectors
+from service.artifacts.item_vectors import DEFAULT_PRECISIONS, INT4_BLOCK, REDUCED_FROM, default_precisions, ITEM_VECTOR_FILES, PRECISION_FILES, PRECISIONS, load_item_vectors
 from service.errors import ArtifactError, StepError
 from service.runtime.active import AUTO_REDUCED_FROM, load_model, scoring_path
 from service.runtime.onnx_step import OnnxStep, open_session
@@ -182,6 +182,24 @@ def test_an_export_holds_the_precisions_asked_for(tmp_path: Path) -> None:
     assert sorted(load_item_vectors(some, a.manifest, a.n_items).codes) == ["fp16", "int8"]
     with pytest.raises(ArtifactError, match="unknown precision 'int2'"):
         write_random_artifact(tmp_path, "shop", "v3", n_items=300, hidden_size=8, precisions=("int2",))
+
+
+def test_from_the_reduced_size_on_the_default_export_holds_both_packed_tables_and_auto_serves_int4_int8(tmp_path: Path, monkeypatch) -> None:
+    from service.artifacts import item_vectors
+    from service.cli import main
+
+    assert default_precisions(REDUCED_FROM - 1) == ("int8",) and default_precisions(REDUCED_FROM) == ("int8", "int4")
+    assert AUTO_REDUCED_FROM == REDUCED_FROM  # the export writes what auto serves at that size
+    # The rule at a test's size: `cairn export --random` with no --precisions, as a user runs it.
+    monkeypatch.setattr(item_vectors, "REDUCED_FROM", 400)
+    argv = ["export", "--random", "--items", "{n}", "--hidden-size", "8", "--artifacts", str(tmp_path), "--name", "shop", "--version", "v{n}"]
+    for n, held in ((399, ["int8"]), (400, ["int8", "int4"])):
+        assert main([a.format(n=n) for a in argv]) == 0
+        a = load_artifact(tmp_path / "shop" / f"v{n}")
+        assert a.manifest["item_vectors"]["precisions"] == a.manifest["item_vectors"]["packed"] == held
+    monkeypatch.setattr("service.runtime.active.AUTO_REDUCED_FROM", 400)
+    model = load_model(tmp_path / "shop" / "v400", 1, 8, "auto")
+    assert model.scoring in ("int4+int8", "int8")  # int8 alone where int4 won no batch size when timed at load
 
 
 @pytest.mark.parametrize("precision", ["fp16", "int8", "int4"])
