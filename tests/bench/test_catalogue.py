@@ -41,6 +41,7 @@ def test_small_catalogue_report(tmp_path: Path) -> None:
             assert r["paced_50_per_s"]["clicks"] == 20 and r["paced_50_per_s"]["errors"] == 0
             assert r["concurrency_8"]["clicks"] > 0 and r["concurrency_8"]["errors"] == 0
             # From the worker's /metrics, per phase: 20 clicks at 50/s scored one by one, never held.
+            assert {"batches", "batched_clicks", "held_clicks"} <= r["answers"].keys()  # read from the worker, not defaulted
             assert r["paced_50_per_s"]["batching"] == {"mean_batch": 1.0, "held_clicks": 0.0}
             assert 1.0 <= r["concurrency_8"]["batching"]["mean_batch"] <= 8.0
             # Capacity: the highest open-loop rate tried whose p99 stayed within the budget.

@@ -109,6 +109,9 @@ def test_metrics_parse_and_hold_the_documented_families(server, sid):
         "cairn_breaker_state": "gauge",
         "cairn_breaker_transitions_total": "counter",
         "cairn_latency_estimate_seconds": "gauge",
+        "cairn_gru_batches": "gauge",
+        "cairn_gru_batched_clicks": "gauge",
+        "cairn_gru_held_clicks": "gauge",
     }
     assert expected.items() <= types.items()
     check_histograms(types, after)
@@ -123,6 +126,8 @@ def test_metrics_parse_and_hold_the_documented_families(server, sid):
     # Every breaker has a state sample (0 closed); the model's latency estimate is a step's p95 in seconds.
     assert value_of(after, "cairn_breaker_state", breaker="model") == 0 and value_of(after, "cairn_breaker_state", breaker="store") == 0
     assert 0 < value_of(after, "cairn_latency_estimate_seconds", part="model") < 1
+    # Two GRU clicks one after the other: two scoring calls of one click each, neither held.
+    assert grew("cairn_gru_batches") == grew("cairn_gru_batched_clicks") == 2 and grew("cairn_gru_held_clicks") == 0
     if server.settings.store_kind == "redis":
         # The visit's first click read Redis; the next two started from this worker's own last write.
         assert types["cairn_state_cache_lookups"] == "gauge"
