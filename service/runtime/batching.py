@@ -112,8 +112,9 @@ class StepBatcher:
             items, hidden = self._fill(batch)
             top_n = max(p.top_n for p in batch)
             lone = len(batch) == 1
+            inline = lone and self._inline
             try:
-                if lone and self._inline:
+                if inline:
                     self.inline_calls += 1
                     next_hidden, top_items, top_scores, step_s, scoring = self._timed_step(items, hidden, top_n)
                 else:
@@ -128,7 +129,9 @@ class StepBatcher:
                 continue
             if lone:
                 self._inline = step_s < self.inline_max_s
-            self._returns.step_ended(time.perf_counter(), len(batch), step_s)
+            # A step run on the loop opens no window: requests that came in meanwhile are read only
+            # after it, so their arrival times tell nothing of returns (and it is too short to pay).
+            self._returns.step_ended(time.perf_counter(), len(batch), 0.0 if inline else step_s)
             self.batches += 1
             self.clicks += len(batch)
             for b, p in enumerate(batch):

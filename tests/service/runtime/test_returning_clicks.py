@@ -151,3 +151,23 @@ def test_spaced_clicks_are_never_held():
 
     batcher = asyncio.run(go())
     assert batcher.held_clicks == 0 and batcher._returns.share == 0.0
+
+
+def test_a_step_run_on_the_loop_opens_no_window():
+    # Requests that arrive during a step run on the event loop are read after it: counting them as
+    # returns would make a lone click's every follower look like one.
+    step = SlowStep(0.004)
+    zero = np.zeros((1, 4), np.float32)
+
+    async def go():
+        batcher = StepBatcher(step, inline_max_s=1.0)  # every lone step on the loop
+        batcher.start()
+        try:
+            for _ in range(30):
+                await batcher.run(1, zero, 3)  # the next click at once: within any window
+        finally:
+            await batcher.close()
+        return batcher
+
+    batcher = asyncio.run(go())
+    assert batcher.inline_calls == 30 and batcher._returns.share == 0.0
