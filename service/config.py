@@ -117,7 +117,7 @@ class Settings(BaseSettings):
     # int4 (approximate candidates from reduced-precision vectors, re-scored exactly; needs an
     # artifact with item vectors), int4+int8 (both packed tables: int4 for the batch sizes it
     # scored faster at load, int8 for the rest), clustered (exact scores of the items in the
-    # nearest clusters of the artifact's clustered index), auto (from AUTO_REDUCED_FROM items on:
+    # nearest clusters of the artifact's clustered index), auto (from item_vectors.REDUCED_FROM items on:
     # clustered when the export measured >= 99% top-20 agreement for it reading <= 25% of the
     # items, else int4+int8 where both are exported, else int8, else int4; below: exact).
     scoring: Literal["auto", "exact", "fp16", "int8", "int4", "int4+int8", "clustered"] = "auto"

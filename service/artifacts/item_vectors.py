@@ -64,6 +64,13 @@ PRECISION_FILES = {
 FEATURE_GRAPH_FORMAT = "cairn-gru-features/1"
 CANDIDATE_GRAPH_FORMAT = "cairn-candidates/1"
 PRECISIONS = tuple(PRECISION_FILES)
+# CAIRN_SCORING=auto leaves exact scoring from REDUCED_FROM items on, and the export writes both
+# packed tables from there: below it the exact step is at least as fast (two ONNX Runtime calls
+# and a re-scoring cost more than one small pass). bench/catalogue.py measured int4 level with
+# exact at 200,000 random items (1.05x the clicks/s at 8 visits), 1.2x at 631,430 trained and 1.4x
+# at 1,000,000 random, int8 no faster than exact, on a 2-core AVX2 machine; and the clustered
+# index of a trained 105,402-item model at half exact's p99. Packed int8 (a later round, a 2-core
+# AVX-512 machine): 2.1x exact's clicks/s at 200,000 random items.
 REDUCED_FROM = 100_000  # items: from here CAIRN_SCORING=auto serves a reduced path (below it, exact)
 DEFAULT_PRECISIONS = ("int8",)  # what `cairn export` writes unless told, below REDUCED_FROM
 LARGE_DEFAULT_PRECISIONS = ("int8", "int4")  # and from there: both packed tables, for the int4+int8 path auto then serves

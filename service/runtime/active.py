@@ -138,13 +138,6 @@ class LoadedModel:
         return [ids[i] for i in indices]
 
 
-# `scoring = auto` leaves exact scoring from this many items on: below it the exact step is at least
-# as fast (two ONNX Runtime calls and a re-scoring cost more than one small pass). bench/catalogue.py
-# measured int4 level with exact at 200,000 random items (1.05x the clicks/s at 8 visits), 1.2x at
-# 631,430 trained and 1.4x at 1,000,000 random, int8 no faster than exact, on a 2-core AVX2
-# machine; and the clustered index of a trained 105,402-item model at half exact's p99. Packed int8
-# (a later round, a 2-core AVX-512 machine): 2.1x exact's clicks/s at 200,000 random items.
-AUTO_REDUCED_FROM = REDUCED_FROM  # the export writes both packed tables from this size too
 SMALL_AND_SHARED = "int4+int8"  # the path of two packed tables: int4 for batches of few rows, int8 for larger ones
 
 
@@ -160,7 +153,7 @@ def scoring_path(
     if precisions is None:
         return "exact"
     if setting == "auto":
-        if n_items < AUTO_REDUCED_FROM:
+        if n_items < REDUCED_FROM:
             return "exact"
         if clusters is not None and clusters.served_by_auto:  # its rule: service/artifacts/item_clusters.py
             return "clustered"

@@ -29,7 +29,8 @@ from service.artifacts.item_clusters import (
 from service.artifacts.item_vectors import load_item_vectors
 from service.errors import ArtifactError, StepError
 from service.runtime import active
-from service.runtime.active import AUTO_REDUCED_FROM, load_model, scoring_path
+from service.artifacts.item_vectors import REDUCED_FROM
+from service.runtime.active import load_model, scoring_path
 from service.runtime.clustered_step import ClusteredStep, ClusterSearch
 from service.runtime.onnx_step import OnnxStep
 
@@ -150,10 +151,10 @@ def test_the_step_runs_the_gru_and_with_every_cluster_probed_ranks_as_the_exact_
 def test_scoring_setting_chooses_clustered_only_where_it_was_measured_to_agree_and_to_save(artifact: Path) -> None:
     good = ClusterFit(AUTO_CLUSTERED_AGREEMENT, AUTO_CLUSTERED_MAX_SHARE)
     int4 = {"int4"}
-    assert scoring_path("auto", AUTO_REDUCED_FROM, int4, good) == "clustered"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, int4, ClusterFit(AUTO_CLUSTERED_AGREEMENT - 0.01, 0.1)) == "int4"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, int4, ClusterFit(0.995, 0.8)) == "int4"  # random weights: most clusters probed
-    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, int4, good) == "exact"
+    assert scoring_path("auto", REDUCED_FROM, int4, good) == "clustered"
+    assert scoring_path("auto", REDUCED_FROM, int4, ClusterFit(AUTO_CLUSTERED_AGREEMENT - 0.01, 0.1)) == "int4"
+    assert scoring_path("auto", REDUCED_FROM, int4, ClusterFit(0.995, 0.8)) == "int4"  # random weights: most clusters probed
+    assert scoring_path("auto", REDUCED_FROM - 1, int4, good) == "exact"
     assert scoring_path("clustered", 10, int4, None) == "exact"  # no index in the artifact
     assert scoring_path("clustered", 10, None, good) == "exact"  # no item vectors (an older export)
     assert scoring_path("clustered", 10, set(), ClusterFit(0.5, 1.0)) == "clustered"  # asked for: served, whatever its fit

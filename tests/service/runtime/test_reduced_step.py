@@ -27,7 +27,7 @@ from offline.export.artifact_writer import write_random_artifact
 from service.artifacts.format import load_artifact, write_artifact
 from service.artifacts.item_vectors import DEFAULT_PRECISIONS, INT4_BLOCK, REDUCED_FROM, default_precisions, ITEM_VECTOR_FILES, PRECISION_FILES, PRECISIONS, load_item_vectors
 from service.errors import ArtifactError, StepError
-from service.runtime.active import AUTO_REDUCED_FROM, load_model, scoring_path
+from service.runtime.active import load_model, scoring_path
 from service.runtime.onnx_step import OnnxStep, open_session
 from service.runtime.reduced_step import SMALL_BATCH_MAX, ReducedStep, candidates_for
 
@@ -160,8 +160,8 @@ def test_an_artifact_without_int4_files_serves_int8_for_auto(artifact: Path) -> 
     assert sorted(t.codes) == ["fp16", "int8"] and t.int4_scales is None
     with pytest.raises(StepError, match="no 'int4' item vectors"):
         ReducedStep(t, "int4")
-    assert scoring_path("auto", AUTO_REDUCED_FROM, {"fp16", "int8"}) == "int8"
-    assert scoring_path("int4", AUTO_REDUCED_FROM, {"fp16", "int8"}) == "exact"
+    assert scoring_path("auto", REDUCED_FROM, {"fp16", "int8"}) == "int8"
+    assert scoring_path("int4", REDUCED_FROM, {"fp16", "int8"}) == "exact"
 
 
 def test_an_export_holds_the_precisions_asked_for(tmp_path: Path) -> None:
@@ -189,7 +189,6 @@ def test_from_the_reduced_size_on_the_default_export_holds_both_packed_tables_an
     from service.cli import main
 
     assert default_precisions(REDUCED_FROM - 1) == ("int8",) and default_precisions(REDUCED_FROM) == ("int8", "int4")
-    assert AUTO_REDUCED_FROM == REDUCED_FROM  # the export writes what auto serves at that size
     # The rule at a test's size: `cairn export --random` with no --precisions, as a user runs it.
     monkeypatch.setattr(item_vectors, "REDUCED_FROM", 400)
     argv = ["export", "--random", "--items", "{n}", "--hidden-size", "8", "--artifacts", str(tmp_path), "--name", "shop", "--version", "v{n}"]
@@ -197,7 +196,7 @@ def test_from_the_reduced_size_on_the_default_export_holds_both_packed_tables_an
         assert main([a.format(n=n) for a in argv]) == 0
         a = load_artifact(tmp_path / "shop" / f"v{n}")
         assert a.manifest["item_vectors"]["precisions"] == a.manifest["item_vectors"]["packed"] == held
-    monkeypatch.setattr("service.runtime.active.AUTO_REDUCED_FROM", 400)
+    monkeypatch.setattr("service.runtime.active.REDUCED_FROM", 400)
     model = load_model(tmp_path / "shop" / "v400", 1, 8, "auto")
     assert model.scoring in ("int4+int8", "int8")  # int8 alone where int4 won no batch size when timed at load
 
@@ -278,18 +277,18 @@ def test_reduced_step_refuses_bad_calls(artifact: Path) -> None:
 
 def test_scoring_setting_picks_the_path_and_falls_back_to_exact(artifact: Path, tmp_path: Path) -> None:
     every = set(PRECISIONS)
-    assert scoring_path("auto", AUTO_REDUCED_FROM, {"fp16", "int8"}) == "int8"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, {"int4"}) == "int4"
+    assert scoring_path("auto", REDUCED_FROM, {"fp16", "int8"}) == "int8"
+    assert scoring_path("auto", REDUCED_FROM, {"int4"}) == "int4"
     # Both packed tables where the export wrote both; int4+int8 asked of an artifact with one of
     # them serves that one.
-    assert scoring_path("auto", AUTO_REDUCED_FROM, every) == "int4+int8" == scoring_path("int4+int8", 10, every)
+    assert scoring_path("auto", REDUCED_FROM, every) == "int4+int8" == scoring_path("int4+int8", 10, every)
     assert scoring_path("int4+int8", 10, {"int8"}) == "int8" and scoring_path("int4+int8", 10, {"fp16", "int4"}) == "int4"
     assert scoring_path("int4+int8", 10, every, packed={"int4"}) == "int4" and scoring_path("int4+int8", 10, {"fp16"}) == "exact"
     # An int8 table fed to its graph (exports before it was packed) comes after int4.
-    assert scoring_path("auto", AUTO_REDUCED_FROM, every, packed={"int4"}) == "int4"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, {"fp16", "int8"}, packed={"int4"}) == "int8"
-    assert scoring_path("auto", AUTO_REDUCED_FROM, set()) == "exact"  # item vectors without a reduced copy
-    assert scoring_path("auto", AUTO_REDUCED_FROM - 1, every) == "exact"
+    assert scoring_path("auto", REDUCED_FROM, every, packed={"int4"}) == "int4"
+    assert scoring_path("auto", REDUCED_FROM, {"fp16", "int8"}, packed={"int4"}) == "int8"
+    assert scoring_path("auto", REDUCED_FROM, set()) == "exact"  # item vectors without a reduced copy
+    assert scoring_path("auto", REDUCED_FROM - 1, every) == "exact"
     assert scoring_path("auto", 10**6, None) == "exact"
     assert scoring_path("fp16", 10, every) == "fp16" and scoring_path("int8", 10, None) == "exact" and scoring_path("fp16", 10, {"int4"}) == "exact"
     assert scoring_path("exact", 10**6, every) == "exact"
